@@ -1,0 +1,194 @@
+"""The audit: check a finished experiment against its ledger and name every problem.
+
+It recomputes the hash chain, then checks the files the ledger vouches for: the
+sealed test file, the development/test split, the folds, the choice, the model and
+the verdict. It reads only the ``row_key`` column of the sealed test file, never its
+features or target.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+
+from . import ledger
+from ._io import read_json, sha256_file, write_json
+from .dataset import KEY, keys_digest
+from .layout import CHOICE, DEV, FOLDS, LEDGER, MANIFEST, MODEL, RANKING, TEST, VERDICT, fit_file
+from .ledger import Problem
+
+
+def _sha(path: Path) -> str | None:
+    return sha256_file(path) if path.exists() else None
+
+
+def _check_seal(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) -> dict[str, Any] | None:
+    seals = ledger.events(entries, "seal")
+    if len(seals) != 1:
+        out.append(Problem("seal-count", f"the ledger records {len(seals)} seal events; exactly one is expected"))
+    if not (exp / MANIFEST).exists():
+        out.append(Problem("manifest-missing", f"'{exp / MANIFEST}' is missing"))
+        return None
+    manifest = read_json(exp / MANIFEST)
+    if entries and entries[0].get("hash") != manifest.get("ledger_anchor"):
+        out.append(Problem("anchor-mismatch", "the first ledger line is not the seal the manifest anchors: "
+                           "the ledger was replaced or its start was rewritten"))
+    if seals and seals[0]["details"].get("files") != manifest.get("files"):
+        out.append(Problem("manifest-edited", "sealed/manifest.json file hashes differ from the seal's ledger entry"))
+    test_sha = _sha(exp / TEST)
+    if test_sha != manifest["files"]["test.parquet"]:
+        out.append(Problem("test-changed", f"'{exp / TEST}' is {'missing' if test_sha is None else 'changed'} "
+                           "since the seal (sha256 differs from the manifest)"))
+    dev_sha = _sha(exp / DEV)
+    if dev_sha != manifest["files"]["dev.parquet"]:
+        out.append(Problem("dev-changed", f"'{exp / DEV}' is {'missing' if dev_sha is None else 'changed'} "
+                           "since the seal"))
+    return manifest
+
+
+def _check_split(exp: Path, manifest: dict[str, Any], out: list[Problem]) -> tuple[set[str], set[str]]:
+    dev_keys: set[str] = set()
+    test_keys: set[str] = set()
+    if (exp / DEV).exists():
+        dev_keys = set(pd.read_parquet(exp / DEV, columns=[KEY])[KEY].astype(str))
+    if (exp / TEST).exists():
+        test_keys = set(pd.read_parquet(exp / TEST, columns=[KEY])[KEY].astype(str))
+    overlap = dev_keys & test_keys
+    if overlap:
+        out.append(Problem("dev-test-overlap", f"{len(overlap)} row key(s) are in both the development and the "
+                           f"sealed test set, e.g. {sorted(overlap)[0]!r}"))
+    if dev_keys and keys_digest(dev_keys) != manifest["keys"]["dev_sha256"]:
+        out.append(Problem("dev-keys-changed", "the development row keys differ from those recorded at the seal"))
+    if test_keys and keys_digest(test_keys) != manifest["keys"]["test_sha256"]:
+        out.append(Problem("test-keys-changed", "the sealed test row keys differ from those recorded at the seal"))
+    return dev_keys, test_keys
+
+
+def _check_folds(exp: Path, entries: list[dict[str, Any]], dev_keys: set[str], test_keys: set[str],
+                 out: list[Problem]) -> None:
+    path = exp / FOLDS
+    assigned = ledger.events(entries, "assign_folds")
+    if not path.exists():
+        if assigned:
+            out.append(Problem("folds-missing", f"'{path}' is missing but the ledger records a fold assignment"))
+        return
+    folds = pd.read_parquet(path)
+    named_test = set(folds[KEY].astype(str)) & test_keys
+    if named_test:
+        out.append(Problem("fold-names-test-row", f"folds.parquet names {len(named_test)} sealed test row(s), "
+                           f"e.g. {sorted(named_test)[0]!r}"))
+    for repeat, part in folds.groupby("repeat"):
+        keys = part[KEY].astype(str)
+        if set(keys) != dev_keys or keys.duplicated().any():
+            out.append(Problem("fold-coverage", f"in repeat {repeat} the folds do not validate every development "
+                               "row exactly once"))
+            break
+    sha = sha256_file(path)
+    if not assigned or assigned[-1]["details"].get("folds_sha256") != sha:
+        out.append(Problem("folds-changed", "folds.parquet is not the fold table the ledger recorded"))
+    latest: dict[tuple[str, int, int], dict[str, Any]] = {}
+    for e in ledger.events(entries, "fit"):
+        latest[(e["details"]["family"], e["details"]["repeat"], e["details"]["fold"])] = e
+    stale = [e for e in latest.values() if e["details"].get("folds_sha256") != sha]
+    if stale:
+        out.append(Problem("fits-on-other-folds", f"{len(stale)} fit job(s) used a fold table other than the current "
+                           "folds.parquet (folds changed after the fits)"))
+    for (family, repeat, fold), e in sorted(latest.items()):
+        fits = exp / fit_file("fits", family, repeat, fold)
+        if _sha(fits) != e["details"].get("fits_sha256"):
+            out.append(Problem("fits-changed", f"'{fits}' is not the file the ledger recorded for that fit job"))
+
+
+def _check_choice(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) -> str | None:
+    tallies, refits = ledger.events(entries, "tally"), ledger.events(entries, "refit")
+    choice_path = exp / CHOICE
+    if not choice_path.exists():
+        return None
+    sha = sha256_file(choice_path)
+    if not tallies or tallies[-1]["details"].get("choice_sha256") != sha:
+        out.append(Problem("choice-changed", "choice.json is not the choice the ledger recorded at the tally"))
+    if _sha(exp / RANKING) != (tallies[-1]["details"].get("ranking_sha256") if tallies else None):
+        out.append(Problem("ranking-changed", "ranking.parquet is not the ranking the ledger recorded at the tally"))
+    winner = read_json(choice_path)["winner"]["candidate"]
+    model = exp / MODEL
+    if not refits:
+        if model.exists():
+            out.append(Problem("model-unrecorded", "model/model.skops exists but the ledger records no refit"))
+        return None
+    refit = refits[-1]["details"]
+    if refit.get("winner") != winner:
+        out.append(Problem("winner-mismatch", f"choice.json names winner {winner} but the ledger's refit is "
+                           f"{refit.get('winner')}"))
+    model_sha = _sha(model)
+    if model_sha != refit.get("model_sha256"):
+        out.append(Problem("model-changed", f"model/model.skops is {'missing' if model_sha is None else 'not the file'} "
+                           "the ledger recorded at the refit"))
+    return model_sha
+
+
+def _check_openings(exp: Path, entries: list[dict[str, Any]], model_sha: str | None,
+                    out: list[Problem]) -> int:
+    openings = ledger.events(entries, "open_test")
+    verdict = exp / VERDICT
+    if len(openings) > 1:
+        reasons = [r for e in openings for r in e["details"].get("reasons", [])]
+        out.append(Problem("opened-more-than-once", f"the sealed test set was opened {len(openings)} times; "
+                           f"the test estimate is compromised (recorded reasons: {reasons or 'none'})"))
+    if openings:
+        last = openings[-1]["details"]
+        if not verdict.exists():
+            out.append(Problem("verdict-missing", "the ledger records an opening but final/verdict.json is missing"))
+        elif sha256_file(verdict) != last.get("verdict_sha256"):
+            out.append(Problem("verdict-changed", "final/verdict.json is not the verdict the ledger recorded"))
+        if model_sha is not None and last.get("model_sha256") != model_sha:
+            out.append(Problem("opened-other-model", "the last opening evaluated a model file other than the current "
+                               "model/model.skops"))
+        refit_seq = [e["seq"] for e in ledger.events(entries, "refit")]
+        if not refit_seq or openings[0]["seq"] < refit_seq[0]:
+            out.append(Problem("opening-before-refit", "the test set was opened before any refit was recorded"))
+    elif verdict.exists():
+        out.append(Problem("opening-unrecorded", "final/verdict.json exists but the ledger records no opening "
+                           "(the ledger was truncated or the verdict was not made by open_test)"))
+    return len(openings)
+
+
+def audit(exp_dir: str) -> dict[str, Any]:
+    """Check one experiment directory; return {'passed': bool, 'problems': [...], ...}."""
+    exp = Path(exp_dir)
+    entries, problems = ledger.verify_chain(exp / LEDGER)
+    manifest = _check_seal(exp, entries, problems)
+    openings = 0
+    if manifest is not None:
+        dev_keys, test_keys = _check_split(exp, manifest, problems)
+        _check_folds(exp, entries, dev_keys, test_keys, problems)
+        model_sha = _check_choice(exp, entries, problems)
+        openings = _check_openings(exp, entries, model_sha, problems)
+    return {
+        "experiment": exp.name,
+        "passed": not problems,
+        "problems": [{"code": p.code, "message": p.message} for p in problems],
+        "ledger_entries": len(entries),
+        "ledger_head": entries[-1]["hash"] if entries else None,
+        "test_set_opened": openings,
+        "checks": ["hash chain", "seal anchor", "sealed and development files", "dev/test overlap", "fold coverage",
+                   "folds and fits against the ledger", "choice, ranking and model against the ledger",
+                   "openings and verdict"],
+    }
+
+
+def audit_to_file(exp_dir: str, out_path: str) -> dict[str, Any]:
+    """Run the audit and write its result as JSON (the workflow's last rule)."""
+    result = audit(exp_dir)
+    write_json(out_path, result)
+    return result
+
+
+def report(result: dict[str, Any]) -> str:
+    """The audit as lines of text for a terminal."""
+    head = "PASS" if result["passed"] else "FAIL"
+    lines = [f"{head}: experiment '{result['experiment']}', {result['ledger_entries']} ledger entries, "
+             f"test set opened {result['test_set_opened']} time(s)"]
+    lines += [f"  - [{p['code']}] {p['message']}" for p in result["problems"]]
+    return "\n".join(lines)

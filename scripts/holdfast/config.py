@@ -1,0 +1,208 @@
+"""Load, validate and normalise an experiment config.
+
+The JSON-Schema in ``workflow/schemas/config.schema.yaml`` checks shape, types and
+fills defaults; the functions here add the cross-field checks the schema cannot
+express. Nothing here imports scikit-learn: the Snakefile calls this at parse time.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from ._io import canonical_json, sha256_text
+from .errors import ConfigError
+
+ROOT = Path(__file__).resolve().parents[2]
+SCHEMA_PATH = ROOT / "workflow" / "schemas" / "config.schema.yaml"
+
+DEFAULT_METRICS = {
+    "classification": ["accuracy", "roc_auc", "neg_log_loss"],
+    "regression": ["neg_mean_absolute_error", "r2"],
+}
+ALWAYS_ALLOWED = "sklearn"
+
+
+def read_yaml(path: str | os.PathLike[str]) -> Any:
+    """Read a YAML file with the safe loader; refuse anything that is not plain data."""
+    source = Path(path)
+    if not source.is_file():
+        raise ConfigError(f"config file '{source}' does not exist; pass an existing --configfile")
+    try:
+        with open(source, encoding="utf-8") as handle:
+            return yaml.safe_load(handle)
+    except yaml.YAMLError as exc:
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise ConfigError(f"config file '{source}' is not plain YAML ({first}); fix the syntax") from exc
+
+
+def _schema() -> dict[str, Any]:
+    with open(SCHEMA_PATH, encoding="utf-8") as handle:
+        return yaml.safe_load(handle)
+
+
+def _key_path(path: Any) -> str:
+    parts = [str(p) for p in path]
+    return ".".join(parts) if parts else "<top level>"
+
+
+def _fill_defaults(instance: Any, schema: dict[str, Any]) -> None:
+    """Insert schema defaults into the config in place, recursively."""
+    if not isinstance(instance, dict):
+        return
+    props = schema.get("properties", {})
+    for key, sub in props.items():
+        if key not in instance and "default" in sub:
+            instance[key] = copy.deepcopy(sub["default"])
+        if key in instance:
+            _fill_defaults(instance[key], sub)
+    extra = schema.get("additionalProperties")
+    if isinstance(extra, dict):
+        for key, value in instance.items():
+            if key not in props:
+                _fill_defaults(value, extra)
+
+
+def _schema_message(error: Any) -> str:
+    where = _key_path(error.absolute_path)
+    if error.validator == "additionalProperties":
+        allowed = sorted(error.schema.get("properties", {}))
+        extra = sorted(set(error.instance) - set(allowed))
+        name = ".".join([*map(str, error.absolute_path), extra[0]]) if extra else where
+        return f"config key '{name}' is not known; remove it or use one of: {', '.join(allowed)}"
+    if error.validator == "required":
+        missing = error.message.split("'")[1] if "'" in error.message else error.message
+        name = ".".join([*map(str, error.absolute_path), missing])
+        return f"config key '{name}' is required; add it"
+    if error.validator == "enum":
+        return f"config key '{where}': {error.instance!r} is not one of {error.validator_value}; use one of them"
+    if error.validator == "pattern":
+        return (f"config key '{where}': {error.instance!r} does not match {error.validator_value}; "
+                "use letters, digits, '_', '.' and '-' only")
+    if error.validator == "propertyNames":
+        return (f"config key '{where}': family name {error.instance!r} is not allowed; "
+                "start with a letter and use letters, digits, '_' and '-' (at most 40)")
+    return f"config key '{where}': {error.message}; see workflow/schemas/config.schema.yaml"
+
+
+def validate(raw: Any) -> dict[str, Any]:
+    """Validate a config mapping against the schema, fill defaults and run cross-field checks.
+
+    Returns a new dict; raises ConfigError naming the first key at fault.
+    """
+    import jsonschema
+
+    if not isinstance(raw, dict):
+        raise ConfigError("config must be a mapping of keys to values; see config/config.yaml for an example")
+    config = copy.deepcopy(raw)
+    schema = _schema()
+    _fill_defaults(config, schema)
+    validator = jsonschema.Draft202012Validator(schema)
+    errors = sorted(validator.iter_errors(config), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    if errors:
+        raise ConfigError(_schema_message(errors[0]))
+    _cross_checks(config)
+    return config
+
+
+def _cross_checks(config: dict[str, Any]) -> None:
+    data = config["data"]
+    folds = config["folds"]
+    roles = {"target": data["target"], "id": data["id"], "group": data["group"], "time": data["time"]}
+    named = [(k, v) for k, v in roles.items() if v is not None]
+    seen: dict[str, str] = {}
+    for role, column in named:
+        if column in seen:
+            raise ConfigError(f"config keys 'data.{seen[column]}' and 'data.{role}' both name column '{column}'; "
+                              "give each role its own column")
+        seen[column] = role
+    for column in data["drop"]:
+        if column in seen:
+            raise ConfigError(f"config key 'data.drop' lists '{column}', which is data.{seen[column]}; remove it from drop")
+    if folds["scheme"] == "group" and data["group"] is None:
+        raise ConfigError("config key 'folds.scheme' is 'group' but 'data.group' is not set; "
+                          "name the group column in data.group or choose another scheme")
+    if folds["scheme"] == "stratified" and config.get("task") == "regression":
+        raise ConfigError("config key 'folds.scheme' is 'stratified' but task is regression; use kfold or group")
+    if config["test"]["scheme"] == "stratified" and config.get("task") == "regression":
+        raise ConfigError("config key 'test.scheme' is 'stratified' but task is regression; use hashed")
+    allowed = allowed_prefixes(config)
+    for family, spec in config["candidates"].items():
+        module = spec["estimator"].rsplit(".", 1)[0]
+        if not any(module == p or module.startswith(p + ".") for p in allowed):
+            raise ConfigError(
+                f"config key 'candidates.{family}.estimator': '{spec['estimator']}' is not from an allowed module "
+                f"({', '.join(allowed)}); use a scikit-learn estimator or add its module prefix to allowed_modules")
+        overlap = sorted(set(spec["params"]) & set(spec["grid"]))
+        if overlap:
+            raise ConfigError(f"config key 'candidates.{family}': parameter '{overlap[0]}' is in both params and grid; "
+                              "keep it in one of them")
+    if config.get("metrics") is not None and config.get("task") is not None:
+        pass  # scorer/task fit is checked where scikit-learn is imported (holdfast.scoring)
+
+
+def allowed_prefixes(config: dict[str, Any]) -> list[str]:
+    """Module prefixes an estimator may come from: sklearn plus the config's extra ones."""
+    extra = [p for p in config.get("allowed_modules", []) if p != ALWAYS_ALLOWED]
+    return [ALWAYS_ALLOWED, *extra]
+
+
+def load(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """Read and validate a config file."""
+    return validate(read_yaml(path))
+
+
+def with_task(config: dict[str, Any], task: str) -> dict[str, Any]:
+    """Return the config with the task fixed and metric defaults filled for it."""
+    out = copy.deepcopy(config)
+    if out.get("task") not in (None, task):
+        raise ConfigError(f"config key 'task' is '{out['task']}' but the data was sealed as {task}; "
+                          "name a new experiment to change the task")
+    out["task"] = task
+    if not out.get("metrics"):
+        out["metrics"] = list(DEFAULT_METRICS[task])
+    if task == "regression":
+        for key in ("folds", "test"):
+            if out[key]["scheme"] == "stratified":
+                raise ConfigError(f"config key '{key}.scheme' is 'stratified' but the target is continuous "
+                                  "(regression); use another scheme")
+    return out
+
+
+def experiment_dir(config: dict[str, Any], results: str | os.PathLike[str] = "results") -> Path:
+    """Where an experiment writes: results/<experiment>."""
+    return Path(results) / config["experiment"]
+
+
+def seal_spec(config: dict[str, Any]) -> dict[str, Any]:
+    """The parts of a config fixed at the seal; changing any later needs a new experiment."""
+    data = config["data"]
+    return {
+        "target": data["target"], "id": data["id"], "group": data["group"], "time": data["time"],
+        "drop": sorted(data["drop"]),
+        "task": config.get("task"),
+        "fraction": config["test"]["fraction"], "scheme": config["test"]["scheme"], "salt": config["test"]["salt"],
+    }
+
+
+def fold_spec(config: dict[str, Any]) -> dict[str, Any]:
+    """The settings that determine the fold assignment."""
+    return dict(config["folds"])
+
+
+def selection_fingerprint(config: dict[str, Any], code: str) -> str:
+    """Hash of everything that decides which model is chosen (and so what an opening evaluates)."""
+    keys = ("data", "task", "metrics", "test", "folds", "candidates", "selection", "allowed_modules")
+    part = {k: config.get(k) for k in keys}
+    part["test"] = {k: v for k, v in config["test"].items() if k != "reopen_reasons"}
+    part["data"] = {k: v for k, v in config["data"].items() if k != "path"}
+    return sha256_text(canonical_json({"config": part, "code": code}))
+
+
+def config_hash(config: dict[str, Any]) -> str:
+    """Hash of the whole normalised config, recorded in the ledger."""
+    return sha256_text(canonical_json(config))

@@ -1,0 +1,145 @@
+"""Row keys, column roles and data checks shared by the seal, the folds and the fits."""
+
+from __future__ import annotations
+
+import hashlib
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import DataError
+
+KEY = "row_key"
+MAX_CLASSES_FOR_INFERENCE = 20
+
+
+def content_keys(frame: pd.DataFrame) -> pd.Series:
+    """Key each row by a hash of its content; identical rows get '~1', '~2', ... suffixes.
+
+    Values are rendered as text column by column (NaN as an empty field), so the key
+    does not depend on row order or on the file format the row came from.
+    """
+    columns = sorted(frame.columns)
+    text = frame[columns].astype("string").fillna("\x00").astype(str)
+    joined = text.agg("\x1f".join, axis=1) if len(columns) > 1 else text[columns[0]]
+    prefix = "\x1e".join(columns) + "\x1d"
+    digests = [hashlib.sha256((prefix + row).encode("utf-8")).hexdigest()[:20] for row in joined]
+    keys = pd.Series(digests, index=frame.index, dtype=object)
+    occurrence = keys.groupby(keys).cumcount()
+    keys = keys.where(occurrence == 0, keys + "~" + occurrence.astype(str))
+    return keys.astype(str)
+
+
+def row_keys(frame: pd.DataFrame, id_column: str | None) -> pd.Series:
+    """The stable identity of each row: the id column as text, or a content hash."""
+    if id_column is None:
+        return content_keys(frame)
+    ids = frame[id_column]
+    if ids.isna().any():
+        where = int(np.flatnonzero(ids.isna().to_numpy())[0])
+        raise DataError(f"id column '{id_column}' is empty in {int(ids.isna().sum())} row(s) (first at data row "
+                        f"{where + 1}); fill every id or unset data.id to key rows by content")
+    keys = ids.astype(str)
+    dup = keys.duplicated(keep=False)
+    if dup.any():
+        example = keys[dup].iloc[0]
+        raise DataError(f"id column '{id_column}' has {int(keys.duplicated().sum())} duplicate value(s) "
+                        f"(e.g. {example!r}); make ids unique or unset data.id to key rows by content")
+    return keys
+
+
+def hash_unit(keys: pd.Series, salt: str) -> np.ndarray:
+    """Map each key to a number in [0, 1) from SHA-256 of salt and key alone."""
+    out = np.empty(len(keys), dtype=np.float64)
+    for i, key in enumerate(keys):
+        digest = hashlib.sha256(f"{salt}\x1f{key}".encode()).digest()
+        out[i] = int.from_bytes(digest[:8], "big") / 2.0**64
+    return out
+
+
+def keys_digest(keys: Any) -> str:
+    """One hash for a set of row keys (order does not matter)."""
+    digest = hashlib.sha256()
+    for key in sorted(map(str, keys)):
+        digest.update(key.encode("utf-8") + b"\n")
+    return digest.hexdigest()
+
+
+def infer_task(target: pd.Series) -> str:
+    """Classification for text, boolean or few-valued integer targets; regression otherwise."""
+    values = target.dropna()
+    if values.dtype == bool or not pd.api.types.is_numeric_dtype(values):
+        return "classification"
+    as_float = values.astype(float)
+    integral = bool(np.all(np.isfinite(as_float)) and np.all(as_float == np.round(as_float)))
+    if integral and values.nunique() <= MAX_CLASSES_FOR_INFERENCE:
+        return "classification"
+    return "regression"
+
+
+def non_feature_columns(spec: dict[str, Any]) -> list[str]:
+    """Columns that never enter a model: key, target, id, group, time and the drop list."""
+    cols = [KEY, spec["target"]]
+    cols += [spec[r] for r in ("id", "group", "time") if spec.get(r)]
+    cols += list(spec.get("drop", []))
+    return cols
+
+
+def feature_columns(frame: pd.DataFrame, spec: dict[str, Any]) -> list[str]:
+    """Feature columns of a frame, in file order."""
+    skip = set(non_feature_columns(spec))
+    return [c for c in frame.columns if c not in skip]
+
+
+def check_columns(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> None:
+    """Every column the config names exists; the target is complete; features are finite."""
+    roles = [("target", spec["target"])] + [(r, spec[r]) for r in ("id", "group", "time") if spec.get(r)]
+    roles += [("drop", c) for c in spec.get("drop", [])]
+    for role, column in roles:
+        if column not in frame.columns:
+            raise DataError(f"column '{column}' (data.{role}) is not in '{source}'; "
+                            f"columns there are: {', '.join(map(str, frame.columns[:12]))}"
+                            f"{' ...' if len(frame.columns) > 12 else ''}")
+    if KEY in frame.columns:
+        raise DataError(f"'{source}' has a column named '{KEY}', which holdfast reserves; rename it")
+    target = frame[spec["target"]]
+    if target.isna().any():
+        raise DataError(f"target column '{spec['target']}' has {int(target.isna().sum())} missing value(s) in "
+                        f"'{source}'; drop or fill those rows before the seal")
+    if spec.get("group") and frame[spec["group"]].isna().any():
+        raise DataError(f"group column '{spec['group']}' has {int(frame[spec['group']].isna().sum())} missing "
+                        f"value(s) in '{source}'; give every row a group")
+    if spec.get("time"):
+        parsed = pd.to_datetime(frame[spec["time"]], errors="coerce", utc=True)
+        bad = parsed.isna() & frame[spec["time"]].notna()
+        if bad.any() or parsed.isna().any():
+            raise DataError(f"time column '{spec['time']}' has {int(parsed.isna().sum())} value(s) that are not "
+                            f"timestamps in '{source}'; use ISO-8601 times")
+    features = feature_columns(frame, spec)
+    if not features:
+        raise DataError(f"'{source}' has no feature columns left after target, id, group, time and drop; "
+                        "keep at least one feature")
+    for column in features:
+        values = frame[column]
+        if pd.api.types.is_numeric_dtype(values) and values.dtype != bool:
+            finite = np.isfinite(values.to_numpy(dtype=float, na_value=np.nan)) | values.isna().to_numpy()
+            if not finite.all():
+                raise DataError(f"feature column '{column}' has {int((~finite).sum())} infinite value(s) in "
+                                f"'{source}'; replace them with finite values or blanks")
+
+
+def check_target_for_task(target: pd.Series, task: str, source: str) -> None:
+    """A classification target needs two classes or more; a regression target must be numeric."""
+    if task == "classification":
+        if target.nunique() < 2:
+            raise DataError(f"target column '{target.name}' has a single class ({target.iloc[0]!r}) in '{source}'; "
+                            "classification needs at least two")
+    elif not pd.api.types.is_numeric_dtype(target):
+        raise DataError(f"target column '{target.name}' is not numeric in '{source}' but task is regression; "
+                        "set task: classification or fix the column")
+
+
+def split_xy(frame: pd.DataFrame, spec: dict[str, Any]) -> tuple[pd.DataFrame, pd.Series]:
+    """Feature frame and target series of a development or test frame."""
+    return frame[feature_columns(frame, spec)], frame[spec["target"]]

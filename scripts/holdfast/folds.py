@@ -1,0 +1,119 @@
+"""Fold assignment: which development row is validated in which fold of which repeat.
+
+scikit-learn's splitters draw the folds; the stored table ``row_key, repeat, fold``
+is the source of truth afterwards and is checked for the invariants every scheme
+must keep.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .dataset import KEY
+from .errors import ConfigError, DataError
+
+
+def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, groups: pd.Series | None) -> None:
+    """Refuse fold settings that cannot work on this data, before any work is done."""
+    k, scheme = int(spec["k"]), spec["scheme"]
+    if k > n_rows:
+        raise ConfigError(f"config key 'folds.k' is {k} but there are only {n_rows} development rows; lower folds.k")
+    if scheme == "stratified":
+        assert target is not None
+        counts = target.value_counts()
+        if k > int(counts.min()):
+            raise ConfigError(f"config key 'folds.k' is {k} but class {counts.idxmin()!r} of '{target.name}' has only "
+                              f"{int(counts.min())} development rows; lower folds.k to at most {int(counts.min())} "
+                              "or use folds.scheme: kfold")
+    if scheme == "group":
+        assert groups is not None
+        n_groups = int(groups.nunique())
+        if k > n_groups:
+            raise ConfigError(f"config key 'folds.k' is {k} but group column '{groups.name}' has only {n_groups} "
+                              f"groups in the development rows; lower folds.k to at most {n_groups}")
+
+
+def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
+            groups: pd.Series | None) -> Iterator[np.ndarray]:
+    """Yield the validation indices of each fold of one repeat."""
+    from sklearn.model_selection import GroupKFold, KFold, StratifiedKFold
+
+    seed = int(spec["seed"]) + repeat
+    k = int(spec["k"])
+    placeholder = np.zeros((n, 1))
+    scheme = spec["scheme"]
+    if scheme == "kfold":
+        splits = KFold(n_splits=k, shuffle=True, random_state=seed).split(placeholder)
+    elif scheme == "stratified":
+        assert target is not None
+        splits = StratifiedKFold(n_splits=k, shuffle=True, random_state=seed).split(placeholder, target.to_numpy())
+    elif scheme == "group":
+        assert groups is not None
+        splits = GroupKFold(n_splits=k, shuffle=True, random_state=seed).split(placeholder, groups=groups.to_numpy())
+    else:
+        raise ConfigError(f"config key 'folds.scheme': unknown scheme {scheme!r}; use kfold, stratified or group")
+    for _, validation in splits:
+        yield validation
+
+
+def _small_uint(limit: int) -> str:
+    return "uint8" if limit < 2**8 else "uint16" if limit < 2**16 else "uint32"
+
+
+def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: str | None) -> pd.DataFrame:
+    """Draw the fold table for the development rows (in their stored order)."""
+    target = dev[target_col] if spec["scheme"] == "stratified" else None
+    groups = dev[group_col] if group_col else None
+    check_feasible(spec, len(dev), target, groups)
+    keys = dev[KEY].to_numpy()
+    parts = []
+    for repeat in range(int(spec["repeats"])):
+        fold_of = np.full(len(dev), -1, dtype=np.int64)
+        for fold, validation in enumerate(_splits(spec, repeat, len(dev), target, groups)):
+            fold_of[validation] = fold
+        parts.append(pd.DataFrame({KEY: keys, "repeat": repeat, "fold": fold_of}))
+    table = pd.concat(parts, ignore_index=True)
+    table["repeat"] = table["repeat"].astype(_small_uint(int(spec["repeats"])))
+    table["fold"] = table["fold"].astype(_small_uint(int(spec["k"])))
+    return table
+
+
+def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, spec: dict[str, Any],
+          groups: pd.Series | None = None) -> None:
+    """Check the invariants: every dev row validated once per repeat, no empty fold,
+    no group on both sides of a fold, no test key anywhere. Raises DataError naming the fold."""
+    scheme, k = spec["scheme"], int(spec["k"])
+    dev_set = set(map(str, dev_keys))
+    if test_keys:
+        leaked = set(table[KEY]) & test_keys
+        if leaked:
+            raise DataError(f"folds ({scheme}) name {len(leaked)} sealed test row(s), e.g. {sorted(leaked)[0]!r}; "
+                            "the fold table is corrupt: start a new experiment")
+    unknown = set(table[KEY]) - dev_set
+    if unknown:
+        raise DataError(f"folds ({scheme}) name {len(unknown)} row(s) not in the development set; rebuild the folds")
+    group_of = dict(zip(map(str, dev_keys), groups.to_numpy(), strict=True)) if groups is not None else None
+    for repeat, part in table.groupby("repeat", sort=True):
+        counts = part[KEY].value_counts()
+        if len(counts) != len(dev_set) or int(counts.max()) != 1:
+            raise DataError(f"folds ({scheme}), repeat {repeat}: {len(dev_set) - len(counts)} development row(s) are "
+                            "never validated or some are validated twice; rebuild the folds")
+        sizes = part["fold"].value_counts()
+        for fold in range(k):
+            if int(sizes.get(fold, 0)) == 0:
+                raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold} is empty (0 rows); lower folds.k")
+        if group_of is not None and scheme == "group":
+            fold_groups = part.assign(g=part[KEY].map(group_of)).groupby("g")["fold"].nunique()
+            split = fold_groups[fold_groups > 1]
+            if len(split):
+                raise DataError(f"folds ({scheme}), repeat {repeat}: group {split.index[0]!r} is in {int(split.iloc[0])} "
+                                "folds (on both sides of a split); rebuild the folds")
+
+
+def fold_ids(spec: dict[str, Any]) -> list[tuple[int, int]]:
+    """Every (repeat, fold) pair the spec produces."""
+    return [(r, f) for r in range(int(spec["repeats"])) for f in range(int(spec["k"]))]

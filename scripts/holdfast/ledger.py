@@ -1,0 +1,161 @@
+"""The ledger: an append-only, hash-chained JSON-lines record of every step that touches data.
+
+Each line holds ``seq``, ``time`` (UTC), ``event``, ``actor``, ``details``, ``prev`` (the
+previous line's hash) and ``hash`` (SHA-256 of the line's canonical JSON without ``hash``).
+Appends hold an exclusive lock, write one whole line and fsync, so parallel fit jobs
+never interleave. :func:`verify_chain` recomputes the chain and names every break.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import fcntl
+import getpass
+import json
+import os
+import socket
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from ._io import canonical_json, sha256_text
+from .errors import LedgerError
+
+GENESIS = "0" * 64
+LEDGER_NAME = "ledger.jsonl"
+
+
+def _utc_now() -> str:
+    return _dt.datetime.now(_dt.UTC).isoformat(timespec="microseconds").replace("+00:00", "Z")
+
+
+def actor(rule: str | None = None) -> dict[str, Any]:
+    """Who is acting: user, host, process id and the workflow rule, if any."""
+    try:
+        user = getpass.getuser()
+    except (KeyError, OSError):
+        user = str(os.getuid())
+    return {"user": user, "host": socket.gethostname(), "pid": os.getpid(), "rule": rule}
+
+
+def line_hash(entry: dict[str, Any]) -> str:
+    """The hash a ledger line must carry: SHA-256 of its canonical JSON without 'hash'."""
+    body = {k: v for k, v in entry.items() if k != "hash"}
+    return sha256_text(canonical_json(body))
+
+
+@contextmanager
+def locked(path: str | os.PathLike[str]) -> Iterator[None]:
+    """Hold an exclusive advisory lock on ``<path>.lock`` for the block."""
+    lock_path = Path(str(path) + ".lock")
+    lock_path.parent.mkdir(parents=True, exist_ok=True)
+    fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield
+    finally:
+        fcntl.flock(fd, fcntl.LOCK_UN)
+        os.close(fd)
+
+
+def _last_entry(path: Path) -> dict[str, Any] | None:
+    if not path.exists() or path.stat().st_size == 0:
+        return None
+    with open(path, "rb") as handle:
+        data = handle.read()
+    if not data.endswith(b"\n"):
+        raise LedgerError(f"ledger '{path}' ends in a torn line (an append was cut off); "
+                          f"run 'holdfast audit {path.parent}' and start a new experiment if it fails")
+    last = data.rstrip(b"\n").rsplit(b"\n", 1)[-1]
+    try:
+        return json.loads(last)
+    except json.JSONDecodeError as exc:
+        raise LedgerError(f"ledger '{path}' has an unreadable last line; run 'holdfast audit {path.parent}'") from exc
+
+
+def append(path: str | os.PathLike[str], event: str, details: dict[str, Any], rule: str | None = None) -> dict[str, Any]:
+    """Append one event under the lock and fsync it; return the entry written."""
+    ledger = Path(path)
+    with locked(ledger):
+        last = _last_entry(ledger)
+        entry: dict[str, Any] = {
+            "seq": 0 if last is None else int(last["seq"]) + 1,
+            "time": _utc_now(),
+            "event": event,
+            "actor": actor(rule),
+            "details": details,
+            "prev": GENESIS if last is None else str(last["hash"]),
+        }
+        entry["hash"] = line_hash(entry)
+        line = (canonical_json(entry) + "\n").encode("utf-8")
+        fd = os.open(ledger, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        try:
+            os.write(fd, line)
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+    return entry
+
+
+def read(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
+    """All entries of a ledger whose chain is intact; raise LedgerError otherwise."""
+    entries, problems = verify_chain(path)
+    if problems:
+        raise LedgerError(f"ledger '{path}' is broken: {problems[0]}; run 'holdfast audit' on the experiment")
+    return entries
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One reason an audit fails: a short code and a sentence."""
+
+    code: str
+    message: str
+
+    def __str__(self) -> str:
+        return f"[{self.code}] {self.message}"
+
+
+def verify_chain(path: str | os.PathLike[str]) -> tuple[list[dict[str, Any]], list[Problem]]:
+    """Recompute the chain. Returns the entries that parsed and every problem found."""
+    ledger = Path(path)
+    problems: list[Problem] = []
+    entries: list[dict[str, Any]] = []
+    if not ledger.exists():
+        return [], [Problem("ledger-missing", f"ledger '{ledger}' does not exist")]
+    data = ledger.read_bytes()
+    if data and not data.endswith(b"\n"):
+        problems.append(Problem("torn-append", "the last ledger line is incomplete (an append was cut off)"))
+    lines = data.split(b"\n")
+    if lines and lines[-1] == b"":
+        lines = lines[:-1]
+    prev_hash = GENESIS
+    for number, raw in enumerate(lines, start=1):
+        try:
+            entry = json.loads(raw)
+            if not isinstance(entry, dict):
+                raise ValueError("not an object")
+        except ValueError:
+            if not (number == len(lines) and problems and problems[-1].code == "torn-append"):
+                problems.append(Problem("unreadable-line", f"ledger line {number} is not a JSON object"))
+            break
+        expected_seq = len(entries)
+        if entry.get("hash") != line_hash(entry):
+            problems.append(Problem("edited-line", f"ledger line {number} (seq {entry.get('seq')}, "
+                                    f"event {entry.get('event')!r}) does not match its own hash: it was edited"))
+        if entry.get("prev") != prev_hash:
+            problems.append(Problem("broken-link", f"ledger line {number} (seq {entry.get('seq')}) does not link to "
+                                    "the line before it: a line was deleted, inserted or reordered"))
+        if entry.get("seq") != expected_seq:
+            problems.append(Problem("sequence-gap", f"ledger line {number} has seq {entry.get('seq')}, "
+                                    f"expected {expected_seq}: lines were deleted, inserted or reordered"))
+        entries.append(entry)
+        prev_hash = str(entry.get("hash"))
+    return entries, problems
+
+
+def events(entries: list[dict[str, Any]], name: str) -> list[dict[str, Any]]:
+    """Entries of one event type, in ledger order."""
+    return [e for e in entries if e.get("event") == name]

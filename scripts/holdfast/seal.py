@@ -1,0 +1,107 @@
+"""The seal: split the data once into development rows and a sealed test set.
+
+Membership of a row in the test set under the ``hashed`` scheme depends only on its
+key and the salt, so it does not change when rows are added. The sealed file is
+written read-only and its fingerprint goes into the manifest and the ledger.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import __version__, ledger
+from ._io import read_table, sha256_file, write_json, write_parquet
+from .dataset import KEY, check_columns, check_target_for_task, hash_unit, infer_task, keys_digest, row_keys
+from .errors import ConfigError, DataError, SealedAccessError
+from .layout import DEV, LEDGER, MANIFEST, TEST
+
+
+def data_fingerprint(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """SHA-256, size and modification time of the data file."""
+    stat = os.stat(path)
+    return {"sha256": sha256_file(path), "bytes": stat.st_size, "mtime_ns": stat.st_mtime_ns}
+
+
+def test_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any]) -> np.ndarray:
+    """Boolean mask of the rows that go to the sealed test set."""
+    units = hash_unit(keys, spec["salt"])
+    fraction = float(spec["fraction"])
+    if spec["scheme"] == "hashed":
+        return units < fraction
+    if spec["scheme"] == "stratified":
+        assert target is not None
+        mask = np.zeros(len(keys), dtype=bool)
+        for _, positions in pd.Series(np.arange(len(keys))).groupby(target.to_numpy()).groups.items():
+            idx = np.asarray(list(positions))
+            order = idx[np.lexsort((keys.to_numpy()[idx], units[idx]))]
+            take = int(round(fraction * len(idx)))
+            mask[order[:take]] = True
+        return mask
+    raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; use hashed or stratified")
+
+
+def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd.DataFrame, str]:
+    """Read the data file, check the declared columns and return it with the task."""
+    frame = read_table(path)
+    check_columns(frame, spec, str(path))
+    task = spec.get("task") or infer_task(frame[spec["target"]])
+    check_target_for_task(frame[spec["target"]], task, str(path))
+    return frame, task
+
+
+def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str | os.PathLike[str],
+         experiment: str, rule: str | None = None) -> dict[str, Any]:
+    """Seal the test partition of an experiment and return its manifest.
+
+    Refuses to run when the experiment already has a manifest or a sealed file:
+    the seal happens once per experiment.
+    """
+    out = Path(exp_dir)
+    for existing in (out / MANIFEST, out / TEST):
+        if existing.exists():
+            raise SealedAccessError(f"experiment '{experiment}' is already sealed ('{existing}' exists); "
+                                    "the seal never re-runs: name a new experiment to draw a new test set")
+    frame, task = load_checked(data_path, spec)
+    keys = row_keys(frame, spec.get("id"))
+    target = frame[spec["target"]] if task == "classification" else None
+    mask = test_mask(keys, target, spec)
+    n_test, n_dev = int(mask.sum()), int((~mask).sum())
+    if n_test < 1 or n_dev < 2:
+        raise DataError(f"test.fraction {spec['fraction']} leaves {n_test} test and {n_dev} development rows in "
+                        f"'{data_path}'; choose a fraction that leaves rows on both sides")
+    keyed = frame.copy()
+    keyed.insert(0, KEY, keys.to_numpy())
+    test, dev = keyed[mask].reset_index(drop=True), keyed[~mask].reset_index(drop=True)
+
+    write_parquet(out / TEST, test, mode=0o444)
+    write_parquet(out / DEV, dev)
+    fingerprint = data_fingerprint(data_path)
+    sealed_spec = {**spec, "task": task}
+    manifest: dict[str, Any] = {
+        "experiment": experiment,
+        "data": {"path": str(data_path), "rows": len(frame), "columns": [str(c) for c in frame.columns],
+                 **fingerprint},
+        "spec": sealed_spec,
+        "counts": {"dev": n_dev, "test": n_test},
+        "keys": {"dev_sha256": keys_digest(dev[KEY]), "test_sha256": keys_digest(test[KEY]),
+                 "from": "id column" if spec.get("id") else "row content"},
+        "files": {"test.parquet": sha256_file(out / TEST), "dev.parquet": sha256_file(out / DEV)},
+        "holdfast": __version__,
+    }
+    if task == "classification":
+        manifest["counts"]["classes"] = {
+            "dev": {str(k): int(v) for k, v in dev[spec["target"]].value_counts().sort_index().items()},
+            "test": {str(k): int(v) for k, v in test[spec["target"]].value_counts().sort_index().items()},
+        }
+    entry = ledger.append(out / LEDGER, "seal", {
+        "experiment": experiment, "data_sha256": fingerprint["sha256"], "spec": sealed_spec,
+        "counts": manifest["counts"], "keys": manifest["keys"], "files": manifest["files"],
+    }, rule=rule)
+    manifest["ledger_anchor"] = entry["hash"]
+    write_json(out / MANIFEST, manifest)
+    return manifest

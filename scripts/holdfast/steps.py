@@ -1,0 +1,127 @@
+"""Adapters from Snakemake's injected ``snakemake`` object to the package functions.
+
+Each rule runs ``workflow/scripts/step.py``, which calls :func:`run`. The adapter sends
+output to the rule's log before any heavy import, reads named inputs, outputs and
+params, and calls exactly one package function. A holdfast error becomes one line in
+the log and on stderr, and the job's exit code.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from typing import Any
+
+from .errors import HoldfastError
+
+
+def _redirect_log(path: str) -> int:
+    """Send fds 1 and 2 to the log file; return a copy of the original stderr."""
+    os.makedirs(os.path.dirname(path) or ".", exist_ok=True)
+    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+    sys.stdout.flush()
+    sys.stderr.flush()
+    original = os.dup(2)
+    os.dup2(fd, 1)
+    os.dup2(fd, 2)
+    os.close(fd)
+    return original
+
+
+def seal(smk: Any) -> None:
+    """Rule seal -> holdfast.seal.seal."""
+    from .seal import seal as run_seal
+
+    # The data path is read from the config, not a param: moving the file must not re-run the seal.
+    manifest = run_seal(smk.config["data"]["path"], json.loads(smk.params.spec), smk.params.exp, smk.params.experiment,
+                        rule=smk.rule)
+    print(f"sealed {manifest['counts']['test']} test rows; {manifest['counts']['dev']} development rows")
+
+
+def assign_folds(smk: Any) -> None:
+    """Rule assign_folds -> holdfast.folds.assign and check."""
+    import pandas as pd
+
+    from . import ledger
+    from ._io import sha256_file, write_parquet
+    from .folds import assign, check
+
+    spec, fold_spec = json.loads(smk.params.spec), json.loads(smk.params.folds)
+    dev = pd.read_parquet(smk.input.dev)
+    table = assign(dev, fold_spec, spec["target"], spec["group"])
+    groups = dev[spec["group"]] if spec["group"] else None
+    test_keys = set(pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"])
+    check(table, dev["row_key"], test_keys, fold_spec, groups)
+    write_parquet(smk.output.folds, table)
+    ledger.append(smk.params.ledger, "assign_folds", {
+        "scheme": fold_spec["scheme"], "k": fold_spec["k"], "repeats": fold_spec["repeats"],
+        "seeds": [fold_spec["seed"] + r for r in range(fold_spec["repeats"])], "rows": len(dev),
+        "folds_sha256": sha256_file(smk.output.folds), "dev_sha256": sha256_file(smk.input.dev),
+    }, rule=smk.rule)
+    print(f"assigned {len(dev)} rows to {fold_spec['k']} folds x {fold_spec['repeats']} repeat(s)")
+
+
+def fit_family(smk: Any) -> None:
+    """Rule fit_family -> holdfast.fit.fit_family."""
+    from .fit import fit_family as run_fit
+
+    fits = run_fit(smk.input.dev, smk.input.folds, json.loads(smk.params.family), json.loads(smk.params.spec),
+                   int(smk.wildcards.repeat), int(smk.wildcards.fold), json.loads(smk.params.metrics),
+                   smk.params.task, int(smk.threads), json.loads(smk.params.allowed), smk.output.fits,
+                   smk.output.oof, smk.params.ledger, rule=smk.rule)
+    print(fits.drop(columns=["params"]).to_string())
+
+
+def tally(smk: Any) -> None:
+    """Rule tally -> holdfast.tally.tally."""
+    from .tally import tally as run_tally
+
+    choice = run_tally(list(smk.input.fits), json.loads(smk.params.candidates), json.loads(smk.params.metrics),
+                       smk.params.rule, int(smk.params.folds), smk.output.ranking, smk.output.choice,
+                       smk.output.plot, smk.params.ledger, smk.input.folds, rule_name=smk.rule)
+    print(choice["why"])
+
+
+def refit_winner(smk: Any) -> None:
+    """Rule refit_winner -> holdfast.refit.refit_winner."""
+    from .refit import refit_winner as run_refit
+
+    card = run_refit(smk.input.choice, smk.input.dev, json.loads(smk.params.spec), int(smk.threads),
+                     json.loads(smk.params.allowed), smk.output.model, smk.output.card, smk.params.ledger,
+                     rule=smk.rule)
+    print(f"refit {card['candidate']['id']} on {card['trained_on']['rows']} rows")
+
+
+def open_test(smk: Any) -> None:
+    """Rule open_test -> holdfast.opening.open_test."""
+    from .opening import open_test as run_open
+
+    opening = json.loads(smk.params.opening)
+    verdict = run_open(smk.params.exp, smk.params.experiment, json.loads(smk.params.spec),
+                       json.loads(smk.params.metrics), smk.params.task, json.loads(smk.params.reasons),
+                       opening["confidence"], opening["bootstrap"], opening["seed"], smk.output.verdict,
+                       fingerprint=smk.params.fingerprint, rule=smk.rule)
+    print(json.dumps(verdict["metrics"], indent=2))
+
+
+def audit(smk: Any) -> None:
+    """Rule audit -> holdfast.audit.audit_to_file."""
+    from .audit import audit_to_file, report
+
+    result = audit_to_file(smk.params.exp, smk.output.audit)
+    print(report(result))
+
+
+STEPS = {f.__name__: f for f in (seal, assign_folds, fit_family, tally, refit_winner, open_test, audit)}
+
+
+def run(smk: Any) -> None:
+    """Run the step named by the rule, logging to its log file."""
+    stderr = _redirect_log(smk.log[0])
+    try:
+        STEPS[smk.rule](smk)
+    except HoldfastError as exc:
+        print(exc.format_message(), flush=True)
+        os.write(stderr, (exc.format_message() + "\n").encode())
+        sys.exit(exc.exit_code)

@@ -1,0 +1,130 @@
+"""Shared fixtures: small real datasets, experiment folders and a real Snakemake runner."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import pytest
+import yaml
+
+REPO = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(REPO / "scripts"))
+
+
+def run_workflow(workdir: Path, *args: str, configfile: str | None = "config.yaml",
+                 timeout: int = 1200) -> subprocess.CompletedProcess[str]:
+    """Run the real Snakemake on the repository's Snakefile inside ``workdir``."""
+    cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(workdir), "--cores", "2",
+           *args]
+    if configfile is not None:  # last: --configfile takes every following word
+        cmd += ["--configfile", str(workdir / configfile)]
+    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+    return subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, env=env,
+                          stdin=subprocess.DEVNULL)
+
+
+def planned_jobs(result: subprocess.CompletedProcess[str]) -> list[str]:
+    """Rule names (with wildcards) of the jobs a dry run plans, e.g. 'fit_family[logistic,0,1]'."""
+    jobs: list[str] = []
+    current: str | None = None
+    for line in result.stdout.splitlines() + result.stderr.splitlines():
+        text = line.strip()
+        if text.startswith(("rule ", "localrule ")) and text.endswith(":"):
+            current = text.split()[1].rstrip(":")
+            jobs.append(current)
+        elif current == "fit_family" and text.startswith("wildcards:") and jobs and jobs[-1] == "fit_family":
+            values = [part.split("=")[1] for part in text[len("wildcards:"):].split(",")]
+            jobs[-1] = f"fit_family[{','.join(v.strip() for v in values)}]"
+    return jobs
+
+
+def write_config(workdir: Path, config: dict[str, Any], name: str = "config.yaml") -> Path:
+    """Write a config file into the work folder."""
+    path = workdir / name
+    path.write_text(yaml.safe_dump(config, sort_keys=False), encoding="utf-8")
+    return path
+
+
+def breast_cancer_frame() -> pd.DataFrame:
+    """scikit-learn's bundled Wisconsin breast cancer data (569 rows), with a text id."""
+    from sklearn.datasets import load_breast_cancer
+
+    data = load_breast_cancer(as_frame=True)
+    frame = data.frame.rename(columns=lambda c: c.replace(" ", "_"))
+    frame.insert(0, "patient", [f"P{i:04d}" for i in range(len(frame))])
+    return frame
+
+
+def diabetes_frame() -> pd.DataFrame:
+    """scikit-learn's bundled diabetes regression data (442 rows)."""
+    from sklearn.datasets import load_diabetes
+
+    return load_diabetes(as_frame=True).frame
+
+
+def small_classification_config(data: str = "data.csv", **overrides: Any) -> dict[str, Any]:
+    """A fast two-family classification experiment on the breast cancer data."""
+    config: dict[str, Any] = {
+        "experiment": "bc",
+        "data": {"path": data, "target": "target", "id": "patient"},
+        "metrics": ["accuracy", "roc_auc"],
+        "test": {"fraction": 0.25, "scheme": "hashed", "salt": "s1"},
+        "folds": {"scheme": "stratified", "k": 3, "repeats": 1, "seed": 5},
+        "candidates": {
+            "logistic": {"estimator": "sklearn.linear_model.LogisticRegression",
+                         "preprocess": {"scale": "standard"}, "params": {"max_iter": 500},
+                         "grid": {"C": [0.1, 1.0]}},
+            "tree": {"estimator": "sklearn.tree.DecisionTreeClassifier", "params": {"random_state": 0},
+                     "grid": {"max_depth": [2, 4]}},
+        },
+        "opening": {"bootstrap": 200, "seed": 1},
+    }
+    for key, value in overrides.items():
+        config[key] = value
+    return config
+
+
+@pytest.fixture
+def bc_workdir(tmp_path: Path) -> Path:
+    """A work folder with the breast cancer CSV and a small config, nothing run yet."""
+    breast_cancer_frame().to_csv(tmp_path / "data.csv", index=False)
+    write_config(tmp_path, small_classification_config())
+    return tmp_path
+
+
+@pytest.fixture(scope="session")
+def bc_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """One finished breast cancer experiment (run once per session; copy it before changing it)."""
+    workdir = tmp_path_factory.mktemp("bc_finished")
+    breast_cancer_frame().to_csv(workdir / "data.csv", index=False)
+    write_config(workdir, small_classification_config())
+    result = run_workflow(workdir)
+    assert result.returncode == 0, result.stderr[-3000:]
+    return workdir
+
+
+@pytest.fixture
+def bc_copy(bc_finished: Path, tmp_path: Path) -> Path:
+    """A private copy of the finished experiment, times and Snakemake metadata included."""
+    target = tmp_path / "work"
+    shutil.copytree(bc_finished, target, symlinks=True)
+    return target
+
+
+def tree_digest(root: Path) -> dict[str, str]:
+    """sha256 of every file under a folder (for 'nothing was overwritten' checks)."""
+    import hashlib
+
+    out = {}
+    if not root.exists():
+        return out
+    for path in sorted(root.rglob("*")):
+        if path.is_file():
+            out[str(path.relative_to(root))] = hashlib.sha256(path.read_bytes()).hexdigest()
+    return out

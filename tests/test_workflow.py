@@ -1,0 +1,172 @@
+"""End-to-end runs of the real Snakemake workflow on real files: outputs, reruns, the single opening."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pandas as pd
+import pytest
+import yaml
+from conftest import (
+    REPO,
+    diabetes_frame,
+    planned_jobs,
+    run_workflow,
+    small_classification_config,
+    tree_digest,
+    write_config,
+)
+
+DESIGN_FILES = [
+    "sealed/manifest.json", "sealed/test.parquet", "dev.parquet", "folds.parquet", "ranking.parquet",
+    "choice.json", "model/model.skops", "model/card.json", "final/verdict.json", "ledger.jsonl", "audit.json",
+]
+
+pytestmark = pytest.mark.slow
+
+
+def audit_cli(exp: Path) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([sys.executable, "-m", "holdfast", "audit", str(exp)], capture_output=True, text=True,
+                          env={"PYTHONPATH": str(REPO / "scripts"), "PATH": "/usr/bin:/bin"})
+
+
+def test_finished_run_has_every_file_and_passes_audit(bc_finished: Path) -> None:
+    exp = bc_finished / "results" / "bc"
+    for name in DESIGN_FILES:
+        assert (exp / name).is_file(), name
+    assert list((exp / "fits" / "logistic").glob("r0f*.parquet")) and list((exp / "oof" / "tree").glob("*.parquet"))
+    assert not (exp / "sealed" / "test.parquet").stat().st_mode & 0o222, "sealed file must be read-only"
+    result = audit_cli(exp)
+    assert result.returncode == 0, result.stdout + result.stderr
+    assert result.stdout.startswith("PASS")
+    assert json.loads((exp / "audit.json").read_text())["passed"] is True
+
+
+def test_second_run_has_nothing_to_do(bc_copy: Path) -> None:
+    dry = run_workflow(bc_copy, "-n")
+    assert dry.returncode == 0, dry.stderr[-2000:]
+    assert planned_jobs(dry) == []
+    assert "Nothing to be done" in dry.stdout + dry.stderr
+    before = tree_digest(bc_copy / "results")
+    again = run_workflow(bc_copy)
+    assert again.returncode == 0
+    assert tree_digest(bc_copy / "results") == before
+
+
+def test_fit_records_are_flat_rows_per_candidate(bc_finished: Path) -> None:
+    fits = pd.read_parquet(bc_finished / "results/bc/fits/logistic/r0f1.parquet")
+    assert len(fits) == 2 and set(fits["status"]) == {"ok"}
+    for column in ("val_accuracy", "train_roc_auc", "n_train", "n_val", "fit_seconds", "candidate"):
+        assert column in fits.columns
+    oof = pd.read_parquet(bc_finished / "results/bc/oof/logistic/r0f1.parquet")
+    assert {"row_key", "candidate", "prediction", "proba_0", "proba_1"} <= set(oof.columns)
+    assert len(oof) == 2 * int(fits["n_val"].iloc[0])
+
+
+def test_editing_one_family_replans_only_its_fits(bc_workdir: Path) -> None:
+    choice = "results/bc/choice.json"
+    first = run_workflow(bc_workdir, choice)
+    assert first.returncode == 0, first.stderr[-3000:]
+    config = yaml.safe_load((bc_workdir / "config.yaml").read_text())
+    config["candidates"]["tree"]["grid"]["max_depth"] = [2, 4, 6]
+    write_config(bc_workdir, config)
+    dry = run_workflow(bc_workdir, "-n", choice)
+    assert dry.returncode == 0, dry.stderr[-3000:]
+    jobs = planned_jobs(dry)
+    fits = sorted(j for j in jobs if j.startswith("fit_family"))
+    assert fits == [f"fit_family[tree,0,{f}]" for f in range(3)], jobs
+    assert "tally" in jobs and "seal" not in jobs and "assign_folds" not in jobs
+
+
+def test_family_edit_after_opening_stops_before_any_job(bc_copy: Path) -> None:
+    config = yaml.safe_load((bc_copy / "config.yaml").read_text())
+    config["candidates"]["tree"]["grid"]["max_depth"] = [2, 3]
+    write_config(bc_copy, config)
+    before = tree_digest(bc_copy / "results")
+    for extra in (["-n"], []):
+        result = run_workflow(bc_copy, *extra)
+        assert result.returncode != 0
+        assert "already opened 1 time(s)" in result.stderr
+        assert "new experiment" in result.stderr and "reopen_reasons" in result.stderr
+    assert tree_digest(bc_copy / "results") == before
+
+
+def test_second_opening_is_refused_and_final_is_untouched(bc_copy: Path) -> None:
+    from holdfast.errors import SealedAccessError
+    from holdfast.opening import open_test
+
+    exp = bc_copy / "results" / "bc"
+    before = tree_digest(exp / "final")
+    spec = json.loads(json.dumps({"target": "target", "id": "patient", "group": None, "time": None, "drop": []}))
+    with pytest.raises(SealedAccessError, match=r"already opened 1 time\(s\).*optimistic.*new experiment"):
+        open_test(str(exp), "bc", spec, ["accuracy"], "classification", [], 0.95, 100, 0,
+                  str(exp / "final/verdict.json"))
+    assert tree_digest(exp / "final") == before
+
+
+def test_forced_rerun_of_opening_restores_verdict_without_reading(bc_copy: Path) -> None:
+    exp = bc_copy / "results" / "bc"
+    verdict = (exp / "final/verdict.json").read_bytes()
+    result = run_workflow(bc_copy, "--forcerun", "open_test")
+    assert result.returncode == 0, result.stderr[-3000:]
+    assert (exp / "final/verdict.json").read_bytes() == verdict
+    openings = [json.loads(x) for x in (exp / "ledger.jsonl").read_text().splitlines()]
+    assert sum(e["event"] == "open_test" for e in openings) == 1
+
+
+def test_reopen_with_a_recorded_reason_marks_everything(bc_copy: Path) -> None:
+    config = yaml.safe_load((bc_copy / "config.yaml").read_text())
+    config["test"]["reopen_reasons"] = ["auditor asked for the verdict with the corrected metric list"]
+    write_config(bc_copy, config)
+    result = run_workflow(bc_copy)
+    assert result.returncode == 0, result.stderr[-3000:]
+    exp = bc_copy / "results" / "bc"
+    verdict = json.loads((exp / "final/verdict.json").read_text())
+    assert verdict["opening"] == 2 and verdict["compromised"] is True
+    assert verdict["test_set_opened"] == "test set opened 2 times"
+    audit = json.loads((exp / "audit.json").read_text())
+    assert audit["passed"] is False and audit["test_set_opened"] == 2
+    assert [p["code"] for p in audit["problems"]] == ["opened-more-than-once"]
+    assert json.loads((exp / "final/openings/1.json").read_text())["opening"] == 1
+
+
+def test_changed_data_file_stops_with_fingerprint(bc_copy: Path) -> None:
+    data = bc_copy / "data.csv"
+    frame = pd.read_csv(data)
+    frame.loc[0, "mean_radius"] += 1.0
+    frame.to_csv(data, index=False)
+    before = tree_digest(bc_copy / "results")
+    result = run_workflow(bc_copy, "-n")
+    assert result.returncode == 4
+    message = result.stderr.strip().splitlines()[-1]
+    assert "data file" in message and "'bc'" in message and "sha256" in message and "new 'experiment'" in message
+    assert tree_digest(bc_copy / "results") == before
+
+
+def test_regression_twin_on_diabetes(tmp_path: Path) -> None:
+    # scikit-learn's bundled diabetes data (Efron et al., "Least Angle Regression", Ann. Statist. 2004).
+    diabetes_frame().to_parquet(tmp_path / "diabetes.parquet", index=False)
+    config = {
+        "experiment": "diabetes",
+        "data": {"path": "diabetes.parquet", "target": "target"},
+        "folds": {"scheme": "kfold", "k": 3, "repeats": 2, "seed": 1},
+        "candidates": {
+            "ridge": {"estimator": "sklearn.linear_model.Ridge", "grid": {"alpha": [0.1, 10.0]}},
+            "knn": {"estimator": "sklearn.neighbors.KNeighborsRegressor", "preprocess": {"scale": "standard"},
+                    "grid": {"n_neighbors": [5, 15]}},
+        },
+        "opening": {"bootstrap": 200},
+    }
+    write_config(tmp_path, config)
+    result = run_workflow(tmp_path)
+    assert result.returncode == 0, result.stderr[-3000:]
+    exp = tmp_path / "results" / "diabetes"
+    verdict = json.loads((exp / "final/verdict.json").read_text())
+    assert set(verdict["metrics"]) == {"neg_mean_absolute_error", "r2"}
+    assert verdict["metrics"]["r2"]["interval_method"].startswith("percentile bootstrap")
+    manifest = json.loads((exp / "sealed/manifest.json").read_text())
+    assert manifest["spec"]["task"] == "regression" and manifest["keys"]["from"] == "row content"
+    assert audit_cli(exp).returncode == 0

@@ -1,0 +1,18 @@
+# audit: recompute the ledger's chain and check every recorded file; writes pass/fail with reasons.
+rule audit:
+    input:
+        verdict=PLAN.path("final/verdict.json"),
+        choice=PLAN.path("choice.json"),
+        folds=PLAN.path("folds.parquet"),
+    output:
+        audit=PLAN.path("audit.json"),
+    log:
+        PLAN.path("logs/audit.log"),
+    params:
+        exp=EXP,
+        code=code_hash("audit"),
+    resources:
+        mem_mb=2000,
+        runtime=30,
+    script:
+        STEP

@@ -1,0 +1,58 @@
+# Config loading, parse-time guards, wildcard constraints and input functions.
+import json
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(workflow.basedir) / "scripts"))
+
+from holdfast.plan import code_hash, prepare_or_exit  # noqa: E402
+
+if not workflow.overwrite_configfiles:
+    # The demo experiment; --configfile replaces it entirely (no merging of two experiments).
+    workflow.configfile("config/config.yaml")
+
+PLAN = prepare_or_exit(config, main=workflow.is_main_process)
+EXP = str(PLAN.exp)
+LEDGER = PLAN.path("ledger.jsonl")
+SPEC = json.dumps(PLAN.spec, sort_keys=True)  # column roles, task and test partition
+METRICS = json.dumps(PLAN.config["metrics"])
+ALLOWED = json.dumps(PLAN.config["allowed_modules"])
+STEP = "../scripts/step.py"
+
+
+wildcard_constraints:
+    family="|".join(PLAN.families),
+    repeat=r"\d+",
+    fold=r"\d+",
+
+
+def family_json(wildcards):
+    return PLAN.family_json(wildcards.family)
+
+
+def family_threads(wildcards):
+    return PLAN.threads(wildcards.family)
+
+
+def family_resource(name):
+    def resource(wildcards):
+        return int(PLAN.config["candidates"][wildcards.family][name])
+
+    return resource
+
+
+def fits_of(kind):
+    return PLAN.fit_files(kind)
+
+
+def max_threads():
+    return max(PLAN.threads(f) for f in PLAN.families)
+
+
+def all_targets():
+    return [
+        PLAN.path("ranking.parquet"),
+        PLAN.path("choice.json"),
+        PLAN.path("final/verdict.json"),
+        PLAN.path("audit.json"),
+    ]

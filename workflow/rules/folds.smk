@@ -1,0 +1,20 @@
+# assign_folds: the stored fold table every candidate is scored on.
+rule assign_folds:
+    input:
+        dev=PLAN.path("dev.parquet"),
+        manifest=PLAN.path("sealed/manifest.json"),
+    output:
+        folds=PLAN.path("folds.parquet"),
+    log:
+        PLAN.path("logs/assign_folds.log"),
+    params:
+        spec=SPEC,
+        folds=json.dumps(PLAN.config["folds"], sort_keys=True),
+        test=PLAN.path("sealed/test.parquet"),
+        ledger=LEDGER,
+        code=code_hash("assign_folds"),
+    resources:
+        mem_mb=2000,
+        runtime=30,
+    script:
+        STEP

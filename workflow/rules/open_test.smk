@@ -1,0 +1,27 @@
+# open_test: the one read of the sealed test set (refused a second time; see holdfast.opening).
+rule open_test:
+    input:
+        model=PLAN.path("model/model.skops"),
+        card=PLAN.path("model/card.json"),
+        choice=PLAN.path("choice.json"),
+        ranking=PLAN.path("ranking.parquet"),
+        manifest=PLAN.path("sealed/manifest.json"),
+    output:
+        verdict=PLAN.path("final/verdict.json"),
+    log:
+        PLAN.path("logs/open_test.log"),
+    params:
+        exp=EXP,
+        experiment=PLAN.config["experiment"],
+        spec=SPEC,
+        metrics=METRICS,
+        task=PLAN.config["task"],
+        reasons=json.dumps(PLAN.config["test"]["reopen_reasons"]),
+        opening=json.dumps(PLAN.config["opening"], sort_keys=True),
+        fingerprint=PLAN.fingerprint(),
+        code=code_hash("open_test"),
+    resources:
+        mem_mb=4000,
+        runtime=30,
+    script:
+        STEP

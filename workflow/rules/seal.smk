@@ -1,0 +1,17 @@
+# seal: draw the sealed test partition once. The sealed file itself is not a declared
+# output, so no Snakemake rerun or cleanup can ever delete or rewrite it.
+rule seal:
+    output:
+        dev=PLAN.path("dev.parquet"),
+        manifest=PLAN.path("sealed/manifest.json"),
+    log:
+        PLAN.path("logs/seal.log"),
+    params:
+        spec=SPEC,
+        exp=EXP,
+        experiment=PLAN.config["experiment"],
+    resources:
+        mem_mb=2000,
+        runtime=30,
+    script:
+        STEP

@@ -1,0 +1,24 @@
+# tally: per-candidate summaries over folds, the ranking and the choice of winner.
+rule tally:
+    input:
+        fits=fits_of("fits"),
+        oof=fits_of("oof"),
+        folds=PLAN.path("folds.parquet"),
+    output:
+        ranking=PLAN.path("ranking.parquet"),
+        choice=PLAN.path("choice.json"),
+        plot=PLAN.path("plots/ranking.png"),
+    log:
+        PLAN.path("logs/tally.log"),
+    params:
+        candidates=json.dumps(PLAN.candidates_by_id(), sort_keys=True),
+        metrics=METRICS,
+        rule=PLAN.config["selection"]["rule"],
+        folds=len(PLAN.fold_ids),
+        ledger=LEDGER,
+        code=code_hash("tally"),
+    resources:
+        mem_mb=2000,
+        runtime=30,
+    script:
+        STEP
