@@ -15,7 +15,6 @@ from conftest import (
     diabetes_frame,
     planned_jobs,
     run_workflow,
-    small_classification_config,
     tree_digest,
     write_config,
 )

@@ -121,7 +121,8 @@ def read_table(path: str | os.PathLike[str]) -> Any:
     except DataError:
         raise
     except Exception as exc:  # pandas/pyarrow raise many types for unreadable files
-        raise DataError(f"data file '{source}' could not be read ({type(exc).__name__}: {exc}); check its format") from exc
+        reason = f"{type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else ''}"
+        raise DataError(f"data file '{source}' could not be read ({reason}); check its format") from exc
     if len(frame) == 0:
         raise DataError(f"data file '{source}' has a header but no rows; add data")
     return frame

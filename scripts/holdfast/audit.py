@@ -123,7 +123,8 @@ def _check_choice(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) 
                            f"{refit.get('winner')}"))
     model_sha = _sha(model)
     if model_sha != refit.get("model_sha256"):
-        out.append(Problem("model-changed", f"model/model.skops is {'missing' if model_sha is None else 'not the file'} "
+        state = "missing" if model_sha is None else "not the file"
+        out.append(Problem("model-changed", f"model/model.skops is {state} "
                            "the ledger recorded at the refit"))
     return model_sha
 

@@ -148,7 +148,7 @@ def build_pipeline(candidate: dict[str, Any], features: Any, threads: int, allow
     fixed: dict[str, Any] = {}
     if "random_state" in defaults and defaults["random_state"] is None:
         fixed["random_state"] = 0  # determinism: an unseeded estimator would differ between runs
-    if "n_jobs" in defaults and "n_jobs" not in candidate["params"]:
+    if "n_jobs" in defaults and "n_jobs" not in candidate["params"] and threads > 1:
         fixed["n_jobs"] = threads
     if fixed:
         estimator.set_params(**fixed)

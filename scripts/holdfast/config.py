@@ -102,7 +102,8 @@ def validate(raw: Any) -> dict[str, Any]:
     schema = _schema()
     _fill_defaults(config, schema)
     validator = jsonschema.Draft202012Validator(schema)
-    errors = sorted(validator.iter_errors(config), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    errors = sorted(validator.iter_errors(config),
+                    key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
     if errors:
         raise ConfigError(_schema_message(errors[0]))
     _cross_checks(config)
@@ -122,7 +123,8 @@ def _cross_checks(config: dict[str, Any]) -> None:
         seen[column] = role
     for column in data["drop"]:
         if column in seen:
-            raise ConfigError(f"config key 'data.drop' lists '{column}', which is data.{seen[column]}; remove it from drop")
+            raise ConfigError(f"config key 'data.drop' lists '{column}', which is data.{seen[column]}; "
+                              "remove it from drop")
     if folds["scheme"] == "group" and data["group"] is None:
         raise ConfigError("config key 'folds.scheme' is 'group' but 'data.group' is not set; "
                           "name the group column in data.group or choose another scheme")

@@ -26,7 +26,7 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
         assert target is not None
         counts = target.value_counts()
         if k > int(counts.min()):
-            raise ConfigError(f"config key 'folds.k' is {k} but class {counts.idxmin()!r} of '{target.name}' has only "
+            raise ConfigError(f"config key 'folds.k' is {k} but class '{counts.idxmin()}' of '{target.name}' has only "
                               f"{int(counts.min())} development rows; lower folds.k to at most {int(counts.min())} "
                               "or use folds.scheme: kfold")
     if scheme == "group":
@@ -110,8 +110,8 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
             fold_groups = part.assign(g=part[KEY].map(group_of)).groupby("g")["fold"].nunique()
             split = fold_groups[fold_groups > 1]
             if len(split):
-                raise DataError(f"folds ({scheme}), repeat {repeat}: group {split.index[0]!r} is in {int(split.iloc[0])} "
-                                "folds (on both sides of a split); rebuild the folds")
+                raise DataError(f"folds ({scheme}), repeat {repeat}: group '{split.index[0]}' is in "
+                                f"{int(split.iloc[0])} folds (on both sides of a split); rebuild the folds")
 
 
 def fold_ids(spec: dict[str, Any]) -> list[tuple[int, int]]:

@@ -75,7 +75,8 @@ def _last_entry(path: Path) -> dict[str, Any] | None:
         raise LedgerError(f"ledger '{path}' has an unreadable last line; run 'holdfast audit {path.parent}'") from exc
 
 
-def append(path: str | os.PathLike[str], event: str, details: dict[str, Any], rule: str | None = None) -> dict[str, Any]:
+def append(path: str | os.PathLike[str], event: str, details: dict[str, Any],
+           rule: str | None = None) -> dict[str, Any]:
     """Append one event under the lock and fsync it; return the entry written."""
     ledger = Path(path)
     with locked(ledger):

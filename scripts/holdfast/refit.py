@@ -57,7 +57,8 @@ def load_model(path: str, expected_sha256: str | None = None) -> Any:
         actual = sha256_file(path)
         if actual != expected_sha256:
             raise ModelFileError(f"model file '{path}' has sha256 {actual[:16]}…, but the ledger recorded "
-                                 f"{expected_sha256[:16]}…; it was changed after the refit: refit or start a new experiment")
+                                 f"{expected_sha256[:16]}…; it was changed after the refit: "
+                                 "refit or start a new experiment")
     return sio.load(path, trusted=trusted_types(path))
 
 

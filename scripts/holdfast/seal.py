@@ -39,7 +39,7 @@ def test_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any]) -
         for _, positions in pd.Series(np.arange(len(keys))).groupby(target.to_numpy()).groups.items():
             idx = np.asarray(list(positions))
             order = idx[np.lexsort((keys.to_numpy()[idx], units[idx]))]
-            take = int(round(fraction * len(idx)))
+            take = round(fraction * len(idx))
             mask[order[:take]] = True
         return mask
     raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; use hashed or stratified")

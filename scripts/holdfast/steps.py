@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import os
 import sys
+from pathlib import Path
 from typing import Any
 
 from .errors import HoldfastError
@@ -34,7 +35,8 @@ def seal(smk: Any) -> None:
     from .seal import seal as run_seal
 
     # The data path is read from the config, not a param: moving the file must not re-run the seal.
-    manifest = run_seal(smk.config["data"]["path"], json.loads(smk.params.spec), smk.params.exp, smk.params.experiment,
+    exp = str(Path(smk.output.manifest).parents[1])
+    manifest = run_seal(smk.config["data"]["path"], json.loads(smk.params.spec), exp, smk.params.experiment,
                         rule=smk.rule)
     print(f"sealed {manifest['counts']['test']} test rows; {manifest['counts']['dev']} development rows")
 
@@ -98,7 +100,8 @@ def open_test(smk: Any) -> None:
     from .opening import open_test as run_open
 
     opening = json.loads(smk.params.opening)
-    verdict = run_open(smk.params.exp, smk.params.experiment, json.loads(smk.params.spec),
+    exp = str(Path(smk.output.verdict).parents[1])
+    verdict = run_open(exp, smk.params.experiment, json.loads(smk.params.spec),
                        json.loads(smk.params.metrics), smk.params.task, json.loads(smk.params.reasons),
                        opening["confidence"], opening["bootstrap"], opening["seed"], smk.output.verdict,
                        fingerprint=smk.params.fingerprint, rule=smk.rule)
@@ -109,7 +112,7 @@ def audit(smk: Any) -> None:
     """Rule audit -> holdfast.audit.audit_to_file."""
     from .audit import audit_to_file, report
 
-    result = audit_to_file(smk.params.exp, smk.output.audit)
+    result = audit_to_file(str(Path(smk.output.audit).parent), smk.output.audit)
     print(report(result))
 
 

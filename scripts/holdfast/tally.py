@@ -47,7 +47,7 @@ def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd
             })
     table = pd.DataFrame(rows)
     table["rank"] = 0
-    for metric, part in table.groupby("metric"):
+    for _, part in table.groupby("metric"):
         order = part.assign(_bad=~part["complete"]).sort_values(["_bad", "mean", "candidate"],
                                                                    ascending=[True, False, True])
         table.loc[order.index, "rank"] = np.arange(1, len(order) + 1)

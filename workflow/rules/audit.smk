@@ -9,7 +9,6 @@ rule audit:
     log:
         PLAN.path("logs/audit.log"),
     params:
-        exp=EXP,
         code=code_hash("audit"),
     resources:
         mem_mb=2000,

@@ -12,7 +12,6 @@ if not workflow.overwrite_configfiles:
     workflow.configfile("config/config.yaml")
 
 PLAN = prepare_or_exit(config, main=workflow.is_main_process)
-EXP = str(PLAN.exp)
 LEDGER = PLAN.path("ledger.jsonl")
 SPEC = json.dumps(PLAN.spec, sort_keys=True)  # column roles, task and test partition
 METRICS = json.dumps(PLAN.config["metrics"])

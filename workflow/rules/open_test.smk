@@ -11,7 +11,6 @@ rule open_test:
     log:
         PLAN.path("logs/open_test.log"),
     params:
-        exp=EXP,
         experiment=PLAN.config["experiment"],
         spec=SPEC,
         metrics=METRICS,

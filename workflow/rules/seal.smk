@@ -8,7 +8,6 @@ rule seal:
         PLAN.path("logs/seal.log"),
     params:
         spec=SPEC,
-        exp=EXP,
         experiment=PLAN.config["experiment"],
     resources:
         mem_mb=2000,

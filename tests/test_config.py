@@ -1,0 +1,71 @@
+"""Config validation: schema errors name the key, cross-field errors say the fix."""
+
+from __future__ import annotations
+
+import copy
+from typing import Any
+
+import pytest
+from conftest import REPO, small_classification_config
+from holdfast import config as cfg
+from holdfast.errors import ConfigError
+
+
+def base() -> dict[str, Any]:
+    return small_classification_config()
+
+
+def edit(path: str, value: Any) -> dict[str, Any]:
+    config = copy.deepcopy(base())
+    node = config
+    keys = path.split(".")
+    for key in keys[:-1]:
+        node = node.setdefault(key, {})
+    if value is ...:
+        del node[keys[-1]]
+    else:
+        node[keys[-1]] = value
+    return config
+
+
+@pytest.mark.parametrize(("config", "message"), [
+    (edit("folds.kk", 3), r"config key 'folds.kk' is not known; remove it or use one of: k, repeats, scheme, seed"),
+    (edit("metricz", ["accuracy"]), r"config key 'metricz' is not known"),
+    (edit("data.target", ...), r"config key 'data.target' is required"),
+    (edit("folds.k", 0), r"config key 'folds.k': 0 is less than the minimum of 2"),
+    (edit("folds.k", -3), r"config key 'folds.k'"),
+    (edit("test.fraction", 1.0), r"config key 'test.fraction'"),
+    (edit("test.fraction", 0), r"config key 'test.fraction'"),
+    (edit("folds.scheme", "loo"), r"config key 'folds.scheme': 'loo' is not one of"),
+    (edit("experiment", "../escape"), r"config key 'experiment'"),
+    (edit("experiment", "a/b"), r"config key 'experiment'"),
+    (edit("folds.scheme", "group"), r"'folds.scheme' is 'group' but 'data.group' is not set"),
+    (edit("candidates.bad", {"estimator": "os.system"}), r"'candidates.bad.estimator': 'os.system' is not from an"),
+    (edit("candidates.logistic.params", {"C": 1.0}), r"parameter 'C' is in both params and grid"),
+    (edit("data.group", "target"), r"'data.target' and 'data.group' both name column 'target'"),
+    (edit("task", "clustering"), r"config key 'task'"),
+])
+def test_schema_and_cross_field_errors(config: dict[str, Any], message: str) -> None:
+    with pytest.raises(ConfigError, match=message):
+        cfg.validate(config)
+
+
+def test_defaults_are_filled_from_the_schema() -> None:
+    config = cfg.validate({"experiment": "x", "data": {"path": "d.csv", "target": "y"},
+                           "candidates": {"m": {"estimator": "sklearn.linear_model.Ridge"}}})
+    assert config["test"] == {"fraction": 0.2, "scheme": "hashed", "salt": "holdfast", "reopen_reasons": []}
+    assert config["folds"] == {"scheme": "kfold", "k": 5, "repeats": 1, "seed": 0}
+    assert config["candidates"]["m"]["preprocess"] == {"impute": "median", "scale": "none", "categorical": "onehot"}
+    assert config["allowed_modules"] == ["sklearn"]
+
+
+def test_shipped_configs_are_valid() -> None:
+    for name in ("config.yaml", "regression.yaml"):
+        cfg.load(REPO / "config" / name)
+
+
+def test_unsafe_yaml_tags_are_refused(tmp_path: Any) -> None:
+    path = tmp_path / "c.yaml"
+    path.write_text("experiment: !!python/object/apply:os.system ['echo hi']\n")
+    with pytest.raises(ConfigError, match="is not plain YAML"):
+        cfg.load(path)

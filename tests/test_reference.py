@@ -1,0 +1,116 @@
+"""Checks of the main job against references the project did not write: scikit-learn and scipy."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+from conftest import REPO, run_workflow
+from holdfast import config as cfg
+from holdfast.candidates import build_pipeline, expand
+from holdfast.dataset import split_xy
+from holdfast.scoring import clopper_pearson
+
+
+@pytest.fixture(scope="session")
+def demo_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo experiment exactly as shipped (config/config.yaml on data_demo/shipments.csv), run once."""
+    workdir = tmp_path_factory.mktemp("demo")
+    (workdir / "data_demo").mkdir()
+    shutil.copy(REPO / "data_demo" / "shipments.csv", workdir / "data_demo" / "shipments.csv")
+    shutil.copy(REPO / "config" / "config.yaml", workdir / "config.yaml")
+    result = run_workflow(workdir)
+    assert result.returncode == 0, result.stderr[-3000:]
+    return workdir
+
+
+def assert_ranking_matches_cross_val_score(workdir: Path, config_name: str = "config.yaml") -> int:
+    """For every candidate: ranking mean == mean of sklearn cross_val_score over PredefinedSplit folds."""
+    # Reference implementation: sklearn.model_selection.cross_val_score with PredefinedSplit built from
+    # folds.parquet (scikit-learn user guide, "Cross-validation: evaluating estimator performance").
+    from sklearn.model_selection import PredefinedSplit, cross_val_score
+
+    config = cfg.load(workdir / config_name)
+    exp = workdir / "results" / config["experiment"]
+    dev = pd.read_parquet(exp / "dev.parquet")
+    folds = pd.read_parquet(exp / "folds.parquet")
+    ranking = pd.read_parquet(exp / "ranking.parquet")
+    spec = json.loads(json.dumps(cfg.seal_spec(config)))
+    x, y = split_xy(dev, spec)
+    task = json.loads((exp / "sealed/manifest.json").read_text())["spec"]["task"]
+    config = cfg.with_task(config, task)
+    primary = config["metrics"][0]
+    checked = 0
+    for candidates in expand(config).values():
+        for candidate in candidates:
+            scores: list[float] = []
+            for _, part in folds.groupby("repeat"):
+                fold_of = part.set_index("row_key")["fold"].reindex(dev["row_key"]).to_numpy()
+                pipeline = build_pipeline(candidate, x, 1, ["sklearn"])
+                scores += list(cross_val_score(pipeline, x, y, cv=PredefinedSplit(fold_of), scoring=primary))
+            row = ranking[(ranking["candidate"] == candidate["id"]) & (ranking["metric"] == primary)].iloc[0]
+            assert abs(row["mean"] - np.mean(scores)) <= 1e-12, candidate
+            assert abs(row["sd"] - np.std(scores, ddof=1)) <= 1e-12
+            checked += 1
+    return checked
+
+
+@pytest.mark.slow
+def test_demo_ranking_equals_cross_val_score(demo_finished: Path) -> None:
+    assert assert_ranking_matches_cross_val_score(demo_finished) == 9
+
+
+@pytest.mark.slow
+def test_demo_passes_audit_and_folds_equal_stratified_kfold(demo_finished: Path) -> None:
+    # Reference implementation: sklearn.model_selection.StratifiedKFold(n_splits=k, shuffle=True,
+    # random_state=seed + repeat) on the development rows in stored order.
+    from holdfast.audit import audit
+    from sklearn.model_selection import StratifiedKFold
+
+    exp = demo_finished / "results" / "cold-chain-spoilage"
+    assert audit(str(exp))["passed"]
+    dev = pd.read_parquet(exp / "dev.parquet")
+    folds = pd.read_parquet(exp / "folds.parquet")
+    config = cfg.load(demo_finished / "config.yaml")
+    k, seed = config["folds"]["k"], config["folds"]["seed"]
+    for repeat in range(config["folds"]["repeats"]):
+        ours = folds[folds["repeat"] == repeat].set_index("row_key")["fold"]
+        splitter = StratifiedKFold(n_splits=k, shuffle=True, random_state=seed + repeat)
+        for fold, (_, validation) in enumerate(splitter.split(np.zeros((len(dev), 1)), dev["spoiled"])):
+            assert set(dev["row_key"].iloc[validation]) == set(ours[ours == fold].index)
+
+
+@pytest.mark.slow
+def test_small_run_ranking_equals_cross_val_score(bc_finished: Path) -> None:
+    assert assert_ranking_matches_cross_val_score(bc_finished) == 4
+
+
+@pytest.mark.parametrize(("successes", "trials"), [(0, 10), (10, 10), (7, 10), (1, 1), (431, 500), (2, 143)])
+def test_clopper_pearson_equals_scipy_binomtest(successes: int, trials: int) -> None:
+    # Reference: scipy.stats.binomtest(k, n).proportion_ci(method="exact"), the Clopper-Pearson interval
+    # (Clopper & Pearson, "The use of confidence or fiducial limits illustrated in the case of the binomial",
+    # Biometrika 26(4), 1934).
+    from scipy.stats import binomtest
+
+    reference = binomtest(successes, trials).proportion_ci(confidence_level=0.95, method="exact")
+    low, high = clopper_pearson(successes, trials, 0.95)
+    assert abs(low - reference.low) < 1e-12 and abs(high - reference.high) < 1e-12
+
+
+@pytest.mark.slow
+def test_verdict_accuracy_interval_equals_binomtest(bc_finished: Path) -> None:
+    from scipy.stats import binomtest
+
+    verdict: dict[str, Any] = json.loads((bc_finished / "results/bc/final/verdict.json").read_text())
+    block = verdict["metrics"]["accuracy"]
+    n = verdict["test_rows"]
+    correct = round(block["test"] * n)
+    assert abs(correct - block["test"] * n) < 1e-9
+    reference = binomtest(correct, n).proportion_ci(confidence_level=0.95, method="exact")
+    assert block["interval"] == pytest.approx([reference.low, reference.high], abs=1e-12)
+    assert block["interval_method"].startswith("exact binomial")
