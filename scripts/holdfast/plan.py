@@ -190,13 +190,13 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
     else:
         from .dataset import row_keys
-        from .seal import load_checked, test_mask
+        from .seal import load_checked, sealed_mask
 
         frame, task = load_checked(config["data"]["path"], spec)
         if main:
             keys = row_keys(frame, spec["id"])
             target = frame[spec["target"]] if task == "classification" else None
-            dev = frame[~test_mask(keys, target, {**spec, "task": task})]
+            dev = frame[~sealed_mask(keys, target, {**spec, "task": task})]
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
     config = cfg.with_task(config, task)
     families = expand(config)

@@ -27,7 +27,7 @@ def data_fingerprint(path: str | os.PathLike[str]) -> dict[str, Any]:
     return {"sha256": sha256_file(path), "bytes": stat.st_size, "mtime_ns": stat.st_mtime_ns}
 
 
-def test_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any]) -> np.ndarray:
+def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any]) -> np.ndarray:
     """Boolean mask of the rows that go to the sealed test set."""
     units = hash_unit(keys, spec["salt"])
     fraction = float(spec["fraction"])
@@ -69,7 +69,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     frame, task = load_checked(data_path, spec)
     keys = row_keys(frame, spec.get("id"))
     target = frame[spec["target"]] if task == "classification" else None
-    mask = test_mask(keys, target, spec)
+    mask = sealed_mask(keys, target, spec)
     n_test, n_dev = int(mask.sum()), int((~mask).sum())
     if n_test < 1 or n_dev < 2:
         raise DataError(f"test.fraction {spec['fraction']} leaves {n_test} test and {n_dev} development rows in "

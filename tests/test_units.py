@@ -1,0 +1,160 @@
+"""Package functions without Snakemake: keys, the seal split, candidates, a fit job, the model file."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from conftest import breast_cancer_frame
+from holdfast import ledger
+from holdfast.candidates import build_pipeline, candidate_id, expand_family
+from holdfast.dataset import content_keys, hash_unit, infer_task
+from holdfast.errors import ConfigError, FitError, ModelFileError
+from holdfast.fit import fit_family
+from holdfast.refit import load_model, trusted_types
+from holdfast.seal import sealed_mask
+
+
+def test_candidate_ids_are_stable_and_canonical() -> None:
+    # The id is the first 10 hex digits of SHA-256 over the spec as JSON with sorted keys and no spaces;
+    # the literal pins it: if it changes, every stored experiment's ids change with it.
+    spec = ("sklearn.linear_model.Ridge", {"scale": "standard"}, {"alpha": 1.0})
+    text = json.dumps({"estimator": spec[0], "preprocess": spec[1], "params": spec[2]}, sort_keys=True,
+                      separators=(",", ":"))
+    assert candidate_id(*spec) == hashlib.sha256(text.encode()).hexdigest()[:10] == "e72940042c"
+    assert candidate_id(spec[0], spec[1], {"alpha": 2.0}) != candidate_id(*spec)
+
+
+def test_grid_expansion_merges_fixed_params_with_every_point() -> None:
+    family = {"estimator": "sklearn.svm.SVC", "preprocess": {}, "params": {"kernel": "rbf"},
+              "grid": {"C": [1, 10], "gamma": [0.1, 1.0, 10.0]}}
+    candidates = expand_family("svm", family)
+    assert len(candidates) == 6
+    assert {json.dumps(c["params"], sort_keys=True) for c in candidates} == {
+        json.dumps({"C": c, "gamma": g, "kernel": "rbf"}, sort_keys=True) for c in (1, 10) for g in (0.1, 1.0, 10.0)}
+    assert len({c["id"] for c in candidates}) == 6
+
+
+def test_content_keys_ignore_row_order_and_number_duplicates() -> None:
+    frame = pd.DataFrame({"a": [1.5, 2.0, 1.5], "b": ["x", None, "x"]})
+    keys = content_keys(frame)
+    assert keys.iloc[2] == keys.iloc[0] + "~1"
+    assert content_keys(frame.iloc[[1, 0]].reset_index(drop=True)).tolist() == [keys.iloc[1], keys.iloc[0]]
+
+
+def test_hashed_membership_depends_only_on_key_and_salt() -> None:
+    keys = pd.Series([f"id{i}" for i in range(2000)])
+    spec = {"fraction": 0.2, "scheme": "hashed", "salt": "s"}
+    mask = sealed_mask(keys, None, spec)
+    assert 0.17 < mask.mean() < 0.23
+    grown = pd.concat([keys, pd.Series([f"new{i}" for i in range(500)])], ignore_index=True)
+    assert np.array_equal(sealed_mask(grown, None, spec)[:2000], mask)  # old rows keep their side
+    assert not np.array_equal(sealed_mask(keys, None, {**spec, "salt": "t"}), mask)
+    assert hash_unit(pd.Series(["id0"]), "s")[0] == hash_unit(pd.Series(["id0"]), "s")[0]
+
+
+def test_stratified_test_partition_keeps_class_shares() -> None:
+    keys = pd.Series([f"id{i}" for i in range(1000)])
+    target = pd.Series([1] * 100 + [0] * 900)
+    mask = sealed_mask(keys, target, {"fraction": 0.2, "scheme": "stratified", "salt": "s"})
+    assert mask.sum() == 200 and target[mask].sum() == 20
+
+
+@pytest.mark.parametrize(("values", "task"), [
+    ([0, 1, 1, 0], "classification"), (["a", "b", "a", "a"], "classification"), ([True, False, True], "classification"),
+    ([0.5, 1.25, 3.0, 2.0], "regression"), (list(range(100)), "regression"),
+])
+def test_task_inference(values: list[object], task: str) -> None:
+    assert infer_task(pd.Series(values)) == task
+
+
+def test_preprocessing_is_fitted_on_training_rows_only() -> None:
+    frame = breast_cancer_frame()
+    x = frame.drop(columns=["patient", "target"])
+    train = x.iloc[:300]
+    candidate = {"id": "c", "family": "f", "estimator": "sklearn.linear_model.LogisticRegression",
+                 "preprocess": {"impute": "median", "scale": "standard"}, "params": {"max_iter": 500}}
+    model = build_pipeline(candidate, x, 1, ["sklearn"]).fit(train, frame["target"].iloc[:300])
+    scaler = model.named_steps["prepare"].named_transformers_["numeric"].named_steps["scale"]
+    assert np.allclose(scaler.mean_, train.mean().to_numpy())
+    assert not np.allclose(scaler.mean_, x.mean().to_numpy())
+
+
+def test_text_columns_without_an_encoder_are_refused() -> None:
+    x = pd.DataFrame({"n": [1.0, 2.0], "colour": ["red", "blue"]})
+    candidate = {"id": "c", "family": "f", "estimator": "sklearn.linear_model.Ridge",
+                 "preprocess": {"categorical": "none"}, "params": {}}
+    with pytest.raises(Exception, match=r"feature column 'colour' is not numeric .* preprocess.categorical"):
+        build_pipeline(candidate, x, 1, ["sklearn"])
+
+
+def _fold_inputs(tmp_path: Path) -> tuple[str, str, dict[str, object]]:
+    frame = breast_cancer_frame().rename(columns={"patient": "row_key"})
+    frame.to_parquet(tmp_path / "dev.parquet", index=False)
+    folds = pd.DataFrame({"row_key": frame["row_key"], "repeat": 0, "fold": np.arange(len(frame)) % 3})
+    folds.to_parquet(tmp_path / "folds.parquet", index=False)
+    spec = {"target": "target", "id": None, "group": None, "time": None, "drop": []}
+    return str(tmp_path / "dev.parquet"), str(tmp_path / "folds.parquet"), spec
+
+
+def _family(name: str, params_list: list[dict[str, object]]) -> dict[str, object]:
+    cands = [{"id": f"c{i}", "family": name, "estimator": "sklearn.linear_model.LogisticRegression",
+              "preprocess": {"impute": "median", "scale": "standard"}, "params": p} for i, p in enumerate(params_list)]
+    return {"family": name, "candidates": cands}
+
+
+def test_a_failing_candidate_is_recorded_and_the_family_goes_on(tmp_path: Path) -> None:
+    dev, folds, spec = _fold_inputs(tmp_path)
+    family = _family("lr", [{"max_iter": 300}, {"C": -1.0}])  # C must be positive: this one fails
+    with pytest.warns(UserWarning, match=r"family 'lr' r0f1: 1 candidate\(s\) failed"):
+        fits = fit_family(dev, folds, family, spec, 0, 1, ["accuracy"], "classification", 1, ["sklearn"],
+                          str(tmp_path / "fits.parquet"), str(tmp_path / "oof.parquet"),
+                          str(tmp_path / "ledger.jsonl"))
+    assert fits["status"].tolist() == ["ok", "failed"]
+    assert "C" in fits["error"].iloc[1] and np.isnan(fits["val_accuracy"].iloc[1])
+    assert set(pd.read_parquet(tmp_path / "oof.parquet")["candidate"]) == {"c0"}
+    entry = ledger.read(tmp_path / "ledger.jsonl")[-1]
+    assert entry["event"] == "fit" and entry["details"]["failed"] == 1
+
+
+def test_a_family_where_every_candidate_fails_is_an_error(tmp_path: Path) -> None:
+    dev, folds, spec = _fold_inputs(tmp_path)
+    family = _family("lr", [{"C": -1.0}, {"C": -2.0}])
+    with pytest.raises(FitError, match=r"every candidate of family 'lr' failed on repeat 0, fold 0: 1x .*'C' parameter"):
+        fit_family(dev, folds, family, spec, 0, 0, ["accuracy"], "classification", 1, ["sklearn"],
+                   str(tmp_path / "fits.parquet"), str(tmp_path / "oof.parquet"), str(tmp_path / "ledger.jsonl"))
+    assert not (tmp_path / "fits.parquet").exists()
+
+
+class NotOnTheList:
+    """A type no model file should contain."""
+
+
+def test_model_files_load_only_trusted_types(tmp_path: Path) -> None:
+    import skops.io as sio
+    from sklearn.linear_model import LinearRegression
+
+    good = tmp_path / "good.skops"
+    sio.dump(LinearRegression().fit([[0.0], [1.0]], [0.0, 1.0]), good)
+    assert load_model(str(good)).predict([[2.0]])[0] == pytest.approx(2.0)
+    bad = tmp_path / "bad.skops"
+    sio.dump({"model": NotOnTheList()}, bad)
+    with pytest.raises(ModelFileError, match=r"contains type 'test_units.NotOnTheList', which is not on the trusted"):
+        trusted_types(str(bad))
+    from holdfast._io import sha256_file
+
+    with pytest.raises(ModelFileError, match=r"it was changed after the refit"):
+        load_model(str(good), expected_sha256=sha256_file(bad))
+
+
+def test_estimators_outside_the_allowed_modules_are_refused() -> None:
+    from holdfast.candidates import import_estimator
+
+    with pytest.raises(ConfigError, match=r"'os.path.join' is not from an allowed module"):
+        import_estimator("os.path.join", ["sklearn"])
+    with pytest.raises(ConfigError, match=r"has no class 'Nope'"):
+        import_estimator("sklearn.linear_model.Nope", ["sklearn"])
