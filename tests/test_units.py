@@ -124,7 +124,7 @@ def test_a_failing_candidate_is_recorded_and_the_family_goes_on(tmp_path: Path) 
 def test_a_family_where_every_candidate_fails_is_an_error(tmp_path: Path) -> None:
     dev, folds, spec = _fold_inputs(tmp_path)
     family = _family("lr", [{"C": -1.0}, {"C": -2.0}])
-    with pytest.raises(FitError, match=r"every candidate of family 'lr' failed on repeat 0, fold 0: 1x .*'C' parameter"):
+    with pytest.raises(FitError, match=r"family 'lr' failed on repeat 0, fold 0: 1x .*'C' parameter"):
         fit_family(dev, folds, family, spec, 0, 0, ["accuracy"], "classification", 1, ["sklearn"],
                    str(tmp_path / "fits.parquet"), str(tmp_path / "oof.parquet"), str(tmp_path / "ledger.jsonl"))
     assert not (tmp_path / "fits.parquet").exists()
