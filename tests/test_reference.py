@@ -52,7 +52,8 @@ def assert_ranking_matches_cross_val_score(workdir: Path, config_name: str = "co
             for _, part in folds.groupby("repeat"):
                 fold_of = part.set_index("row_key")["fold"].reindex(dev["row_key"]).to_numpy()
                 pipeline = build_pipeline(candidate, x, 1, ["sklearn"])
-                scores += list(cross_val_score(pipeline, x, y, cv=PredefinedSplit(fold_of), scoring=primary))
+                scores += list(cross_val_score(pipeline, x, y, cv=PredefinedSplit(fold_of), scoring=primary,
+                                               n_jobs=2))
             row = ranking[(ranking["candidate"] == candidate["id"]) & (ranking["metric"] == primary)].iloc[0]
             assert abs(row["mean"] - np.mean(scores)) <= 1e-12, candidate
             assert abs(row["sd"] - np.std(scores, ddof=1)) <= 1e-12

@@ -16,12 +16,21 @@ import pandas as pd
 from . import ledger
 from ._io import read_json, sha256_file, write_json
 from .dataset import KEY, keys_digest
-from .layout import CHOICE, DEV, FOLDS, LEDGER, MANIFEST, MODEL, RANKING, TEST, VERDICT, fit_file
+from .layout import ARCHIVE, CHOICE, DEV, FOLDS, LEDGER, MANIFEST, MODEL, RANKING, TEST, VERDICT, fit_file
 from .ledger import Problem
 
 
 def _sha(path: Path) -> str | None:
     return sha256_file(path) if path.exists() else None
+
+
+def _load(path: Path, reader: Any, code: str, out: list[Problem]) -> Any | None:
+    """Read a file the audit needs; a damaged file is a problem to report, not a crash."""
+    try:
+        return reader(path)
+    except Exception as exc:  # any parse failure means the file is not what the workflow wrote
+        out.append(Problem(code, f"'{path}' cannot be read ({type(exc).__name__}): it was damaged or replaced"))
+        return None
 
 
 def _check_seal(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) -> dict[str, Any] | None:
@@ -31,18 +40,25 @@ def _check_seal(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) ->
     if not (exp / MANIFEST).exists():
         out.append(Problem("manifest-missing", f"'{exp / MANIFEST}' is missing"))
         return None
-    manifest = read_json(exp / MANIFEST)
+    manifest = _load(exp / MANIFEST, read_json, "manifest-edited", out)
+    if not isinstance(manifest, dict) or not isinstance(manifest.get("files"), dict):
+        if manifest is not None:
+            out.append(Problem("manifest-edited", "sealed/manifest.json lacks its file hashes"))
+        return None
     if entries and entries[0].get("hash") != manifest.get("ledger_anchor"):
         out.append(Problem("anchor-mismatch", "the first ledger line is not the seal the manifest anchors: "
                            "the ledger was replaced or its start was rewritten"))
     if seals and seals[0]["details"].get("files") != manifest.get("files"):
         out.append(Problem("manifest-edited", "sealed/manifest.json file hashes differ from the seal's ledger entry"))
+    # The seal's ledger entry is the record; the manifest is only a copy that could be edited.
+    recorded = seals[0]["details"].get("files") if seals else manifest["files"]
+    recorded = recorded if isinstance(recorded, dict) else {}
     test_sha = _sha(exp / TEST)
-    if test_sha != manifest["files"]["test.parquet"]:
+    if test_sha != recorded.get("test.parquet"):
         out.append(Problem("test-changed", f"'{exp / TEST}' is {'missing' if test_sha is None else 'changed'} "
-                           "since the seal (sha256 differs from the manifest)"))
+                           "since the seal (sha256 differs from the seal's record)"))
     dev_sha = _sha(exp / DEV)
-    if dev_sha != manifest["files"]["dev.parquet"]:
+    if dev_sha != recorded.get("dev.parquet"):
         out.append(Problem("dev-changed", f"'{exp / DEV}' is {'missing' if dev_sha is None else 'changed'} "
                            "since the seal"))
     return manifest
@@ -51,17 +67,21 @@ def _check_seal(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) ->
 def _check_split(exp: Path, manifest: dict[str, Any], out: list[Problem]) -> tuple[set[str], set[str]]:
     dev_keys: set[str] = set()
     test_keys: set[str] = set()
+    def keys_of(path: Path) -> set[str]:
+        return set(pd.read_parquet(path, columns=[KEY])[KEY].astype(str))
+
     if (exp / DEV).exists():
-        dev_keys = set(pd.read_parquet(exp / DEV, columns=[KEY])[KEY].astype(str))
+        dev_keys = _load(exp / DEV, keys_of, "dev-changed", out) or set()
     if (exp / TEST).exists():
-        test_keys = set(pd.read_parquet(exp / TEST, columns=[KEY])[KEY].astype(str))
+        test_keys = _load(exp / TEST, keys_of, "test-changed", out) or set()
     overlap = dev_keys & test_keys
     if overlap:
         out.append(Problem("dev-test-overlap", f"{len(overlap)} row key(s) are in both the development and the "
                            f"sealed test set, e.g. {sorted(overlap)[0]!r}"))
-    if dev_keys and keys_digest(dev_keys) != manifest["keys"]["dev_sha256"]:
+    keys = manifest.get("keys") if isinstance(manifest.get("keys"), dict) else {}
+    if dev_keys and keys_digest(dev_keys) != keys.get("dev_sha256"):
         out.append(Problem("dev-keys-changed", "the development row keys differ from those recorded at the seal"))
-    if test_keys and keys_digest(test_keys) != manifest["keys"]["test_sha256"]:
+    if test_keys and keys_digest(test_keys) != keys.get("test_sha256"):
         out.append(Problem("test-keys-changed", "the sealed test row keys differ from those recorded at the seal"))
     return dev_keys, test_keys
 
@@ -74,7 +94,9 @@ def _check_folds(exp: Path, entries: list[dict[str, Any]], dev_keys: set[str], t
         if assigned:
             out.append(Problem("folds-missing", f"'{path}' is missing but the ledger records a fold assignment"))
         return
-    folds = pd.read_parquet(path)
+    folds = _load(path, pd.read_parquet, "folds-changed", out)
+    if folds is None or not {KEY, "repeat", "fold"} <= set(folds.columns):
+        return
     named_test = set(folds[KEY].astype(str)) & test_keys
     if named_test:
         out.append(Problem("fold-names-test-row", f"folds.parquet names {len(named_test)} sealed test row(s), "
@@ -90,7 +112,8 @@ def _check_folds(exp: Path, entries: list[dict[str, Any]], dev_keys: set[str], t
         out.append(Problem("folds-changed", "folds.parquet is not the fold table the ledger recorded"))
     latest: dict[tuple[str, int, int], dict[str, Any]] = {}
     for e in ledger.events(entries, "fit"):
-        latest[(e["details"]["family"], e["details"]["repeat"], e["details"]["fold"])] = e
+        details = e.get("details") or {}
+        latest[(str(details.get("family")), int(details.get("repeat", -1)), int(details.get("fold", -1)))] = e
     stale = [e for e in latest.values() if e["details"].get("folds_sha256") != sha]
     if stale:
         out.append(Problem("fits-on-other-folds", f"{len(stale)} fit job(s) used a fold table other than the current "
@@ -111,7 +134,12 @@ def _check_choice(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) 
         out.append(Problem("choice-changed", "choice.json is not the choice the ledger recorded at the tally"))
     if _sha(exp / RANKING) != (tallies[-1]["details"].get("ranking_sha256") if tallies else None):
         out.append(Problem("ranking-changed", "ranking.parquet is not the ranking the ledger recorded at the tally"))
-    winner = read_json(choice_path)["winner"]["candidate"]
+    choice = _load(choice_path, read_json, "choice-changed", out)
+    try:
+        winner = choice["winner"]["candidate"] if choice is not None else None
+    except (KeyError, TypeError):
+        winner = None
+        out.append(Problem("choice-changed", "choice.json does not name a winner"))
     model = exp / MODEL
     if not refits:
         if model.exists():
@@ -137,8 +165,16 @@ def _check_openings(exp: Path, entries: list[dict[str, Any]], model_sha: str | N
         reasons = [r for e in openings for r in e["details"].get("reasons", [])]
         out.append(Problem("opened-more-than-once", f"the sealed test set was opened {len(openings)} times; "
                            f"the test estimate is compromised (recorded reasons: {reasons or 'none'})"))
+    archived = sorted((exp / ARCHIVE).glob("*.json")) if (exp / ARCHIVE).exists() else []
+    if len(archived) > len(openings):
+        out.append(Problem("opened-more-than-once", f"final/openings holds {len(archived)} verdicts but the ledger "
+                           f"records {len(openings)} opening(s): an opening is missing from the ledger"))
     if openings:
         last = openings[-1]["details"]
+        shown = _load(verdict, read_json, "verdict-changed", out) if verdict.exists() else None
+        if isinstance(shown, dict) and shown.get("opening") != len(openings):
+            out.append(Problem("opened-more-than-once", f"final/verdict.json is opening {shown.get('opening')} but "
+                               f"the ledger records {len(openings)}: an opening is missing from the ledger"))
         if not verdict.exists():
             out.append(Problem("verdict-missing", "the ledger records an opening but final/verdict.json is missing"))
         elif sha256_file(verdict) != last.get("verdict_sha256"):

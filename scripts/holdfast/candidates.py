@@ -62,20 +62,22 @@ def family_payload(name: str, candidates: list[dict[str, Any]]) -> str:
     return canonical_json({"family": name, "candidates": candidates})
 
 
-def import_estimator(path: str, allowed: list[str]) -> type:
+def import_estimator(path: str, allowed: list[str], where: str | None = None) -> type:
     """Import an estimator class by dotted path, only from allowed module prefixes."""
+    key = f"config key '{where}': " if where else ""
     module_name, _, class_name = path.rpartition(".")
     if not any(module_name == p or module_name.startswith(p + ".") for p in allowed):
-        raise ConfigError(f"estimator '{path}' is not from an allowed module ({', '.join(allowed)}); "
+        raise ConfigError(f"{key}estimator '{path}' is not from an allowed module ({', '.join(allowed)}); "
                           "add its module prefix to allowed_modules if you trust it")
     try:
         module = importlib.import_module(module_name)
     except ImportError as exc:
-        raise ConfigError(f"estimator '{path}': module '{module_name}' cannot be imported ({exc}); "
+        raise ConfigError(f"{key}estimator '{path}': module '{module_name}' cannot be imported ({exc}); "
                           "check the import path") from exc
     cls = getattr(module, class_name, None)
     if not isinstance(cls, type):
-        raise ConfigError(f"estimator '{path}': '{module_name}' has no class '{class_name}'; check the import path")
+        raise ConfigError(f"{key}estimator '{path}': '{module_name}' has no class '{class_name}'; "
+                          "check the import path")
     return cls
 
 
@@ -85,8 +87,8 @@ def check_estimators(config: dict[str, Any], families: dict[str, list[dict[str, 
     from sklearn.base import is_classifier, is_regressor
 
     for name, spec in config["candidates"].items():
-        cls = import_estimator(spec["estimator"], allowed)
         where = f"candidates.{name}.estimator"
+        cls = import_estimator(spec["estimator"], allowed, where)
         if not hasattr(cls, "fit") or not hasattr(cls, "get_params"):
             raise ConfigError(f"config key '{where}': '{spec['estimator']}' is not a scikit-learn estimator; "
                               "use a class with fit and get_params")
@@ -106,6 +108,20 @@ def check_estimators(config: dict[str, Any], families: dict[str, list[dict[str, 
                 if param not in known:
                     raise ConfigError(f"config key 'candidates.{name}': '{spec['estimator']}' has no parameter "
                                       f"'{param}'; known parameters: {', '.join(sorted(known))}")
+            _check_values(name, spec["estimator"], cls, cand["params"])
+
+
+def _check_values(family: str, path: str, cls: type, params: dict[str, Any]) -> None:
+    """Let scikit-learn's own parameter validation judge the values, before any data is touched."""
+    try:
+        estimator = cls(**params)
+        validate = getattr(estimator, "_validate_params", None)  # scikit-learn's declared constraints
+        if callable(validate):
+            validate()
+    except (TypeError, ValueError) as exc:
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise ConfigError(f"config key 'candidates.{family}': a value is not accepted by '{path}' ({first}); "
+                          "fix params or grid") from exc
 
 
 def build_pipeline(candidate: dict[str, Any], features: Any, threads: int, allowed: list[str]) -> Any:

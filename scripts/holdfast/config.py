@@ -82,7 +82,12 @@ def _schema_message(error: Any) -> str:
         return f"config key '{where}': {error.instance!r} is not one of {error.validator_value}; use one of them"
     if error.validator == "pattern":
         return (f"config key '{where}': {error.instance!r} does not match {error.validator_value}; "
-                "use letters, digits, '_', '.' and '-' only")
+                "start with a letter, digit or '_' and use only letters, digits, '_', '.' and '-'")
+    bounds = {"minimum": "at least", "exclusiveMinimum": "greater than", "maximum": "at most",
+              "exclusiveMaximum": "less than"}
+    if error.validator in bounds:
+        return (f"config key '{where}': {error.instance!r} is out of range; "
+                f"set it to a number {bounds[error.validator]} {error.validator_value}")
     if error.validator == "propertyNames":
         return (f"config key '{where}': family name {error.instance!r} is not allowed; "
                 "start with a letter and use letters, digits, '_' and '-' (at most 40)")

@@ -132,7 +132,7 @@ def verify_chain(path: str | os.PathLike[str]) -> tuple[list[dict[str, Any]], li
     lines = data.split(b"\n")
     if lines and lines[-1] == b"":
         lines = lines[:-1]
-    prev_hash = GENESIS
+    prev_hash: str | None = GENESIS
     for number, raw in enumerate(lines, start=1):
         try:
             entry = json.loads(raw)
@@ -141,12 +141,13 @@ def verify_chain(path: str | os.PathLike[str]) -> tuple[list[dict[str, Any]], li
         except ValueError:
             if not (number == len(lines) and problems and problems[-1].code == "torn-append"):
                 problems.append(Problem("unreadable-line", f"ledger line {number} is not a JSON object"))
-            break
-        expected_seq = len(entries)
+            prev_hash = None  # the next line's link cannot be checked; later lines still are
+            continue
+        expected_seq = number - 1
         if entry.get("hash") != line_hash(entry):
             problems.append(Problem("edited-line", f"ledger line {number} (seq {entry.get('seq')}, "
                                     f"event {entry.get('event')!r}) does not match its own hash: it was edited"))
-        if entry.get("prev") != prev_hash:
+        if prev_hash is not None and entry.get("prev") != prev_hash:
             problems.append(Problem("broken-link", f"ledger line {number} (seq {entry.get('seq')}) does not link to "
                                     "the line before it: a line was deleted, inserted or reordered"))
         if entry.get("seq") != expected_seq:

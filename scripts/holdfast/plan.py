@@ -190,13 +190,15 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
     else:
         from .dataset import row_keys
-        from .seal import load_checked, sealed_mask
+        from .seal import check_development_classes, load_checked, sealed_mask
 
         frame, task = load_checked(config["data"]["path"], spec)
         if main:
             keys = row_keys(frame, spec["id"])
             target = frame[spec["target"]] if task == "classification" else None
             dev = frame[~sealed_mask(keys, target, {**spec, "task": task})]
+            if task == "classification":
+                check_development_classes(dev[spec["target"]], config["data"]["path"])
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
     config = cfg.with_task(config, task)
     families = expand(config)

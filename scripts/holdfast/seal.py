@@ -45,6 +45,14 @@ def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any])
     raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; use hashed or stratified")
 
 
+def check_development_classes(dev_target: pd.Series, source: str) -> None:
+    """Classification needs at least two classes among the development rows, not only in the data."""
+    if dev_target.nunique() < 2:
+        raise DataError(f"target column '{dev_target.name}' has a single class ({dev_target.iloc[0]!r}) among the "
+                        f"development rows of '{source}' (the others all fell into the test set); use "
+                        "test.scheme: stratified or another test.salt")
+
+
 def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd.DataFrame, str]:
     """Read the data file, check the declared columns and return it with the task."""
     frame = read_table(path)
@@ -74,6 +82,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     if n_test < 1 or n_dev < 2:
         raise DataError(f"test.fraction {spec['fraction']} leaves {n_test} test and {n_dev} development rows in "
                         f"'{data_path}'; choose a fraction that leaves rows on both sides")
+    if task == "classification":
+        check_development_classes(frame[spec["target"]][~mask], str(data_path))
     keyed = frame.copy()
     keyed.insert(0, KEY, keys.to_numpy())
     test, dev = keyed[mask].reset_index(drop=True), keyed[~mask].reset_index(drop=True)

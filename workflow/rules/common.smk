@@ -55,3 +55,13 @@ def all_targets():
         PLAN.path("final/verdict.json"),
         PLAN.path("audit.json"),
     ]
+
+
+onsuccess:
+    # One closing line: where the audit stands (the audit rule writes it; the run never hides a failure).
+    audit_path = Path(PLAN.path("audit.json"))
+    if audit_path.exists():
+        result = json.loads(audit_path.read_text())
+        state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
+        print(f"holdfast: experiment '{PLAN.config['experiment']}': audit {state} "
+              f"(test set opened {result['test_set_opened']} time(s)); details: holdfast audit {PLAN.exp}")
