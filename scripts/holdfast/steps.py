@@ -1,9 +1,10 @@
-"""Adapters from Snakemake's injected ``snakemake`` object to the package functions.
+"""Adapters from a Snakemake job's named fields to the package functions.
 
-Each rule runs ``workflow/scripts/step.py``, which calls :func:`run`. The adapter sends
-output to the rule's log before any heavy import, reads named inputs, outputs and
-params, and calls exactly one package function. A holdfast error becomes one line in
-the log and on stderr, and the job's exit code.
+Every rule's body is ``run_step(...)`` (workflow/rules/common.smk), which calls :func:`run`
+with the job's input, output, params, wildcards, threads, log and rule name. The adapter
+sends output to the rule's log before any heavy import, reads named fields and calls
+exactly one package function. A holdfast error becomes one line in the log and on
+stderr, and the job's exit code.
 """
 
 from __future__ import annotations

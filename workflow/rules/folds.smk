@@ -16,5 +16,5 @@ rule assign_folds:
     resources:
         mem_mb=2000,
         runtime=30,
-    script:
-        STEP
+    run:
+        run_step(input, output, params, wildcards, threads, log, rule)

@@ -17,5 +17,5 @@ rule refit_winner:
     resources:
         mem_mb=4000,
         runtime=60,
-    script:
-        STEP
+    run:
+        run_step(input, output, params, wildcards, threads, log, rule)

@@ -20,5 +20,5 @@ rule tally:
     resources:
         mem_mb=2000,
         runtime=30,
-    script:
-        STEP
+    run:
+        run_step(input, output, params, wildcards, threads, log, rule)
