@@ -133,7 +133,7 @@ def check_target_for_task(target: pd.Series, task: str, source: str) -> None:
     """A classification target needs two classes or more; a regression target must be numeric."""
     if task == "classification":
         if target.nunique() < 2:
-            raise DataError(f"target column '{target.name}' has a single class ({target.iloc[0]!r}) in '{source}'; "
+            raise DataError(f"target column '{target.name}' has a single class ('{target.iloc[0]}') in '{source}'; "
                             "classification needs at least two")
     elif not pd.api.types.is_numeric_dtype(target):
         raise DataError(f"target column '{target.name}' is not numeric in '{source}' but task is regression; "

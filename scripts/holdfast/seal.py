@@ -48,7 +48,7 @@ def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any])
 def check_development_classes(dev_target: pd.Series, source: str) -> None:
     """Classification needs at least two classes among the development rows, not only in the data."""
     if dev_target.nunique() < 2:
-        raise DataError(f"target column '{dev_target.name}' has a single class ({dev_target.iloc[0]!r}) among the "
+        raise DataError(f"target column '{dev_target.name}' has a single class ('{dev_target.iloc[0]}') among the "
                         f"development rows of '{source}' (the others all fell into the test set); use "
                         "test.scheme: stratified or another test.salt")
 

@@ -1,0 +1,399 @@
+"""Bad configs and bad data stop the real workflow with one 'holdfast:' line and leave results/ untouched."""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pytest
+import yaml
+from conftest import breast_cancer_frame, run_workflow, tree_digest, write_config
+from holdfast.dataset import hash_unit
+
+Edit = Callable[[Path, dict[str, Any]], None]
+CONFIG_ERROR, DATA_ERROR = 2, 3
+FRESH = "fresh"
+
+
+# --- helpers -------------------------------------------------------------------------------------------------------
+
+def use_data(workdir: Path, config: dict[str, Any], frame: pd.DataFrame) -> None:
+    """Write ``frame`` as the data file of a new experiment, so the case exercises a fresh seal."""
+    frame.to_csv(workdir / "bad.csv", index=False)
+    config["experiment"] = FRESH
+    config["data"]["path"] = "bad.csv"
+
+
+def snapshot(root: Path) -> tuple[dict[str, str], list[str]]:
+    """Every file's sha256 and every path (folders too) under ``root``, to prove nothing was written."""
+    paths = sorted(str(p.relative_to(root)) for p in root.rglob("*")) if root.exists() else []
+    return tree_digest(root), paths
+
+
+def last_stderr_line(stderr: str) -> str:
+    """The last non-empty line of a run's stderr: the one line a user reads."""
+    lines = [line for line in stderr.splitlines() if line.strip()]
+    return lines[-1] if lines else ""
+
+
+# --- cases: each edits the config dict and/or writes a data file ----------------------------------------------------
+
+def missing_data_file(workdir: Path, config: dict[str, Any]) -> None:
+    """A new experiment whose data file does not exist."""
+    config["experiment"] = FRESH
+    config["data"]["path"] = "no_such_file.csv"
+
+
+def sealed_data_file_deleted(workdir: Path, config: dict[str, Any]) -> None:
+    """The sealed experiment's data file was deleted."""
+    (workdir / "data.csv").unlink()
+
+
+def missing_target_column(workdir: Path, config: dict[str, Any]) -> None:
+    """data.target names a column the file does not have."""
+    config["experiment"] = FRESH
+    config["data"]["target"] = "diagnosis"
+
+
+def target_with_missing_values(workdir: Path, config: dict[str, Any]) -> None:
+    """Two rows have no target value."""
+    frame = breast_cancer_frame().astype({"target": "float64"})
+    frame.loc[[3, 7], "target"] = np.nan
+    use_data(workdir, config, frame)
+
+
+def unknown_fold_key(workdir: Path, config: dict[str, Any]) -> None:
+    """A misspelt key inside folds."""
+    config["folds"]["kk"] = 3
+
+
+def unknown_top_level_key(workdir: Path, config: dict[str, Any]) -> None:
+    """'metric' instead of 'metrics' at the top level."""
+    config["metric"] = config.pop("metrics")
+
+
+def unknown_family_key(workdir: Path, config: dict[str, Any]) -> None:
+    """A misspelt key inside one candidate family."""
+    config["candidates"]["logistic"]["grdi"] = config["candidates"]["logistic"].pop("grid")
+
+
+def k_above_smallest_class(workdir: Path, config: dict[str, Any]) -> None:
+    """Stratified 10-fold on data where one class has only eight rows (some of them sealed away)."""
+    frame = breast_cancer_frame()
+    rare = frame[frame["target"] == 0].head(8)
+    use_data(workdir, config, pd.concat([frame[frame["target"] == 1], rare]))
+    config["folds"]["k"] = 10
+
+
+def estimator_os_system(workdir: Path, config: dict[str, Any]) -> None:
+    """An estimator path that would run a shell command."""
+    config["candidates"]["logistic"]["estimator"] = "os.system"
+
+
+def estimator_outside_sklearn(workdir: Path, config: dict[str, Any]) -> None:
+    """An estimator from a module that is not allowed."""
+    config["candidates"]["tree"]["estimator"] = "numpy.linalg.Foo"
+
+
+def estimator_class_missing(workdir: Path, config: dict[str, Any]) -> None:
+    """A misspelt class name in an allowed module."""
+    config["candidates"]["logistic"]["estimator"] = "sklearn.linear_model.LogisticRegresion"
+
+
+def estimator_module_missing(workdir: Path, config: dict[str, Any]) -> None:
+    """A misspelt module name under sklearn."""
+    config["candidates"]["logistic"]["estimator"] = "sklearn.linear_modle.LogisticRegression"
+
+
+def estimator_wrong_task(workdir: Path, config: dict[str, Any]) -> None:
+    """A regressor among classification candidates."""
+    config["candidates"]["logistic"]["estimator"] = "sklearn.linear_model.Ridge"
+    config["candidates"]["logistic"]["grid"] = {"alpha": [0.1, 1.0]}
+    config["candidates"]["logistic"]["params"] = {}
+
+
+def unknown_scorer(workdir: Path, config: dict[str, Any]) -> None:
+    """A misspelt scorer name."""
+    config["metrics"] = ["acuracy", "roc_auc"]
+
+
+def scorer_for_other_task(workdir: Path, config: dict[str, Any]) -> None:
+    """A regression scorer on a classification task."""
+    config["metrics"] = ["accuracy", "r2"]
+
+
+def unknown_parameter(workdir: Path, config: dict[str, Any]) -> None:
+    """A fixed parameter the estimator does not have."""
+    config["candidates"]["logistic"]["params"] = {"max_iters": 500}
+
+
+def unknown_grid_parameter(workdir: Path, config: dict[str, Any]) -> None:
+    """A grid parameter the estimator does not have."""
+    config["candidates"]["tree"]["grid"] = {"depth": [2, 4]}
+
+
+def fraction_above_one(workdir: Path, config: dict[str, Any]) -> None:
+    """test.fraction outside (0, 1), above."""
+    config["test"]["fraction"] = 1.5
+
+
+def fraction_zero(workdir: Path, config: dict[str, Any]) -> None:
+    """test.fraction outside (0, 1), at zero."""
+    config["test"]["fraction"] = 0
+
+
+def k_zero(workdir: Path, config: dict[str, Any]) -> None:
+    """folds.k of zero."""
+    config["folds"]["k"] = 0
+
+
+def k_negative(workdir: Path, config: dict[str, Any]) -> None:
+    """folds.k below zero."""
+    config["folds"]["k"] = -3
+
+
+def experiment_with_separator(workdir: Path, config: dict[str, Any]) -> None:
+    """An experiment name that would write outside results/ through a path separator."""
+    config["experiment"] = "../escape"
+
+
+def experiment_with_subfolder(workdir: Path, config: dict[str, Any]) -> None:
+    """An experiment name with a '/' in it."""
+    config["experiment"] = "team/bc"
+
+
+def experiment_dotdot(workdir: Path, config: dict[str, Any]) -> None:
+    """The experiment name '..' (results/.. is the work folder)."""
+    config["experiment"] = ".."
+
+
+def duplicate_ids(workdir: Path, config: dict[str, Any]) -> None:
+    """Two rows share one id."""
+    frame = breast_cancer_frame()
+    frame.loc[1, "patient"] = frame.loc[0, "patient"]
+    use_data(workdir, config, frame)
+
+
+def missing_ids(workdir: Path, config: dict[str, Any]) -> None:
+    """One row has no id."""
+    frame = breast_cancer_frame()
+    frame.loc[5, "patient"] = None
+    use_data(workdir, config, frame)
+
+
+def group_with_nulls(workdir: Path, config: dict[str, Any]) -> None:
+    """Group folds on a group column with three empty cells."""
+    frame = breast_cancer_frame()
+    frame["clinic"] = [f"C{i % 12}" for i in range(len(frame))]
+    frame.loc[[2, 40, 99], "clinic"] = None
+    use_data(workdir, config, frame)
+    config["data"]["group"] = "clinic"
+    config["folds"]["scheme"] = "group"
+
+
+def infinite_feature(workdir: Path, config: dict[str, Any]) -> None:
+    """One feature cell is infinite."""
+    frame = breast_cancer_frame()
+    frame.loc[10, "mean_radius"] = np.inf
+    use_data(workdir, config, frame)
+
+
+def grid_above_max_candidates(workdir: Path, config: dict[str, Any]) -> None:
+    """A 30-point grid (32 candidates in all) against max_candidates 20."""
+    config["candidates"]["logistic"]["grid"] = {"C": [round(0.01 * 1.3**i, 6) for i in range(30)]}
+    config["max_candidates"] = 20
+
+
+def group_scheme_without_group(workdir: Path, config: dict[str, Any]) -> None:
+    """Group folds but no data.group."""
+    config["folds"]["scheme"] = "group"
+
+
+def drop_names_missing_column(workdir: Path, config: dict[str, Any]) -> None:
+    """data.drop lists a column the file does not have."""
+    config["experiment"] = FRESH
+    config["data"]["drop"] = ["worst_radiuss"]
+
+
+def semicolon_csv(workdir: Path, config: dict[str, Any]) -> None:
+    """A data file saved with ';' as the delimiter."""
+    breast_cancer_frame().to_csv(workdir / "bad.csv", index=False, sep=";")
+    config["experiment"] = FRESH
+    config["data"]["path"] = "bad.csv"
+
+
+def class_only_in_test(workdir: Path, config: dict[str, Any]) -> None:
+    """Every row of one class hashes into the sealed test set, so development rows have a single class."""
+    frame = breast_cancer_frame()
+    sealed = hash_unit(frame["patient"], config["test"]["salt"]) < config["test"]["fraction"]
+    rare = frame[(frame["target"] == 0) & sealed].head(3)
+    use_data(workdir, config, pd.concat([frame[frame["target"] == 1], rare]))
+
+
+def invalid_parameter_value(workdir: Path, config: dict[str, Any]) -> None:
+    """A parameter value of the wrong type for the estimator (in a new experiment)."""
+    config["experiment"] = FRESH
+    config["candidates"]["tree"]["params"]["min_samples_leaf"] = "many"
+
+
+# --- the table ---------------------------------------------------------------------------------------------------
+
+CASES = [
+    pytest.param(missing_data_file, DATA_ERROR,
+                 r"data file 'no_such_file\.csv' does not exist; check data\.path", id="data-file-missing"),
+    pytest.param(sealed_data_file_deleted, DATA_ERROR,
+                 r"data file 'data\.csv' of sealed experiment 'bc' does not exist; restore it .*or name a new "
+                 r"experiment", id="sealed-data-file-deleted"),
+    pytest.param(missing_target_column, DATA_ERROR,
+                 r"column 'diagnosis' \(data\.target\) is not in 'data\.csv'; columns there are: patient, ",
+                 id="target-column-missing"),
+    pytest.param(target_with_missing_values, DATA_ERROR,
+                 r"target column 'target' has 2 missing value\(s\) in 'bad\.csv'; drop or fill those rows",
+                 id="target-missing-values"),
+    pytest.param(unknown_fold_key, CONFIG_ERROR,
+                 r"config key 'folds\.kk' is not known; remove it or use one of: k, repeats, scheme, seed",
+                 id="misspelt-fold-key"),
+    pytest.param(unknown_top_level_key, CONFIG_ERROR,
+                 r"config key 'metric' is not known; remove it or use one of: .*\bmetrics\b", id="misspelt-top-key"),
+    pytest.param(unknown_family_key, CONFIG_ERROR,
+                 r"config key 'candidates\.logistic\.grdi' is not known; remove it or use one of: .*\bgrid\b",
+                 id="misspelt-family-key"),
+    pytest.param(k_above_smallest_class, CONFIG_ERROR,
+                 r"config key 'folds\.k' is 10 but class '?0'? of 'target' has only \d development rows; "
+                 r"lower folds\.k to at most \d or use folds\.scheme: kfold", id="k-above-smallest-class"),
+    pytest.param(estimator_os_system, CONFIG_ERROR,
+                 r"config key 'candidates\.logistic\.estimator': 'os\.system' is not from an allowed module "
+                 r"\(sklearn\); use a scikit-learn estimator or add its module prefix to allowed_modules",
+                 id="estimator-os-system"),
+    pytest.param(estimator_outside_sklearn, CONFIG_ERROR,
+                 r"config key 'candidates\.tree\.estimator': 'numpy\.linalg\.Foo' is not from an allowed module",
+                 id="estimator-numpy"),
+    pytest.param(estimator_class_missing, CONFIG_ERROR,
+                 r"estimator 'sklearn\.linear_model\.LogisticRegresion': 'sklearn\.linear_model' has no class "
+                 r"'LogisticRegresion'; check the import path", id="estimator-class-missing"),
+    pytest.param(estimator_class_missing, CONFIG_ERROR,
+                 r"config key 'candidates\.logistic\.estimator'.*'LogisticRegresion'", id="estimator-error-names-key"),
+    pytest.param(estimator_module_missing, CONFIG_ERROR,
+                 r"estimator 'sklearn\.linear_modle\.LogisticRegression': module 'sklearn\.linear_modle' cannot be "
+                 r"imported .*; check the import path", id="estimator-module-missing"),
+    pytest.param(estimator_wrong_task, CONFIG_ERROR,
+                 r"config key 'candidates\.logistic\.estimator': 'sklearn\.linear_model\.Ridge' is not a classifier "
+                 r"but the task is classification; choose a matching estimator", id="estimator-wrong-task"),
+    pytest.param(unknown_scorer, CONFIG_ERROR,
+                 r"config key 'metrics\[0\]': 'acuracy' is not a scikit-learn scorer name.*; see "
+                 r"sklearn\.metrics\.get_scorer_names\(\)", id="scorer-unknown"),
+    pytest.param(scorer_for_other_task, CONFIG_ERROR,
+                 r"config key 'metrics\[1\]': 'r2' is a regression metric but the task is classification; "
+                 r"choose a metric for this task", id="scorer-wrong-task"),
+    pytest.param(unknown_parameter, CONFIG_ERROR,
+                 r"config key 'candidates\.logistic': 'sklearn\.linear_model\.LogisticRegression' has no parameter "
+                 r"'max_iters'; known parameters: .*\bmax_iter\b", id="parameter-unknown"),
+    pytest.param(unknown_grid_parameter, CONFIG_ERROR,
+                 r"config key 'candidates\.tree': 'sklearn\.tree\.DecisionTreeClassifier' has no parameter 'depth'; "
+                 r"known parameters: .*\bmax_depth\b", id="grid-parameter-unknown"),
+    pytest.param(fraction_above_one, CONFIG_ERROR,
+                 r"config key 'test\.fraction': 1\.5 is out of range; set it to a number less than 1",
+                 id="fraction-above-one"),
+    pytest.param(fraction_zero, CONFIG_ERROR,
+                 r"config key 'test\.fraction': 0 is out of range; set it to a number greater than 0",
+                 id="fraction-zero"),
+    pytest.param(k_zero, CONFIG_ERROR, r"config key 'folds\.k': 0 is out of range; set it to a number at least 2",
+                 id="k-zero"),
+    pytest.param(k_negative, CONFIG_ERROR, r"config key 'folds\.k': -3 is out of range; set it to a number at "
+                 r"least 2", id="k-negative"),
+    pytest.param(experiment_with_separator, CONFIG_ERROR,
+                 r"config key 'experiment': '\.\./escape' does not match .*; start with a letter, digit or '_'",
+                 id="experiment-parent-path"),
+    pytest.param(experiment_with_subfolder, CONFIG_ERROR,
+                 r"config key 'experiment': 'team/bc' does not match .*; start with a letter, digit or '_'",
+                 id="experiment-separator"),
+    pytest.param(experiment_dotdot, CONFIG_ERROR, r"config key 'experiment': '\.\.' does not match ",
+                 id="experiment-dotdot"),
+    pytest.param(duplicate_ids, DATA_ERROR,
+                 r"id column 'patient' has 1 duplicate value\(s\) \(e\.g\. 'P0000'\); make ids unique or unset "
+                 r"data\.id", id="ids-duplicate"),
+    pytest.param(missing_ids, DATA_ERROR,
+                 r"id column 'patient' is empty in 1 row\(s\) \(first at data row 6\); fill every id or unset data\.id",
+                 id="ids-missing"),
+    pytest.param(group_with_nulls, DATA_ERROR,
+                 r"group column 'clinic' has 3 missing value\(s\) in 'bad\.csv'; give every row a group",
+                 id="group-nulls"),
+    pytest.param(infinite_feature, DATA_ERROR,
+                 r"feature column 'mean_radius' has 1 infinite value\(s\) in 'bad\.csv'; replace them with finite "
+                 r"values or blanks", id="feature-infinite"),
+    pytest.param(grid_above_max_candidates, CONFIG_ERROR,
+                 r"the candidate grids expand to 32 candidates, more than max_candidates \(20\); shrink the grids or "
+                 r"raise max_candidates", id="grid-above-max-candidates"),
+    pytest.param(group_scheme_without_group, CONFIG_ERROR,
+                 r"config key 'folds\.scheme' is 'group' but 'data\.group' is not set; name the group column in "
+                 r"data\.group or choose another scheme", id="group-scheme-without-group"),
+    pytest.param(drop_names_missing_column, DATA_ERROR,
+                 r"column 'worst_radiuss' \(data\.drop\) is not in 'data\.csv'", id="drop-column-missing"),
+    pytest.param(semicolon_csv, DATA_ERROR,
+                 r"data file 'bad\.csv' has a single column .*another delimiter than ',' was used: save it as "
+                 r"comma-separated CSV or as Parquet", id="csv-semicolon"),
+    pytest.param(class_only_in_test, DATA_ERROR,
+                 r"target column 'target' has a single class \('1'\) among the development rows of 'bad\.csv'.*"
+                 r"use test\.scheme: stratified", id="class-only-in-test"),
+    pytest.param(invalid_parameter_value, CONFIG_ERROR,
+                 r"config key 'candidates\.tree': a value is not accepted by .*'min_samples_leaf'.*fix params",
+                 id="parameter-value-invalid"),
+]
+# Through the real Snakemake as well (each costs a full start-up): the issue's acceptance list plus
+# one case per error class and per place the check happens.
+REAL_RUN = {"missing-data-file", "target-column-missing", "target-missing-values", "misspelt-fold-key",
+            "k-above-smallest-class", "estimator-os-system", "scorer-unknown",
+            "class-only-in-test", "parameter-value-invalid", "experiment-parent-path", "sealed-data-file-deleted"}
+
+
+def prepared_case(workdir: Path, edit: Edit) -> dict[str, Any]:
+    """The finished experiment's config with one case's edit applied (and written to config.yaml)."""
+    config = yaml.safe_load((workdir / "config.yaml").read_text(encoding="utf-8"))
+    edit(workdir, config)
+    write_config(workdir, config)
+    return config
+
+
+@pytest.mark.parametrize(("edit", "exit_code", "pattern"), CASES)
+def test_bad_input_is_refused_before_any_work(bc_copy: Path, monkeypatch: pytest.MonkeyPatch, edit: Edit,
+                                              exit_code: int, pattern: str) -> None:
+    """Every case, through the parse-time checks the Snakefile runs (holdfast.plan.prepare), in-process."""
+    from holdfast.errors import HoldfastError
+    from holdfast.plan import prepare
+
+    config = prepared_case(bc_copy, edit)
+    before = snapshot(bc_copy / "results")
+    monkeypatch.chdir(bc_copy)
+    with pytest.raises(HoldfastError) as caught:
+        prepare(config, main=True)
+    line = caught.value.format_message()
+    assert "\n" not in line and line.startswith("holdfast:")
+    assert re.search(pattern, line), line
+    assert caught.value.exit_code == exit_code, line
+    assert snapshot(bc_copy / "results") == before
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(("edit", "exit_code", "pattern"), [c for c in CASES if c.id in REAL_RUN])
+def test_bad_input_stops_the_real_workflow_with_one_line(bc_copy: Path, edit: Edit, exit_code: int,
+                                                         pattern: str) -> None:
+    """A representative subset through the real Snakemake: one stderr line, exit code, results/ untouched."""
+    prepared_case(bc_copy, edit)
+    results = bc_copy / "results"
+    before = snapshot(results)
+    assert before[0], "the finished experiment must be there to protect"
+
+    result = run_workflow(bc_copy)
+
+    last = last_stderr_line(result.stderr)
+    assert result.returncode != 0, result.stderr[-3000:]
+    assert last.startswith("holdfast:"), result.stderr[-3000:]
+    assert re.search(pattern, last), last
+    assert result.returncode == exit_code, last
+    assert "Traceback" not in result.stderr, result.stderr[-3000:]
+    assert snapshot(results) == before, "a bad input must not write under results/"
+    assert not (bc_copy / "escape").exists() and not (bc_copy / "results" / "team").exists()
