@@ -16,7 +16,8 @@ What each function estimates:
   :func:`optimism_summary` puts both beside the raw figure.
 
 The frame helpers :func:`fold_score_matrix`, :func:`fold_sizes` and :func:`oof_arrays` turn the
-stored ``fits`` and ``oof`` tables into the arrays these functions take.
+stored ``fits`` and ``oof`` tables into the arrays these functions take; :func:`sklearn_scorer`
+turns a scorer name into a BBC scorer (vectorised for the common metrics).
 """
 
 from __future__ import annotations
@@ -284,7 +285,7 @@ def one_standard_error_choice(summary: pd.DataFrame, primary_best_id: str, compl
     # Breiman, Friedman, Olshen & Stone, Classification and Regression Trees (1984), the 1-SE rule for pruning;
     # Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed. (2009), §7.10 (7.10.1):
     # "choose the most parsimonious model whose error is no more than one standard error above the error of
-    # the best model" -- with scores, no more than one SE *below* the best mean.
+    # the best model" (wording from memory) -- with scores, no more than one SE *below* the best mean.
     for column in ("candidate", "mean", se_column):
         if column not in summary.columns:
             raise ValueError(f"summary has no column '{column}'; pass one row per candidate with candidate, "
@@ -664,7 +665,7 @@ def replay_scorer(name: str, task: str, classes: Sequence[Any] | None = None) ->
 # Bootstrap bias-corrected CV (Tsamardinos, Greasidou & Borboudakis 2018)
 # ---------------------------------------------------------------------------------------------
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class BBCEstimate:
     """Bootstrap bias-corrected CV estimate of the selected candidate's score."""
 

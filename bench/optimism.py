@@ -1,0 +1,178 @@
+"""Benchmark (not a test): how optimistic is the winner's CV error, and do the two corrections fix it?
+
+Simulation with known truth. Each of M candidates predicts every row correctly with its own fixed
+probability, independently across rows and candidates, so its true error rate is known exactly.
+Rows are split at random into k equal folds; a candidate's per-fold error is the mean of its
+errors on that fold, its CV estimate the mean over folds, and the winner is the candidate with
+the lowest CV error (``holdfast.stats.best_by_mean`` on accuracy). Per replication we record:
+
+- truth: the winner's true error rate,
+- raw: the winner's CV error (optimistic: it was picked *because* it looked best),
+- T&T: ``holdfast.stats.tibshirani_bias`` corrected error, for k = 10 and k = 5 on the same rows,
+- BBC: ``holdfast.stats.bbc_cv`` corrected error from the pooled out-of-fold predictions,
+
+and report their means and mean biases (estimate − truth, error-rate units, ± one standard error
+of that mean over replications). Scenario "equal": every candidate has error 0.30. Scenario
+"one better": candidate 0 has error 0.25, the rest 0.30.
+
+Targets (issue 3): BBC mean bias within ±0.01 for every M, and both corrections closer to the
+truth than the raw estimate. The script prints whether each is met; it does not tune anything.
+
+Reading the table (our diagnosis, checked against the printed shares): T&T takes each fold's
+maximum over candidates, and a fold's scores are noisier than the CV means (n/k rows instead of
+n), so with independent candidates it over-corrects more as k grows; BBC re-selects on bootstrap
+resamples, which are noisier than the full CV, so when one candidate is genuinely better BBC's
+selections find it less often than CV does and the estimate leans pessimistic.
+
+Run:  PYTHONPATH=scripts python bench/optimism.py            (≈ 1–2 minutes on 2 cores)
+      PYTHONPATH=scripts python bench/optimism.py --reps 100 (quicker, noisier)
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from pathlib import Path
+
+os.environ.setdefault("OMP_NUM_THREADS", "1")  # one BLAS thread per worker process
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
+
+import numpy as np  # imported after the thread settings above
+from holdfast.stats import accuracy_scorer, bbc_cv, tibshirani_bias
+
+SCENARIOS = {
+    "equal": lambda m: np.full(m, 0.30),
+    "one better": lambda m: np.r_[0.25, np.full(m - 1, 0.30)],
+}
+FOLD_COUNTS = (10, 5)  # the first is the headline T&T column
+
+
+def replicate(errors: np.ndarray, rows: int, draws: int, rng: np.random.Generator) -> dict[str, float]:
+    """One simulated data set: CV, the winner, its true error and the three estimates (error units)."""
+    m = errors.size
+    y = rng.integers(0, 2, rows)
+    correct = rng.random((rows, m)) >= errors  # row i right for candidate j with probability 1 − errors[j]
+    predictions = np.where(correct, y[:, None], 1 - y[:, None])
+    order = rng.permutation(rows)
+    out: dict[str, float] = {}
+    for k in FOLD_COUNTS:
+        fold_of = np.empty(rows, dtype=np.intp)
+        fold_of[order] = np.arange(rows) % k  # k folds of equal size (rows divisible by k)
+        fold_accuracy = np.stack([correct[fold_of == f].mean(axis=0) for f in range(k)])  # k × M
+        tt = tibshirani_bias(fold_accuracy)
+        out[f"tt{k}"] = 1.0 - tt.corrected
+        if k == FOLD_COUNTS[0]:
+            winner = int(tt.winner)
+            out["raw"] = 1.0 - tt.raw
+            out["truth"] = float(errors[winner])
+            out["won_best"] = float(errors[winner] == errors.min())
+    by_candidate = {f"c{j:02d}": predictions[:, j] for j in range(m)}
+    bbc = bbc_cv(by_candidate, y, accuracy_scorer(), draws=draws, seed=int(rng.integers(2**31)))
+    out["bbc"] = 1.0 - bbc.estimate
+    best = [f"c{j:02d}" for j in np.flatnonzero(errors == errors.min())]
+    out["bbc_won_best"] = sum(bbc.wins.get(name, 0) for name in best) / bbc.draws  # share of draws
+    return out
+
+
+def run_cell(scenario: str, m: int, reps: int, rows: int, draws: int, seed: int) -> tuple[str, int, dict]:
+    """All replications of one (scenario, M); seeded from (seed, scenario, M) so job order does not matter."""
+    index = list(SCENARIOS).index(scenario)
+    rng = np.random.default_rng(np.random.SeedSequence([seed, index, m]))
+    errors = SCENARIOS[scenario](m)
+    results = [replicate(errors, rows, draws, rng) for _ in range(reps)]
+    columns = {key: np.array([r[key] for r in results]) for key in results[0]}
+    return scenario, m, columns
+
+
+def summarise(columns: dict[str, np.ndarray]) -> dict[str, float]:
+    truth = columns["truth"]
+    out = {"truth": truth.mean(), "won_best": columns["won_best"].mean(),
+           "bbc_won_best": columns["bbc_won_best"].mean()}
+    for key in ("raw", *(f"tt{k}" for k in FOLD_COUNTS), "bbc"):
+        bias = columns[key] - truth
+        out[key] = columns[key].mean()
+        out[f"{key}_bias"] = bias.mean()
+        out[f"{key}_se"] = bias.std(ddof=1) / np.sqrt(bias.size)
+    return out
+
+
+def _bias(cell: dict[str, float], key: str) -> str:
+    return f"{cell[key + '_bias']:+.4f} ±{cell[key + '_se']:.4f}"
+
+
+def print_table(scenario: str, cells: dict[int, dict[str, float]], reps: int, rows: int, draws: int) -> list[str]:
+    k0, k1 = FOLD_COUNTS
+    print(f"\nScenario '{scenario}': {reps} replications, {rows} rows, {k0}-fold CV, BBC {draws} draws; "
+          "error-rate units; bias = estimate − winner's true error (± 1 SE over replications)")
+    header = (f"{'M':>3} {'true err':>8} {'raw':>7} {'raw bias':>16} {f'T&T k={k0}':>9} {'T&T bias':>16} "
+              f"{'BBC':>7} {'BBC bias':>16} {f'T&T k={k1} bias':>16}  targets")
+    print(header)
+    print("-" * len(header))
+    misses = []
+    for m, s in sorted(cells.items()):
+        bbc_ok = abs(s["bbc_bias"]) <= 0.01
+        tt_ok = abs(s[f"tt{k0}_bias"]) < abs(s["raw_bias"])
+        bbc_closer = abs(s["bbc_bias"]) < abs(s["raw_bias"])
+        flags = (f"BBC±.01 {'yes' if bbc_ok else 'NO'}; closer: T&T {'yes' if tt_ok else 'NO'}, "
+                 f"BBC {'yes' if bbc_closer else 'NO'}")
+        if not (bbc_ok and tt_ok and bbc_closer):
+            misses.append(f"{scenario}, M={m}: {flags}")
+        print(f"{m:>3} {s['truth']:8.4f} {s['raw']:7.4f} {_bias(s, 'raw'):>16} {s[f'tt{k0}']:9.4f} "
+              f"{_bias(s, f'tt{k0}'):>16} {s['bbc']:7.4f} {_bias(s, 'bbc'):>16} {_bias(s, f'tt{k1}'):>16}  {flags}")
+    if scenario != "equal":
+        share = ", ".join(f"M={m}: {cells[m]['won_best']:.0%}" for m in sorted(cells))
+        print(f"    how often CV picked the genuinely better candidate:      {share}")
+        share = ", ".join(f"M={m}: {cells[m]['bbc_won_best']:.0%}" for m in sorted(cells))
+        print(f"    how often a BBC in-bag selection picked it (all draws): {share}")
+    return misses
+
+
+def uniform_sanity(seed: int, pairs: int = 1_000_000) -> None:
+    # Order statistics (common practice; e.g. David & Nagaraja, Order Statistics): for two independent
+    # uniform(0,1) estimates, P(min < 0.5) = 1 − 0.5² = 0.75 and E[min] = 1/(M + 1) = 1/3.
+    u = np.random.default_rng(seed).random((pairs, 2)).min(axis=1)
+    print(f"\nSanity (two independent uniform(0,1) estimates, {pairs:,} pairs): "
+          f"E[min] = {u.mean():.4f} (theory 1/3 = 0.3333), P(min < 0.5) = {(u < 0.5).mean():.4f} (theory 0.75)")
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--reps", type=int, default=400, help="replications per (scenario, M)")
+    parser.add_argument("--rows", type=int, default=1000, help="rows per simulated data set (divisible by 10)")
+    parser.add_argument("--draws", type=int, default=500, help="BBC bootstrap draws per data set")
+    parser.add_argument("--ms", type=str, default="2,5,20,50", help="numbers of candidates")
+    parser.add_argument("--seed", type=int, default=2024)
+    parser.add_argument("--jobs", type=int, default=2, help="worker processes")
+    args = parser.parse_args(argv)
+    if any(args.rows % k for k in FOLD_COUNTS):
+        parser.error(f"--rows must be divisible by {FOLD_COUNTS} so folds have equal size")
+    ms = [int(v) for v in args.ms.split(",")]
+    start = time.perf_counter()
+    cells: dict[str, dict[int, dict[str, float]]] = {s: {} for s in SCENARIOS}
+    tasks = [(s, m) for s in SCENARIOS for m in sorted(ms, reverse=True)]  # big M first: better packing
+    with ProcessPoolExecutor(max_workers=args.jobs) as pool:
+        futures = [pool.submit(run_cell, s, m, args.reps, args.rows, args.draws, args.seed) for s, m in tasks]
+        for done, future in enumerate(as_completed(futures), start=1):
+            scenario, m, columns = future.result()
+            cells[scenario][m] = summarise(columns)
+            print(f"[{time.perf_counter() - start:6.1f}s] {done}/{len(tasks)} done: {scenario}, M={m}",
+                  file=sys.stderr, flush=True)
+    misses = []
+    for scenario in SCENARIOS:
+        misses += print_table(scenario, cells[scenario], args.reps, args.rows, args.draws)
+    uniform_sanity(args.seed)
+    print("\nTargets (BBC mean bias within ±0.01; T&T and BBC each closer to the truth than raw):",
+          "all met" if not misses else "missed in:")
+    for miss in misses:
+        print(f"  {miss}")
+    print(f"(total {time.perf_counter() - start:.0f} s)", file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
