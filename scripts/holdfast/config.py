@@ -148,8 +148,35 @@ def _cross_checks(config: dict[str, Any]) -> None:
         if overlap:
             raise ConfigError(f"config key 'candidates.{family}': parameter '{overlap[0]}' is in both params and grid; "
                               "keep it in one of them")
-    if config.get("metrics") is not None and config.get("task") is not None:
-        pass  # scorer/task fit is checked where scikit-learn is imported (holdfast.scoring)
+    _check_selection(config)
+
+
+def _check_selection(config: dict[str, Any]) -> None:
+    """The one-standard-error rule needs a declared notion of 'simpler' for every choice it makes."""
+    selection, families = config["selection"], config["candidates"]
+    for name, spec in families.items():
+        simplicity = spec.get("simplicity")
+        if simplicity and simplicity["param"] not in {**spec["params"], **spec["grid"]}:
+            raise ConfigError(f"config key 'candidates.{name}.simplicity.param' is '{simplicity['param']}', which is "
+                              "neither in params nor in grid; name one of the family's parameters")
+        if simplicity:
+            values = spec["grid"].get(simplicity["param"], [spec["params"].get(simplicity["param"])])
+            if any(isinstance(v, bool) or not isinstance(v, int | float | type(None)) for v in values):
+                raise ConfigError(f"config key 'candidates.{name}.simplicity.param': '{simplicity['param']}' takes "
+                                  "non-numeric values, which cannot be ordered by simplicity; "
+                                  "choose a numeric parameter")
+    if selection["rule"] != "one_standard_error":
+        if selection["family_order"]:
+            raise ConfigError("config key 'selection.family_order' is set but selection.rule is best_mean, which "
+                              "ignores it; remove it or use rule: one_standard_error")
+        return
+    for name, spec in families.items():
+        if len(spec["grid"]) and not spec.get("simplicity"):
+            raise ConfigError(f"config key 'candidates.{name}.simplicity' is required by the one-standard-error "
+                              "rule; say which parameter makes a candidate simpler, e.g. {param: C, simpler: lower}")
+    if len(families) > 1 and sorted(selection["family_order"]) != sorted(families):
+        raise ConfigError("config key 'selection.family_order' must list every family once, simplest first, for "
+                          f"the one-standard-error rule; families: {', '.join(families)}")
 
 
 def allowed_prefixes(config: dict[str, Any]) -> list[str]:

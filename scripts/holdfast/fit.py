@@ -105,7 +105,7 @@ def fit_family(dev_path: str, folds_path: str, family: dict[str, Any], spec: dic
         record.update({"repeat": repeat, "fold": fold})
         records.append(record)
         if outputs is not None:
-            oofs.append(oof_frame(keys_val, candidate["id"], outputs, classes))
+            oofs.append(oof_frame(keys_val, candidate["id"], outputs, classes).assign(repeat=repeat, fold=fold))
     fits = pd.DataFrame(records)
     failed = fits[fits["status"] == "failed"]
     if len(failed) == len(fits):

@@ -54,8 +54,14 @@ def _restore(exp: Path, verdict_path: Path, last: dict[str, Any], model_sha: str
     return True
 
 
+def _inside(value: float | None, low: float, high: float) -> bool | None:
+    if value is None or not (np.isfinite(low) and np.isfinite(high)):
+        return None
+    return bool(low <= value <= high)
+
+
 def _metric_block(metric: str, value: float, model: Any, y: Any, level: float, draws: int, seed: int,
-                  outputs: dict[str, np.ndarray], cv: dict[str, Any]) -> dict[str, Any]:
+                  outputs: dict[str, np.ndarray], cv: dict[str, Any], optimism: dict[str, Any]) -> dict[str, Any]:
     if metric in BINOMIAL:
         correct = int(np.sum(outputs["predict"] == np.asarray(y)))
         low, high = clopper_pearson(correct, len(y), level)
@@ -63,10 +69,19 @@ def _metric_block(metric: str, value: float, model: Any, y: Any, level: float, d
     else:
         low, high = bootstrap_interval(metric, model, y, level, draws, seed)
         method = f"percentile bootstrap, {draws} resamples, seed {seed}"
-    inside = bool(low <= cv["mean"] <= high) if np.isfinite(low) and np.isfinite(high) else None
-    return {"test": value, "interval": [low, high], "level": level, "interval_method": method,
-            "cv_mean": cv["mean"], "cv_se": cv["se"], "cv_folds": int(cv["folds"]),
-            "cv_mean_inside_interval": inside}
+    block: dict[str, Any] = {
+        "test": value, "interval": [low, high], "level": level, "interval_method": method,
+        "cv_mean": cv["mean"], "cv_se": cv["se"], "cv_se_corrected": cv.get("se_corrected"),
+        "cv_folds": int(cv["folds"]), "cv_mean_inside_interval": _inside(cv["mean"], low, high),
+    }
+    if optimism.get("metric") == metric:
+        for name in ("tibshirani", "bbc"):
+            corrected = (optimism.get(name) or {}).get("corrected")
+            block[f"cv_corrected_{name}"] = corrected
+            block[f"cv_corrected_{name}_inside_interval"] = _inside(corrected, low, high)
+    else:
+        block["cv_corrected_note"] = "no optimism correction: the winner was not selected on this metric"
+    return block
 
 
 def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list[str], task: str,
@@ -119,9 +134,13 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
             "opening": number,
             "test_set_opened": f"test set opened {number} time{'s' if number > 1 else ''}",
             "compromised": number > 1,
-            "metrics": {m: _metric_block(m, values[m], played, y, level, draws, seed, outputs, mine.loc[m].to_dict())
+            "metrics": {m: _metric_block(m, values[m], played, y, level, draws, seed, outputs, mine.loc[m].to_dict(),
+                                         choice.get("optimism") or {})
                         for m in metrics},
-            "metrics_note": "scikit-learn scorer values: greater is better (neg_* metrics are negated errors)",
+            "metrics_note": ("scikit-learn scorer values: greater is better (neg_* metrics are negated errors). "
+                             "test: the refit winner on the sealed test rows, with its interval. cv_mean: the "
+                             "winner's raw cross-validated mean (optimistic: it was picked as the best). "
+                             "cv_corrected_*: that mean with the selection optimism removed (primary metric)."),
             "caution": CAUTION,
         }
         if number > 1:

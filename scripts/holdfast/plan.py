@@ -91,6 +91,11 @@ class Plan:
         """Every candidate spec keyed by id."""
         return {c["id"]: c for cands in self.families.values() for c in cands}
 
+    def simplicity(self) -> dict[str, dict[str, str]]:
+        """Each family's declared simplicity parameter and direction (for the one-standard-error rule)."""
+        return {name: spec["simplicity"] for name, spec in self.config["candidates"].items()
+                if spec.get("simplicity")}
+
     def threads(self, family: str) -> int:
         """Threads declared for a family's fit jobs."""
         return int(self.config["candidates"][family]["threads"])

@@ -80,9 +80,12 @@ def tally(smk: Any) -> None:
     """Rule tally -> holdfast.tally.tally."""
     from .tally import tally as run_tally
 
-    choice = run_tally(list(smk.input.fits), json.loads(smk.params.candidates), json.loads(smk.params.metrics),
-                       smk.params.rule, int(smk.params.folds), smk.output.ranking, smk.output.choice,
-                       smk.output.plot, smk.params.ledger, smk.input.folds, rule_name=smk.rule)
+    spec = json.loads(smk.params.spec)
+    choice = run_tally(list(smk.input.fits), list(smk.input.oof), smk.input.dev, json.loads(smk.params.candidates),
+                       json.loads(smk.params.metrics), json.loads(smk.params.selection),
+                       json.loads(smk.params.simplicity), spec["target"], smk.params.task, int(smk.params.folds),
+                       smk.output.ranking, smk.output.choice, smk.output.plot, smk.params.ledger, smk.input.folds,
+                       rule_name=smk.rule)
     print(choice["why"])
 
 

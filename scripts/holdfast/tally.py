@@ -1,8 +1,11 @@
 """The tally: combine every fit job's records into a ranking and choose the winner.
 
-Reduce step: per candidate and metric the mean validation score over folds, its
-standard deviation and naive standard error; the winner by the selection rule on
-the primary metric. A candidate that failed on any fold is ranked last and never wins.
+Reduce step. Per candidate and metric: the mean validation score over folds, its standard
+deviation, the naive standard error and the Nadeau-Bengio corrected one. The winner comes from
+the selection rule on the primary metric; a corrected resampled t-test compares it with every
+other candidate; and two estimators say how optimistic its CV mean is because it was the best
+of many (Tibshirani & Tibshirani 2009 from per-fold scores, BBC-CV from out-of-fold predictions).
+A candidate that failed on any fold is ranked last and never wins.
 """
 
 from __future__ import annotations
@@ -14,12 +17,16 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from . import ledger
+from . import ledger, stats
 from ._io import sha256_file, write_atomic, write_json, write_parquet
+from .dataset import KEY
 from .errors import FitError
 
 CAUTION = ("A cross-validated estimate describes data like the development set. It is not a guarantee "
            "under distribution shift; decisions about people must also follow their domain's own rules and review.")
+SE_NOTE = ("se: naive standard error of the mean over folds (sd/sqrt(folds)); it ignores that folds share "
+           "training rows and so understates the uncertainty. se_corrected: Nadeau & Bengio (2003) corrected "
+           "standard error, sqrt((1/J + n_val/n_train) * sd^2) over the J = k x repeats folds.")
 
 
 def collect(fit_paths: list[str]) -> pd.DataFrame:
@@ -28,7 +35,9 @@ def collect(fit_paths: list[str]) -> pd.DataFrame:
 
 
 def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd.DataFrame:
-    """Per candidate and metric: mean, sd, se over folds, number of folds, rank (1 = best)."""
+    """Per candidate and metric: mean, sd, se, se_corrected, folds, rank (1 = best)."""
+    sizes = fits.groupby(["repeat", "fold"])[["n_train", "n_val"]].first()
+    ratio = float(sizes["n_val"].mean() / sizes["n_train"].mean())
     rows = []
     for (candidate, family, params), part in fits.groupby(["candidate", "family", "params"], sort=True):
         ok = part[part["status"] == "ok"]
@@ -41,8 +50,9 @@ def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd
             rows.append({
                 "candidate": candidate, "family": family, "params": params, "metric": metric,
                 "mean": float(np.mean(values)) if n else float("nan"), "sd": sd,
-                "se": sd / math.sqrt(n) if n > 1 else float("nan"), "folds": n,
-                "train_mean": float(np.mean(ok[f"train_{metric}"])) if n else float("nan"),
+                "se": sd / math.sqrt(n) if n > 1 else float("nan"),
+                "se_corrected": math.sqrt((1.0 / n + ratio) * sd**2) if n > 1 else float("nan"),
+                "folds": n, "train_mean": float(np.mean(ok[f"train_{metric}"])) if n else float("nan"),
                 "complete": complete, "error": errors[0] if errors else "",
             })
     table = pd.DataFrame(rows)
@@ -56,25 +66,50 @@ def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd
     return table.sort_values(["metric", "rank"], kind="stable").reset_index(drop=True)
 
 
-def choose(ranking: pd.DataFrame, primary: str, rule: str) -> tuple[pd.Series, pd.Series | None]:
-    """Winner and runner-up on the primary metric under the selection rule."""
+def complexity_ranks(candidates: dict[str, dict[str, Any]], selection: dict[str, Any],
+                     simplicity: dict[str, dict[str, str]]) -> dict[str, tuple[float, float]]:
+    """Order candidates from simplest: by the declared family order, then the family's simplicity parameter."""
+    order = {name: i for i, name in enumerate(selection.get("family_order", []))}
+    ranks = {}
+    for cid, cand in candidates.items():
+        declared = simplicity.get(cand["family"])
+        value = 0.0
+        if declared:
+            raw = cand["params"].get(declared["param"])
+            value = math.inf if raw is None else float(raw)
+            value = value if declared["simpler"] == "lower" else -value
+        ranks[cid] = (float(order.get(cand["family"], 0)), value)
+    return ranks
+
+
+def choose(ranking: pd.DataFrame, primary: str, rule: str, complexity: dict[str, tuple[float, float]]
+           ) -> tuple[pd.Series, pd.Series | None, pd.Series, str]:
+    """Winner, runner-up, best-mean candidate and the reason, on the primary metric under the rule."""
     part = ranking[(ranking["metric"] == primary) & ranking["complete"]].sort_values("rank")
     if part.empty:
         raise FitError(f"no candidate completed every fold on metric '{primary}'; see the fit logs for errors")
-    if rule != "best_mean":
-        raise FitError(f"selection rule '{rule}' is not implemented; use best_mean")
-    winner = part.iloc[0]
-    runner = part.iloc[1] if len(part) > 1 else None
-    return winner, runner
+    best = part.iloc[0]
+    if rule == "best_mean":
+        winner, reason = best, "highest mean"
+    elif rule == "one_standard_error":
+        picked = stats.one_standard_error_choice(part, best["candidate"], complexity)
+        winner, reason = part[part["candidate"] == picked.chosen].iloc[0], picked.reason
+    else:
+        raise FitError(f"selection rule '{rule}' is not known; use best_mean or one_standard_error")
+    others = part[part["candidate"] != winner["candidate"]]
+    runner = others.iloc[0] if len(others) else None
+    return winner, runner, best, reason
 
 
-def _why(winner: pd.Series, runner: pd.Series | None, primary: str, n_candidates: int) -> str:
-    text = (f"highest mean validation {primary} ({winner['mean']:.6g}, se {winner['se']:.3g}, {winner['folds']} folds) "
-            f"among {n_candidates} candidates")
+def _why(rule: str, winner: pd.Series, runner: pd.Series | None, primary: str, n_candidates: int,
+         reason: str) -> str:
+    text = (f"{rule}: {winner['candidate']} ({winner['family']}), mean validation {primary} {winner['mean']:.6g} "
+            f"(se {winner['se']:.3g}, corrected se {winner['se_corrected']:.3g}, {winner['folds']} folds) among "
+            f"{n_candidates} candidates; {reason}")
     if runner is not None:
         margin = winner["mean"] - runner["mean"]
-        clear = "more" if margin > winner["se"] else "less"
-        text += (f"; the runner-up {runner['candidate']} ({runner['family']}) is {margin:.3g} behind, "
+        clear = "more" if abs(margin) > winner["se"] else "less"
+        text += (f"; the next best, {runner['candidate']} ({runner['family']}), differs by {margin:.3g}, "
                  f"{clear} than one standard error")
     return text
 
@@ -93,7 +128,7 @@ def plot_ranking(ranking: pd.DataFrame, primary: str, path: str, top: int = 25) 
     ypos = np.arange(len(part))[::-1]
     ax.errorbar(part["mean"], ypos, xerr=part["se"].fillna(0), fmt="o", color="#1f5f8b", ecolor="#8aa9c1", capsize=3)
     ax.set_yticks(ypos, labels, fontsize=8)
-    ax.set_xlabel(f"mean validation {primary} (± 1 standard error over folds; greater is better)")
+    ax.set_xlabel(f"mean validation {primary} (± 1 naive standard error over folds; greater is better)")
     ax.set_title("Candidates by cross-validated score", fontsize=10)
     ax.grid(axis="x", alpha=0.3)
     fig.tight_layout()
@@ -105,27 +140,94 @@ def plot_ranking(ranking: pd.DataFrame, primary: str, path: str, top: int = 25) 
     plt.close(fig)
 
 
-def tally(fit_paths: list[str], candidates: dict[str, dict[str, Any]], metrics: list[str], rule: str,
-          expected_folds: int, ranking_path: str, choice_path: str, plot_path: str, ledger_path: str,
+def add_comparison(ranking: pd.DataFrame, matrix: pd.DataFrame, winner: str, primary: str,
+                   n_train: np.ndarray, n_val: np.ndarray) -> pd.DataFrame:
+    """Columns diff_vs_winner, diff_se, t, p (corrected resampled t-test) on the primary metric's rows."""
+    tests = stats.compare_with_winner(matrix, winner, n_train, n_val).set_index("candidate")
+    out = ranking.copy()
+    for column, source in (("diff_vs_winner", "mean_difference"), ("diff_se", "corrected_se"), ("t", "t"),
+                           ("p", "p")):
+        values = out["candidate"].map(tests[source]).astype(float)
+        out[column] = values.where(out["metric"] == primary)
+    return out
+
+
+def optimism(fits: pd.DataFrame, oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, task: str,
+             matrix: pd.DataFrame, winner: str, draws: int, seed: int) -> dict[str, Any]:
+    """How much the winner's CV mean flatters it: Tibshirani & Tibshirani (2009) and BBC-CV (2018)."""
+    raw = float(matrix[winner].mean())
+    tt = stats.tibshirani_bias(matrix, winner)
+    classes = None
+    if task == "classification":
+        classes = sorted(pd.unique(dev[target]).tolist())
+    complete = oof[oof["candidate"].isin(matrix.columns)]
+    arrays = stats.oof_arrays(complete, dev[KEY].to_numpy(), classes)
+    scorer = stats.sklearn_scorer(primary, task, classes)
+    bbc = stats.bbc_cv(arrays, dev[target].to_numpy(), scorer, draws=draws, seed=seed)
+    summary = stats.optimism_summary(raw, tt, bbc)
+    summary.update({
+        "metric": primary, "winner": winner,
+        "note": ("optimism = raw CV mean - corrected estimate (score units; positive = the raw mean flatters the "
+                 "winner). tibshirani: Tibshirani & Tibshirani, Ann. Appl. Stat. 3(2), 2009, from per-fold scores; "
+                 "bbc: bootstrap bias-corrected CV, Tsamardinos, Greasidou & Borboudakis, Machine Learning 107, "
+                 "2018, from the stored out-of-fold predictions (it estimates the best-mean selection procedure)."),
+    })
+    summary["bbc"]["seed"] = seed
+    return summary
+
+
+def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates: dict[str, dict[str, Any]],
+          metrics: list[str], selection: dict[str, Any], simplicity: dict[str, dict[str, str]], target: str,
+          task: str, expected_folds: int, ranking_path: str, choice_path: str, plot_path: str, ledger_path: str,
           folds_path: str, rule_name: str | None = None) -> dict[str, Any]:
     """Write ranking.parquet, choice.json and the ranking plot; return the choice."""
     fits = collect(fit_paths)
     ranking = summarise(fits, metrics, expected_folds)
     primary = metrics[0]
-    winner, runner = choose(ranking, primary, rule)
+    rule = selection["rule"]
+    complexity = complexity_ranks(candidates, selection, simplicity)
+    winner, runner, best, reason = choose(ranking, primary, rule, complexity)
+    matrix = stats.fold_score_matrix(fits, primary)
+    complete = sorted(ranking.loc[ranking["complete"], "candidate"].unique())
+    matrix = matrix[complete]
+    n_train, n_val = stats.fold_sizes(fits, matrix.index)
+    if len(complete) > 1:
+        ranking = add_comparison(ranking, matrix, winner["candidate"], primary, n_train, n_val)
+    else:
+        ranking = ranking.assign(diff_vs_winner=np.nan, diff_se=np.nan, t=np.nan, p=np.nan)
+    dev = pd.read_parquet(dev_path, columns=[KEY, target])
+    oof = pd.concat([pd.read_parquet(p) for p in sorted(oof_paths)], ignore_index=True)
+    optimistic = optimism(fits, oof, dev, target, primary, task, matrix, winner["candidate"],
+                          int(selection["bootstrap"]), int(selection["seed"]))
     n_candidates = int(ranking["candidate"].nunique())
     failed = sorted(set(ranking.loc[~ranking["complete"], "candidate"]))
+    primary_rows = ranking[ranking["metric"] == primary].set_index("candidate")
+    comparison = [
+        {"candidate": cid, "family": row["family"], "mean": row["mean"], "diff_vs_winner": row["diff_vs_winner"],
+         "diff_se": row["diff_se"], "t": row["t"], "p": row["p"]}
+        for cid, row in primary_rows.sort_values("rank").iterrows()
+        if cid != winner["candidate"] and row["complete"]
+    ][:10]
     choice: dict[str, Any] = {
         "rule": rule,
         "metric": primary,
         "winner": {"candidate": winner["candidate"], "family": winner["family"], "mean": winner["mean"],
-                   "se": winner["se"], "folds": int(winner["folds"]), "spec": candidates[winner["candidate"]]},
+                   "se": winner["se"], "se_corrected": winner["se_corrected"], "folds": int(winner["folds"]),
+                   "spec": candidates[winner["candidate"]]},
+        "best_mean": {"candidate": best["candidate"], "family": best["family"], "mean": best["mean"],
+                      "se": best["se"]},
         "runner_up": None if runner is None else {
             "candidate": runner["candidate"], "family": runner["family"], "mean": runner["mean"], "se": runner["se"]},
         "margin": None if runner is None else float(winner["mean"] - runner["mean"]),
+        "comparison": comparison,
+        "comparison_note": ("winner minus each other candidate on the same folds; diff_se, t and p from the "
+                            "corrected resampled t-test (Nadeau & Bengio 2003), two-sided, folds - 1 degrees of "
+                            "freedom. Folds overlap, so p-values are approximate; many comparisons are made."),
+        "optimism": optimistic,
+        "uncertainty_note": SE_NOTE,
         "candidates": n_candidates,
         "failed_candidates": failed,
-        "why": _why(winner, runner, primary, n_candidates),
+        "why": _why(rule, winner, runner, primary, n_candidates, reason),
         "folds_sha256": sha256_file(folds_path),
         "caution": CAUTION,
     }
@@ -136,5 +238,6 @@ def tally(fit_paths: list[str], candidates: dict[str, dict[str, Any]], metrics: 
         "winner": winner["candidate"], "rule": rule, "metric": primary, "candidates": n_candidates,
         "failed": len(failed), "fit_files": len(fit_paths), "ranking_sha256": sha256_file(ranking_path),
         "choice_sha256": sha256_file(choice_path), "plot": str(Path(plot_path).name),
+        "bbc_seed": int(selection["seed"]), "bbc_draws": int(selection["bootstrap"]),
     }, rule=rule_name)
     return choice

@@ -4,6 +4,7 @@ rule tally:
         fits=fits_of("fits"),
         oof=fits_of("oof"),
         folds=PLAN.path("folds.parquet"),
+        dev=PLAN.path("dev.parquet"),
     output:
         ranking=PLAN.path("ranking.parquet"),
         choice=PLAN.path("choice.json"),
@@ -13,7 +14,10 @@ rule tally:
     params:
         candidates=json.dumps(PLAN.candidates_by_id(), sort_keys=True),
         metrics=METRICS,
-        rule=PLAN.config["selection"]["rule"],
+        selection=json.dumps(PLAN.config["selection"], sort_keys=True),
+        simplicity=json.dumps(PLAN.simplicity(), sort_keys=True),
+        spec=SPEC,
+        task=PLAN.config["task"],
         folds=len(PLAN.fold_ids),
         ledger=LEDGER,
         code=code_hash("tally"),
