@@ -13,6 +13,7 @@ include: "workflow/rules/tally.smk"
 include: "workflow/rules/refit.smk"
 include: "workflow/rules/open_test.smk"
 include: "workflow/rules/audit.smk"
+include: "workflow/rules/nested.smk"
 
 
 rule all:

@@ -149,6 +149,8 @@ def _cross_checks(config: dict[str, Any]) -> None:
             raise ConfigError(f"config key 'candidates.{family}': parameter '{overlap[0]}' is in both params and grid; "
                               "keep it in one of them")
     _check_selection(config)
+    if config["nested"]["k"] == 1:
+        raise ConfigError("config key 'nested.k' is 1; use 0 to turn nested cross-validation off or at least 2")
 
 
 def _check_selection(config: dict[str, Any]) -> None:

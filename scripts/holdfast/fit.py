@@ -90,7 +90,8 @@ def limit_threads(threads: int) -> None:
 
 def fit_family(dev_path: str, folds_path: str, family: dict[str, Any], spec: dict[str, Any], repeat: int,
                fold: int, metrics: list[str], task: str, threads: int, allowed: list[str],
-               fits_path: str, oof_path: str, ledger_path: str, rule: str | None = None) -> pd.DataFrame:
+               fits_path: str, oof_path: str, ledger_path: str, rule: str | None = None,
+               scope: str = "main") -> pd.DataFrame:
     """Fit every candidate of ``family`` on one fold; write the fits and out-of-fold tables."""
     limit_threads(threads)
     dev = pd.read_parquet(dev_path)
@@ -120,7 +121,7 @@ def fit_family(dev_path: str, folds_path: str, family: dict[str, Any], spec: dic
     write_parquet(fits_path, fits)
     write_parquet(oof_path, pd.concat(oofs, ignore_index=True))
     ledger.append(ledger_path, "fit", {
-        "family": family["family"], "repeat": repeat, "fold": fold, "n_train": int(training.sum()),
+        "scope": scope, "family": family["family"], "repeat": repeat, "fold": fold, "n_train": int(training.sum()),
         "n_val": int(validation.sum()), "candidates": len(fits), "failed": len(failed),
         "folds_sha256": sha256_file(folds_path), "fits": str(Path(fits_path).name),
         "fits_sha256": sha256_file(fits_path), "oof_sha256": sha256_file(oof_path),

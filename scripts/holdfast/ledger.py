@@ -158,6 +158,10 @@ def verify_chain(path: str | os.PathLike[str]) -> tuple[list[dict[str, Any]], li
     return entries, problems
 
 
-def events(entries: list[dict[str, Any]], name: str) -> list[dict[str, Any]]:
-    """Entries of one event type, in ledger order."""
-    return [e for e in entries if e.get("event") == name]
+def events(entries: list[dict[str, Any]], name: str, scope: str | None = "main") -> list[dict[str, Any]]:
+    """Entries of one event type, in ledger order; by default only the experiment's own (not nested) ones."""
+    def in_scope(entry: dict[str, Any]) -> bool:
+        details = entry.get("details")
+        return scope is None or (details.get("scope", "main") if isinstance(details, dict) else "main") == scope
+
+    return [e for e in entries if e.get("event") == name and in_scope(e)]

@@ -25,7 +25,7 @@ from .layout import CARD, CHOICE, DEV, FOLDS, LEDGER, MANIFEST, MODEL, RANKING, 
 PACKAGE = Path(__file__).resolve().parent
 STAGE_MODULES = {
     "assign_folds": "folds", "fit_family": "fit", "tally": "tally", "refit_winner": "refit",
-    "open_test": "opening", "audit": "audit",
+    "open_test": "opening", "audit": "audit", "score_outer": "nested", "nested_summary": "nested",
 }
 
 
@@ -51,13 +51,15 @@ def code_hash(stage: str) -> str:
             continue
         seen.add(module)
         todo.extend(_relative_imports(module) - seen)
-    parts = {m: sha256_file(PACKAGE / f"{m}.py") for m in sorted(seen | {"__init__"})}
+    # steps.py (the adapters) is part of every stage's code, though no stage module imports it.
+    parts = {m: sha256_file(PACKAGE / f"{m}.py") for m in sorted(seen | {"__init__", "steps"})}
     return sha256_text(canonical_json(parts))[:16]
 
 
 def upstream_code() -> str:
     """Hash of the code of every stage up to and including the opening."""
-    return sha256_text(canonical_json({s: code_hash(s) for s in STAGE_MODULES if s != "audit"}))[:16]
+    upstream = ("assign_folds", "fit_family", "tally", "refit_winner", "open_test")
+    return sha256_text(canonical_json({s: code_hash(s) for s in upstream}))[:16]
 
 
 @dataclass
@@ -82,6 +84,16 @@ class Plan:
     def fit_files(self, kind: str) -> list[str]:
         """Every fits/ or oof/ file the fit jobs produce."""
         return [self.path(fit_file(kind, fam, r, f)) for fam in self.families for r, f in self.fold_ids]
+
+    def nested_fit_files(self, kind: str, outer: int) -> list[str]:
+        """The fits/ or oof/ files of one nested outer fold."""
+        return [self.path(f"nested/o{outer}/{fit_file(kind, fam, r, f)}") for fam in self.families
+                for r, f in self.fold_ids]
+
+    def outer_fold_spec(self) -> dict[str, Any]:
+        """The outer folds of nested cross-validation: the inner scheme, nested.k folds, one repeat."""
+        nested = self.config["nested"]
+        return {**self.config["folds"], "k": max(int(nested["k"]), 2), "repeats": 1, "seed": int(nested["seed"])}
 
     def family_json(self, family: str) -> str:
         """The family's canonical JSON, a param of its fit jobs."""

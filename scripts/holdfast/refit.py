@@ -63,14 +63,18 @@ def load_model(path: str, expected_sha256: str | None = None) -> Any:
 
 
 def refit_winner(choice_path: str, dev_path: str, spec: dict[str, Any], threads: int, allowed: list[str],
-                 model_path: str, card_path: str, ledger_path: str, rule: str | None = None) -> dict[str, Any]:
-    """Fit the chosen candidate on all development rows; write model.skops and card.json."""
+                 model_path: str, card_path: str, ledger_path: str, rule: str | None = None,
+                 folds_path: str | None = None, scope: str = "main") -> dict[str, Any]:
+    """Fit the chosen candidate on all development rows (nested: the rows of ``folds_path``);
+    write model.skops and card.json."""
     import skops.io as sio
 
     limit_threads(threads)
     choice = read_json(choice_path)
     candidate = choice["winner"]["spec"]
     dev = pd.read_parquet(dev_path)
+    if folds_path is not None:
+        dev = dev[dev[KEY].isin(set(pd.read_parquet(folds_path, columns=[KEY])[KEY]))].reset_index(drop=True)
     x, y = split_xy(dev, spec)
     model = build_pipeline(candidate, x, threads, allowed)
     model.fit(x, y)
@@ -91,7 +95,7 @@ def refit_winner(choice_path: str, dev_path: str, spec: dict[str, Any], threads:
     }
     write_json(card_path, card)
     ledger.append(ledger_path, "refit", {
-        "winner": candidate["id"], "family": candidate["family"], "rows": len(dev),
+        "scope": scope, "winner": candidate["id"], "family": candidate["family"], "rows": len(dev),
         "dev_sha256": card["trained_on"]["dev_sha256"], "model_sha256": card["model_file"]["sha256"],
         "card_sha256": sha256_file(card_path), "choice_sha256": sha256_file(choice_path),
     }, rule=rule)

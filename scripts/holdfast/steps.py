@@ -42,8 +42,14 @@ def seal(smk: Any) -> None:
     print(f"sealed {manifest['counts']['test']} test rows; {manifest['counts']['dev']} development rows")
 
 
+def _scope(smk: Any) -> str:
+    """'main' for the experiment itself, 'o<O>' inside nested outer fold O."""
+    outer = getattr(smk.wildcards, "outer", None)
+    return "main" if outer is None else f"o{outer}"
+
+
 def assign_folds(smk: Any) -> None:
-    """Rule assign_folds -> holdfast.folds.assign and check."""
+    """Rule assign_folds -> holdfast.folds.assign and check (nested: on the outer-training rows)."""
     import pandas as pd
 
     from . import ledger
@@ -52,13 +58,20 @@ def assign_folds(smk: Any) -> None:
 
     spec, fold_spec = json.loads(smk.params.spec), json.loads(smk.params.folds)
     dev = pd.read_parquet(smk.input.dev)
+    scope = _scope(smk)
+    if scope != "main":
+        from .nested import outer_rows
+
+        dev = dev[~outer_rows(dev, pd.read_parquet(smk.input.outer), int(smk.wildcards.outer))]
+        dev = dev.reset_index(drop=True)
     table = assign(dev, fold_spec, spec["target"], spec["group"])
     groups = dev[spec["group"]] if spec["group"] else None
     test_keys = set(pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"])
     check(table, dev["row_key"], test_keys, fold_spec, groups)
     write_parquet(smk.output.folds, table)
     ledger.append(smk.params.ledger, "assign_folds", {
-        "scheme": fold_spec["scheme"], "k": fold_spec["k"], "repeats": fold_spec["repeats"],
+        "scope": getattr(smk.params, "scope", scope), "scheme": fold_spec["scheme"], "k": fold_spec["k"],
+        "repeats": fold_spec["repeats"],
         "seeds": [fold_spec["seed"] + r for r in range(fold_spec["repeats"])], "rows": len(dev),
         "folds_sha256": sha256_file(smk.output.folds), "dev_sha256": sha256_file(smk.input.dev),
     }, rule=smk.rule)
@@ -72,7 +85,7 @@ def fit_family(smk: Any) -> None:
     fits = run_fit(smk.input.dev, smk.input.folds, json.loads(smk.params.family), json.loads(smk.params.spec),
                    int(smk.wildcards.repeat), int(smk.wildcards.fold), json.loads(smk.params.metrics),
                    smk.params.task, int(smk.threads), json.loads(smk.params.allowed), smk.output.fits,
-                   smk.output.oof, smk.params.ledger, rule=smk.rule)
+                   smk.output.oof, smk.params.ledger, rule=smk.rule, scope=_scope(smk))
     print(fits.drop(columns=["params"]).to_string())
 
 
@@ -85,7 +98,7 @@ def tally(smk: Any) -> None:
                        json.loads(smk.params.metrics), json.loads(smk.params.selection),
                        json.loads(smk.params.simplicity), spec["target"], smk.params.task, int(smk.params.folds),
                        smk.output.ranking, smk.output.choice, smk.output.plot, smk.params.ledger, smk.input.folds,
-                       rule_name=smk.rule)
+                       rule_name=smk.rule, scope=_scope(smk))
     print(choice["why"])
 
 
@@ -95,7 +108,7 @@ def refit_winner(smk: Any) -> None:
 
     card = run_refit(smk.input.choice, smk.input.dev, json.loads(smk.params.spec), int(smk.threads),
                      json.loads(smk.params.allowed), smk.output.model, smk.output.card, smk.params.ledger,
-                     rule=smk.rule)
+                     rule=smk.rule, folds_path=getattr(smk.input, "folds", None), scope=_scope(smk))
     print(f"refit {card['candidate']['id']} on {card['trained_on']['rows']} rows")
 
 
@@ -120,7 +133,30 @@ def audit(smk: Any) -> None:
     print(report(result))
 
 
-STEPS = {f.__name__: f for f in (seal, assign_folds, fit_family, tally, refit_winner, open_test, audit)}
+def score_outer(smk: Any) -> None:
+    """Rule score_outer -> holdfast.nested.score_outer."""
+    from .nested import score_outer as run_score
+
+    result = run_score(smk.input.dev, smk.input.outer, smk.input.folds, int(smk.wildcards.outer), smk.input.model,
+                       smk.input.choice, json.loads(smk.params.spec), json.loads(smk.params.metrics),
+                       smk.params.task, smk.output.score, smk.params.ledger, rule=smk.rule)
+    print(json.dumps(result, indent=2))
+
+
+def nested_summary(smk: Any) -> None:
+    """Rule nested_summary -> holdfast.nested.summarise."""
+    from .nested import summarise
+
+    summary = summarise(list(smk.input.scores), json.loads(smk.params.metrics), smk.output.summary,
+                        smk.params.ledger, rule=smk.rule)
+    print(json.dumps(summary, indent=2))
+
+
+STEPS = {f.__name__: f for f in (seal, assign_folds, fit_family, tally, refit_winner, open_test, audit,
+                                 score_outer, nested_summary)}
+# Nested copies of the stages run the same adapters (Snakemake's `use rule ... as nested_<rule>`).
+STEPS.update({f"nested_{name}": STEPS[name] for name in ("assign_folds", "fit_family", "tally", "refit_winner")})
+STEPS["assign_outer_folds"] = assign_folds
 
 
 def run(smk: Any) -> None:

@@ -179,7 +179,7 @@ def optimism(fits: pd.DataFrame, oof: pd.DataFrame, dev: pd.DataFrame, target: s
 def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates: dict[str, dict[str, Any]],
           metrics: list[str], selection: dict[str, Any], simplicity: dict[str, dict[str, str]], target: str,
           task: str, expected_folds: int, ranking_path: str, choice_path: str, plot_path: str, ledger_path: str,
-          folds_path: str, rule_name: str | None = None) -> dict[str, Any]:
+          folds_path: str, rule_name: str | None = None, scope: str = "main") -> dict[str, Any]:
     """Write ranking.parquet, choice.json and the ranking plot; return the choice."""
     fits = collect(fit_paths)
     ranking = summarise(fits, metrics, expected_folds)
@@ -196,6 +196,7 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     else:
         ranking = ranking.assign(diff_vs_winner=np.nan, diff_se=np.nan, t=np.nan, p=np.nan)
     dev = pd.read_parquet(dev_path, columns=[KEY, target])
+    dev = dev[dev[KEY].isin(set(pd.read_parquet(folds_path, columns=[KEY])[KEY]))]  # nested: inner rows only
     oof = pd.concat([pd.read_parquet(p) for p in sorted(oof_paths)], ignore_index=True)
     optimistic = optimism(fits, oof, dev, target, primary, task, matrix, winner["candidate"],
                           int(selection["bootstrap"]), int(selection["seed"]))
@@ -235,7 +236,7 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     plot_ranking(ranking, primary, plot_path)
     write_json(choice_path, choice)
     ledger.append(ledger_path, "tally", {
-        "winner": winner["candidate"], "rule": rule, "metric": primary, "candidates": n_candidates,
+        "scope": scope, "winner": winner["candidate"], "rule": rule, "metric": primary, "candidates": n_candidates,
         "failed": len(failed), "fit_files": len(fit_paths), "ranking_sha256": sha256_file(ranking_path),
         "choice_sha256": sha256_file(choice_path), "plot": str(Path(plot_path).name),
         "bbc_seed": int(selection["seed"]), "bbc_draws": int(selection["bootstrap"]),

@@ -22,6 +22,7 @@ wildcard_constraints:
     family="|".join(PLAN.families),
     repeat=r"\d+",
     fold=r"\d+",
+    outer=r"\d+",
 
 
 def run_step(input, output, params, wildcards, threads, log, rule):
@@ -57,17 +58,31 @@ def fits_of(kind):
     return PLAN.fit_files(kind)
 
 
+def nested_fits_of(kind):
+    def files(wildcards):
+        return PLAN.nested_fit_files(kind, int(wildcards.outer))
+
+    return files
+
+
+def nested_scores():
+    return [PLAN.path(f"nested/o{o}/score.json") for o in range(PLAN.config["nested"]["k"])]
+
+
 def max_threads():
     return max(PLAN.threads(f) for f in PLAN.families)
 
 
 def all_targets():
-    return [
+    targets = [
         PLAN.path("ranking.parquet"),
         PLAN.path("choice.json"),
         PLAN.path("final/verdict.json"),
         PLAN.path("audit.json"),
     ]
+    if PLAN.config["nested"]["k"]:
+        targets.append(PLAN.path("nested/summary.json"))
+    return targets
 
 
 onsuccess:
