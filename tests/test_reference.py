@@ -115,3 +115,48 @@ def test_verdict_accuracy_interval_equals_binomtest(bc_finished: Path) -> None:
     reference = binomtest(correct, n).proportion_ci(confidence_level=0.95, method="exact")
     assert block["interval"] == pytest.approx([reference.low, reference.high], abs=1e-12)
     assert block["interval_method"].startswith("exact binomial")
+
+
+def test_leave_one_out_of_least_squares_equals_the_press_closed_form(tmp_path: Path) -> None:
+    # Closed form of leave-one-out CV for linear least squares: CV = (1/n) * sum(((y_i - yhat_i) / (1 - h_ii))^2),
+    # h_ii the diagonal of the hat matrix (Hastie, Tibshirani & Friedman, The Elements of Statistical Learning,
+    # 2nd ed., 2009, eq. 7.52 in section 7.10.1; Allen, "The relationship between variable selection and data
+    # augmentation and a method for prediction", Technometrics 16, 1974: the PRESS statistic).
+    from conftest import diabetes_frame
+    from holdfast.fit import fit_family
+    from holdfast.folds import assign, check
+    from holdfast.tally import summarise
+
+    frame = diabetes_frame().head(60).reset_index(drop=True)
+    frame.insert(0, "row_key", [f"r{i:03d}" for i in range(len(frame))])
+    spec = {"scheme": "loo", "k": 5, "repeats": 1, "seed": 0}  # k is ignored for loo
+    folds = assign(frame, spec, "target", None)
+    check(folds, frame["row_key"], set(), spec)
+    assert folds["fold"].nunique() == 60
+    frame.to_parquet(tmp_path / "dev.parquet", index=False)
+    folds.to_parquet(tmp_path / "folds.parquet", index=False)
+    family = {"family": "ols", "candidates": [{"id": "ols", "family": "ols", "params": {},
+                                               "estimator": "sklearn.linear_model.LinearRegression",
+                                               "preprocess": {"impute": "median", "scale": "none"}}]}
+    columns = {"target": "target", "id": None, "group": None, "time": None, "drop": []}
+    fits = [fit_family(str(tmp_path / "dev.parquet"), str(tmp_path / "folds.parquet"), family, columns, 0, f,
+                       ["neg_mean_squared_error"], "regression", 1, ["sklearn"], str(tmp_path / f"f{f}.parquet"),
+                       str(tmp_path / f"o{f}.parquet"), str(tmp_path / "ledger.jsonl")) for f in range(60)]
+    ranking = summarise(pd.concat(fits, ignore_index=True), ["neg_mean_squared_error"], 60)
+    x = np.column_stack([np.ones(60), frame.drop(columns=["row_key", "target"]).to_numpy()])
+    y = frame["target"].to_numpy()
+    hat = x @ np.linalg.solve(x.T @ x, x.T)
+    residuals = y - hat @ y
+    press = np.mean((residuals / (1 - np.diag(hat))) ** 2)
+    assert -ranking.loc[0, "mean"] == pytest.approx(press, rel=1e-9)
+
+
+def test_leave_one_out_folds_equal_scikit_learn() -> None:
+    # Reference implementation: sklearn.model_selection.LeaveOneOut (split i validates row i).
+    from holdfast.folds import assign
+    from sklearn.model_selection import LeaveOneOut
+
+    dev = pd.DataFrame({"row_key": [f"k{i}" for i in range(12)], "y": np.arange(12.0)})
+    table = assign(dev, {"scheme": "loo", "k": 5, "repeats": 1, "seed": 0}, "y", None).set_index("row_key")["fold"]
+    for fold, (_, validation) in enumerate(LeaveOneOut().split(np.zeros((12, 1)))):
+        assert set(dev["row_key"].iloc[validation]) == set(table[table == fold].index)

@@ -103,6 +103,12 @@ def validate(raw: Any) -> dict[str, Any]:
 
     if not isinstance(raw, dict):
         raise ConfigError("config must be a mapping of keys to values; see config/config.yaml for an example")
+    folds_raw = raw.get("folds") if isinstance(raw.get("folds"), dict) else {}
+    if folds_raw.get("scheme") == "loo":
+        for key in ("k", "repeats"):
+            if key in folds_raw:
+                raise ConfigError(f"config key 'folds.{key}' has no effect with folds.scheme: loo (one fold per "
+                                  "development row, one repeat); remove it")
     config = copy.deepcopy(raw)
     schema = _schema()
     _fill_defaults(config, schema)
@@ -149,6 +155,9 @@ def _cross_checks(config: dict[str, Any]) -> None:
             raise ConfigError(f"config key 'candidates.{family}': parameter '{overlap[0]}' is in both params and grid; "
                               "keep it in one of them")
     _check_selection(config)
+    if config["nested"]["k"] and folds["scheme"] == "loo":
+        raise ConfigError("config keys 'nested.k' and 'folds.scheme: loo' do not combine (the inner fold count "
+                          "would differ per outer fold); use kfold or stratified folds for nested CV")
     if config["nested"]["k"] == 1:
         raise ConfigError("config key 'nested.k' is 1; use 0 to turn nested cross-validation off or at least 2")
 

@@ -16,10 +16,19 @@ import pandas as pd
 from .dataset import KEY
 from .errors import ConfigError, DataError
 
+MAX_FIT_JOBS = 5000
+
+
+def effective_k(spec: dict[str, Any], n_rows: int) -> int:
+    """Folds per repeat: k, or one per row for leave-one-out."""
+    return n_rows if spec["scheme"] == "loo" else int(spec["k"])
+
 
 def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, groups: pd.Series | None) -> None:
     """Refuse fold settings that cannot work on this data, before any work is done."""
-    k, scheme = int(spec["k"]), spec["scheme"]
+    k, scheme = effective_k(spec, n_rows), spec["scheme"]
+    if scheme == "loo" and n_rows < 2:
+        raise ConfigError(f"folds.scheme loo needs at least 2 development rows, there are {n_rows}; add data")
     if k > n_rows:
         raise ConfigError(f"config key 'folds.k' is {k} but there are only {n_rows} development rows; lower folds.k")
     if scheme == "stratified":
@@ -40,13 +49,15 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
 def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
             groups: pd.Series | None) -> Iterator[np.ndarray]:
     """Yield the validation indices of each fold of one repeat."""
-    from sklearn.model_selection import GroupKFold, KFold, StratifiedKFold
+    from sklearn.model_selection import GroupKFold, KFold, LeaveOneOut, StratifiedKFold
 
     seed = int(spec["seed"]) + repeat
-    k = int(spec["k"])
+    k = effective_k(spec, n)
     placeholder = np.zeros((n, 1))
     scheme = spec["scheme"]
-    if scheme == "kfold":
+    if scheme == "loo":  # reference: sklearn.model_selection.LeaveOneOut (fold i validates row i)
+        splits = LeaveOneOut().split(placeholder)
+    elif scheme == "kfold":
         splits = KFold(n_splits=k, shuffle=True, random_state=seed).split(placeholder)
     elif scheme == "stratified":
         assert target is not None
@@ -78,7 +89,7 @@ def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: 
         parts.append(pd.DataFrame({KEY: keys, "repeat": repeat, "fold": fold_of}))
     table = pd.concat(parts, ignore_index=True)
     table["repeat"] = table["repeat"].astype(_small_uint(int(spec["repeats"])))
-    table["fold"] = table["fold"].astype(_small_uint(int(spec["k"])))
+    table["fold"] = table["fold"].astype(_small_uint(effective_k(spec, len(dev))))
     return table
 
 
@@ -86,8 +97,8 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
           groups: pd.Series | None = None) -> None:
     """Check the invariants: every dev row validated once per repeat, no empty fold,
     no group on both sides of a fold, no test key anywhere. Raises DataError naming the fold."""
-    scheme, k = spec["scheme"], int(spec["k"])
     dev_set = set(map(str, dev_keys))
+    scheme, k = spec["scheme"], effective_k(spec, len(dev_set))
     if test_keys:
         leaked = set(table[KEY]) & test_keys
         if leaked:
@@ -114,6 +125,6 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
                                 f"{int(split.iloc[0])} folds (on both sides of a split); rebuild the folds")
 
 
-def fold_ids(spec: dict[str, Any]) -> list[tuple[int, int]]:
-    """Every (repeat, fold) pair the spec produces."""
-    return [(r, f) for r in range(int(spec["repeats"])) for f in range(int(spec["k"]))]
+def fold_ids(spec: dict[str, Any], n_rows: int) -> list[tuple[int, int]]:
+    """Every (repeat, fold) pair the spec produces for ``n_rows`` development rows."""
+    return [(r, f) for r in range(int(spec["repeats"])) for f in range(effective_k(spec, n_rows))]

@@ -205,23 +205,30 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             cols = [c for c in (spec["target"], spec["group"]) if c]
             dev = pd.read_parquet(exp / DEV, columns=cols)
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
+        n_dev = int(manifest["counts"]["dev"])
     else:
         from .dataset import row_keys
         from .seal import check_development_classes, load_checked, sealed_mask
 
         frame, task = load_checked(config["data"]["path"], spec)
+        keys = row_keys(frame, spec["id"])
+        target = frame[spec["target"]] if task == "classification" else None
+        dev = frame[~sealed_mask(keys, target, {**spec, "task": task})]
+        n_dev = len(dev)
         if main:
-            keys = row_keys(frame, spec["id"])
-            target = frame[spec["target"]] if task == "classification" else None
-            dev = frame[~sealed_mask(keys, target, {**spec, "task": task})]
             if task == "classification":
                 check_development_classes(dev[spec["target"]], config["data"]["path"])
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
     config = cfg.with_task(config, task)
     families = expand(config)
-    from .folds import fold_ids
+    from .folds import MAX_FIT_JOBS, fold_ids
 
-    plan = Plan(config=config, exp=exp, families=families, manifest=manifest, fold_ids=fold_ids(config["folds"]))
+    plan = Plan(config=config, exp=exp, families=families, manifest=manifest,
+                fold_ids=fold_ids(config["folds"], n_dev))
+    jobs = len(plan.fold_ids) * len(families) * (1 + int(config["nested"]["k"]))
+    if jobs > MAX_FIT_JOBS:
+        raise ConfigError(f"config key 'folds' gives {jobs} fit jobs ({len(plan.fold_ids)} folds x {len(families)} "
+                          f"families), more than {MAX_FIT_JOBS}; use fewer folds (e.g. kfold instead of loo)")
     if main:
         from .candidates import check_estimators
         from .folds import check_feasible
