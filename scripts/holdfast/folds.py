@@ -15,13 +15,7 @@ import pandas as pd
 
 from .dataset import KEY
 from .errors import ConfigError, DataError
-
-MAX_FIT_JOBS = 5000
-
-
-def effective_k(spec: dict[str, Any], n_rows: int) -> int:
-    """Folds per repeat: k, or one per row for leave-one-out."""
-    return n_rows if spec["scheme"] == "loo" else int(spec["k"])
+from .foldspec import effective_k
 
 
 def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, groups: pd.Series | None) -> None:
@@ -123,8 +117,3 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
             if len(split):
                 raise DataError(f"folds ({scheme}), repeat {repeat}: group '{split.index[0]}' is in "
                                 f"{int(split.iloc[0])} folds (on both sides of a split); rebuild the folds")
-
-
-def fold_ids(spec: dict[str, Any], n_rows: int) -> list[tuple[int, int]]:
-    """Every (repeat, fold) pair the spec produces for ``n_rows`` development rows."""
-    return [(r, f) for r in range(int(spec["repeats"])) for f in range(effective_k(spec, n_rows))]

@@ -37,7 +37,10 @@ def actor(rule: str | None = None) -> dict[str, Any]:
         user = getpass.getuser()
     except (KeyError, OSError):
         user = str(os.getuid())
-    return {"user": user, "host": socket.gethostname(), "pid": os.getpid(), "rule": rule}
+    who = {"user": user, "host": socket.gethostname(), "pid": os.getpid(), "rule": rule}
+    if os.environ.get("SLURM_JOB_ID"):
+        who["slurm_job"] = os.environ["SLURM_JOB_ID"]  # evidence that the step ran under the scheduler
+    return who
 
 
 def line_hash(entry: dict[str, Any]) -> str:

@@ -221,7 +221,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
     config = cfg.with_task(config, task)
     families = expand(config)
-    from .folds import MAX_FIT_JOBS, fold_ids
+    from .foldspec import MAX_FIT_JOBS, fold_ids
 
     plan = Plan(config=config, exp=exp, families=families, manifest=manifest,
                 fold_ids=fold_ids(config["folds"], n_dev))
