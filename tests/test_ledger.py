@@ -32,7 +32,7 @@ def test_chain_links_every_line(tmp_path: Path) -> None:
 
 def test_parallel_appends_never_interleave_or_vanish(tmp_path: Path) -> None:
     path = str(tmp_path / "ledger.jsonl")
-    workers, count = 8, 60
+    workers, count = 8, 200  # issue acceptance: at least 8 processes x 200 appends
     ctx = multiprocessing.get_context("fork")
     procs = [ctx.Process(target=_appender, args=(path, w, count)) for w in range(workers)]
     for proc in procs:

@@ -169,3 +169,33 @@ def test_regression_twin_on_diabetes(tmp_path: Path) -> None:
     manifest = json.loads((exp / "sealed/manifest.json").read_text())
     assert manifest["spec"]["task"] == "regression" and manifest["keys"]["from"] == "row content"
     assert audit_cli(exp).returncode == 0
+
+
+def _open(exp: str, queue: object) -> None:
+    from holdfast.errors import SealedAccessError
+    from holdfast.opening import open_test
+
+    spec = {"target": "target", "id": "patient", "group": None, "time": None, "drop": []}
+    try:
+        open_test(exp, "bc", spec, ["accuracy"], "classification", [], 0.95, 100, 0, f"{exp}/final/verdict.json")
+        queue.put("opened")  # type: ignore[attr-defined]
+    except SealedAccessError:
+        queue.put("refused")  # type: ignore[attr-defined]
+
+
+def test_two_concurrent_openings_give_exactly_one(bc_workdir: Path) -> None:
+    import multiprocessing
+
+    first = run_workflow(bc_workdir, "results/bc/model/model.skops")
+    assert first.returncode == 0, first.stderr[-3000:]
+    exp = str(bc_workdir / "results" / "bc")
+    ctx = multiprocessing.get_context("fork")
+    queue = ctx.Queue()
+    procs = [ctx.Process(target=_open, args=(exp, queue)) for _ in range(2)]
+    for proc in procs:
+        proc.start()
+    for proc in procs:
+        proc.join(timeout=300)
+    assert sorted(queue.get(timeout=5) for _ in procs) == ["opened", "refused"]
+    entries = [json.loads(x) for x in (bc_workdir / "results/bc/ledger.jsonl").read_text().splitlines()]
+    assert sum(e["event"] == "open_test" for e in entries) == 1
