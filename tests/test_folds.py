@@ -8,7 +8,8 @@ import pytest
 from holdfast.errors import ConfigError, DataError
 from holdfast.folds import assign, check, check_feasible
 
-SCHEMES = [("kfold", 1), ("kfold", 3), ("stratified", 1), ("stratified", 2), ("group", 1), ("group", 3)]
+SCHEMES = [("kfold", 1), ("kfold", 3), ("stratified", 1), ("stratified", 2), ("group", 1), ("group", 3),
+           ("stratified_group", 1)]
 
 
 def dev_frame(n: int = 240, seed: int = 0) -> pd.DataFrame:
@@ -43,7 +44,7 @@ def test_invariants_hold_for_every_scheme(scheme: str, repeats: int) -> None:
             validation = set(part.loc[part["fold"] == fold, "row_key"])
             training = set(part["row_key"]) - validation
             assert validation and training and not validation & training  # disjoint, non-empty
-            if scheme == "group":
+            if scheme in ("group", "stratified_group"):
                 assert not {group_of[k] for k in validation} & {group_of[k] for k in training}
     assert not set(table["row_key"]) & test_keys
 
@@ -53,7 +54,8 @@ def test_same_seed_same_folds_other_seed_other_folds(scheme: str, repeats: int) 
     dev = dev_frame()
     first = assign(dev, spec(scheme, repeats), "y", "g")
     assert first.equals(assign(dev, spec(scheme, repeats), "y", "g"))
-    assert not first.equals(assign(dev, spec(scheme, repeats, seed=8), "y", "g"))
+    if scheme != "stratified_group":  # its seed only breaks ties (see the test of repeated repeats)
+        assert not first.equals(assign(dev, spec(scheme, repeats, seed=8), "y", "g"))
     if repeats > 1:  # repeats differ from each other
         by_repeat = [part["fold"].to_numpy() for _, part in first.groupby("repeat")]
         assert not np.array_equal(by_repeat[0], by_repeat[1])
@@ -84,6 +86,28 @@ def test_group_and_plain_folds_equal_scikit_learn() -> None:
         groups = dev["g"] if scheme == "group" else None
         for fold, (_, validation) in enumerate(splitter.split(np.zeros((len(dev), 1)), dev["y"], groups)):
             assert set(dev["row_key"].iloc[validation]) == set(table[table == fold].index)
+
+
+def test_repeats_that_repeat_themselves_are_refused() -> None:
+    # scikit-learn's StratifiedGroupKFold shuffles only among groups with the same class distribution, so on
+    # data like this every seed gives the same folds: repeats would silently add nothing.
+    dev = dev_frame()
+    with pytest.raises(ConfigError, match=r"'folds.repeats': repeat 1 of scheme stratified_group gives the same"):
+        assign(dev, spec("stratified_group", 2), "y", "g")
+
+
+def test_stratified_group_folds_equal_scikit_learn() -> None:
+    # Reference implementation: sklearn.model_selection.StratifiedGroupKFold(n_splits=k, shuffle=True,
+    # random_state=seed + repeat) with the same target and groups, rows in stored order.
+    from sklearn.model_selection import StratifiedGroupKFold
+
+    dev = dev_frame(260, seed=9)
+    table = assign(dev, spec("stratified_group", 1, k=4, seed=3), "y", "g")
+    for repeat in range(1):
+        ours = table[table["repeat"] == repeat].set_index("row_key")["fold"]
+        splitter = StratifiedGroupKFold(n_splits=4, shuffle=True, random_state=3 + repeat)
+        for fold, (_, validation) in enumerate(splitter.split(np.zeros((len(dev), 1)), dev["y"], dev["g"])):
+            assert set(dev["row_key"].iloc[validation]) == set(ours[ours == fold].index)
 
 
 def test_check_catches_each_broken_table() -> None:

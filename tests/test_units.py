@@ -17,6 +17,8 @@ from holdfast.errors import ConfigError, FitError, ModelFileError
 from holdfast.fit import fit_family
 from holdfast.refit import load_model, trusted_types
 from holdfast.seal import sealed_mask
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 
 def test_candidate_ids_are_stable_and_canonical() -> None:
@@ -55,6 +57,32 @@ def test_hashed_membership_depends_only_on_key_and_salt() -> None:
     assert np.array_equal(sealed_mask(grown, None, spec)[:2000], mask)  # old rows keep their side
     assert not np.array_equal(sealed_mask(keys, None, {**spec, "salt": "t"}), mask)
     assert hash_unit(pd.Series(["id0"]), "s")[0] == hash_unit(pd.Series(["id0"]), "s")[0]
+
+
+def test_grouped_test_partition_keeps_every_group_on_one_side() -> None:
+    groups = pd.Series([f"route{i % 37}" for i in range(3000)])
+    keys = pd.Series([f"id{i}" for i in range(3000)])
+    mask = sealed_mask(keys, None, {"fraction": 0.25, "scheme": "grouped", "salt": "s"}, groups)
+    sealed_groups, dev_groups = set(groups[mask]), set(groups[~mask])
+    assert sealed_groups and dev_groups and not sealed_groups & dev_groups
+    # a group's side depends only on its own name and the salt
+    alone = sealed_mask(keys[:1], None, {"fraction": 0.25, "scheme": "grouped", "salt": "s"}, groups[:1])
+    assert bool(alone[0]) == bool(mask[0])
+
+
+@settings(max_examples=60, deadline=None)
+@given(old=st.lists(st.text(min_size=1, max_size=12), min_size=1, max_size=80, unique=True),
+       new=st.lists(st.text(min_size=1, max_size=12), max_size=40, unique=True),
+       fraction=st.floats(min_value=0.05, max_value=0.95), salt=st.text(min_size=1, max_size=8))
+def test_hashed_partitions_keep_old_rows_on_their_side_when_data_grows(old: list[str], new: list[str],
+                                                                         fraction: float, salt: str) -> None:
+    # Property: appending rows (same salt) never moves an old test row to dev or an old dev row to test.
+    grown = old + [k for k in new if k not in set(old)]
+    for scheme in ("hashed", "grouped"):
+        spec = {"fraction": fraction, "scheme": scheme, "salt": salt}
+        before = sealed_mask(pd.Series(old), None, spec, pd.Series(old))
+        after = sealed_mask(pd.Series(grown), None, spec, pd.Series(grown))
+        assert np.array_equal(after[: len(old)], before)
 
 
 def test_stratified_test_partition_keeps_class_shares() -> None:

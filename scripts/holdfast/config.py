@@ -136,11 +136,13 @@ def _cross_checks(config: dict[str, Any]) -> None:
         if column in seen:
             raise ConfigError(f"config key 'data.drop' lists '{column}', which is data.{seen[column]}; "
                               "remove it from drop")
-    if folds["scheme"] == "group" and data["group"] is None:
-        raise ConfigError("config key 'folds.scheme' is 'group' but 'data.group' is not set; "
-                          "name the group column in data.group or choose another scheme")
-    if folds["scheme"] == "stratified" and config.get("task") == "regression":
-        raise ConfigError("config key 'folds.scheme' is 'stratified' but task is regression; use kfold or group")
+    for key, scheme in (("folds.scheme", folds["scheme"]), ("test.scheme", config["test"]["scheme"])):
+        if scheme in ("group", "stratified_group", "grouped") and data["group"] is None:
+            raise ConfigError(f"config key '{key}' is '{scheme}' but 'data.group' is not set; "
+                              "name the group column in data.group or choose another scheme")
+    if folds["scheme"] in ("stratified", "stratified_group") and config.get("task") == "regression":
+        raise ConfigError(f"config key 'folds.scheme' is '{folds['scheme']}' but task is regression; "
+                          "use kfold or group")
     if config["test"]["scheme"] == "stratified" and config.get("task") == "regression":
         raise ConfigError("config key 'test.scheme' is 'stratified' but task is regression; use hashed")
     allowed = allowed_prefixes(config)
@@ -212,8 +214,8 @@ def with_task(config: dict[str, Any], task: str) -> dict[str, Any]:
         out["metrics"] = list(DEFAULT_METRICS[task])
     if task == "regression":
         for key in ("folds", "test"):
-            if out[key]["scheme"] == "stratified":
-                raise ConfigError(f"config key '{key}.scheme' is 'stratified' but the target is continuous "
+            if out[key]["scheme"] in ("stratified", "stratified_group"):
+                raise ConfigError(f"config key '{key}.scheme' is '{out[key]['scheme']}' but the target is continuous "
                                   "(regression); use another scheme")
     return out
 

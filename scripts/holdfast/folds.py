@@ -25,14 +25,14 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
         raise ConfigError(f"folds.scheme loo needs at least 2 development rows, there are {n_rows}; add data")
     if k > n_rows:
         raise ConfigError(f"config key 'folds.k' is {k} but there are only {n_rows} development rows; lower folds.k")
-    if scheme == "stratified":
+    if scheme in ("stratified", "stratified_group"):
         assert target is not None
         counts = target.value_counts()
         if k > int(counts.min()):
             raise ConfigError(f"config key 'folds.k' is {k} but class '{counts.idxmin()}' of '{target.name}' has only "
                               f"{int(counts.min())} development rows; lower folds.k to at most {int(counts.min())} "
                               "or use folds.scheme: kfold")
-    if scheme == "group":
+    if scheme in ("group", "stratified_group"):
         assert groups is not None
         n_groups = int(groups.nunique())
         if k > n_groups:
@@ -43,7 +43,7 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
 def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
             groups: pd.Series | None) -> Iterator[np.ndarray]:
     """Yield the validation indices of each fold of one repeat."""
-    from sklearn.model_selection import GroupKFold, KFold, LeaveOneOut, StratifiedKFold
+    from sklearn.model_selection import GroupKFold, KFold, LeaveOneOut, StratifiedGroupKFold, StratifiedKFold
 
     seed = int(spec["seed"]) + repeat
     k = effective_k(spec, n)
@@ -59,6 +59,10 @@ def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
     elif scheme == "group":
         assert groups is not None
         splits = GroupKFold(n_splits=k, shuffle=True, random_state=seed).split(placeholder, groups=groups.to_numpy())
+    elif scheme == "stratified_group":
+        assert target is not None and groups is not None
+        splitter = StratifiedGroupKFold(n_splits=k, shuffle=True, random_state=seed)
+        splits = splitter.split(placeholder, target.to_numpy(), groups=groups.to_numpy())
     else:
         raise ConfigError(f"config key 'folds.scheme': unknown scheme {scheme!r}; use kfold, stratified or group")
     for _, validation in splits:
@@ -71,7 +75,7 @@ def _small_uint(limit: int) -> str:
 
 def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: str | None) -> pd.DataFrame:
     """Draw the fold table for the development rows (in their stored order)."""
-    target = dev[target_col] if spec["scheme"] == "stratified" else None
+    target = dev[target_col] if spec["scheme"] in ("stratified", "stratified_group") else None
     groups = dev[group_col] if group_col else None
     check_feasible(spec, len(dev), target, groups)
     keys = dev[KEY].to_numpy()
@@ -81,6 +85,11 @@ def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: 
         for fold, validation in enumerate(_splits(spec, repeat, len(dev), target, groups)):
             fold_of[validation] = fold
         parts.append(pd.DataFrame({KEY: keys, "repeat": repeat, "fold": fold_of}))
+    for repeat in range(1, len(parts)):
+        if np.array_equal(parts[repeat]["fold"].to_numpy(), parts[0]["fold"].to_numpy()):
+            raise ConfigError(f"config key 'folds.repeats': repeat {repeat} of scheme {spec['scheme']} gives the same "
+                              "folds as repeat 0 (its shuffle only reorders groups with tied class shares), so the "
+                              "repeats would add nothing; use repeats: 1 or another scheme")
     table = pd.concat(parts, ignore_index=True)
     table["repeat"] = table["repeat"].astype(_small_uint(int(spec["repeats"])))
     table["fold"] = table["fold"].astype(_small_uint(effective_k(spec, len(dev))))
@@ -111,7 +120,7 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
         for fold in range(k):
             if int(sizes.get(fold, 0)) == 0:
                 raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold} is empty (0 rows); lower folds.k")
-        if group_of is not None and scheme == "group":
+        if group_of is not None and scheme in ("group", "stratified_group"):
             fold_groups = part.assign(g=part[KEY].map(group_of)).groupby("g")["fold"].nunique()
             split = fold_groups[fold_groups > 1]
             if len(split):

@@ -199,7 +199,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         if main:
             _data_unchanged(config, manifest)
         task = manifest["spec"]["task"]
-        if main and config["folds"]["scheme"] in ("stratified", "group"):
+        if main and config["folds"]["scheme"] in ("stratified", "group", "stratified_group"):
             import pandas as pd
 
             cols = [c for c in (spec["target"], spec["group"]) if c]
@@ -213,7 +213,8 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         frame, task = load_checked(config["data"]["path"], spec)
         keys = row_keys(frame, spec["id"])
         target = frame[spec["target"]] if task == "classification" else None
-        dev = frame[~sealed_mask(keys, target, {**spec, "task": task})]
+        groups = frame[spec["group"]] if spec["group"] else None
+        dev = frame[~sealed_mask(keys, target, {**spec, "task": task}, groups)]
         n_dev = len(dev)
         if main:
             if task == "classification":
@@ -237,8 +238,8 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         check_metrics(config["metrics"], task)
         check_estimators(config, families, task, cfg.allowed_prefixes(config))
         if dev_target is not None:
-            check_feasible(config["folds"], len(dev_target),
-                           dev_target if config["folds"]["scheme"] == "stratified" else None, dev_groups)
+            stratified = config["folds"]["scheme"] in ("stratified", "stratified_group")
+            check_feasible(config["folds"], len(dev_target), dev_target if stratified else None, dev_groups)
         _opening_guard(plan)
     return plan
 

@@ -27,8 +27,15 @@ def data_fingerprint(path: str | os.PathLike[str]) -> dict[str, Any]:
     return {"sha256": sha256_file(path), "bytes": stat.st_size, "mtime_ns": stat.st_mtime_ns}
 
 
-def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any]) -> np.ndarray:
+def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any],
+                groups: pd.Series | None = None) -> np.ndarray:
     """Boolean mask of the rows that go to the sealed test set."""
+    if spec["scheme"] == "grouped":
+        assert groups is not None
+        values = groups.astype(str)
+        unique = pd.Series(values.unique())
+        chosen = set(unique[hash_unit(unique, spec["salt"]) < float(spec["fraction"])])
+        return values.isin(chosen).to_numpy()
     units = hash_unit(keys, spec["salt"])
     fraction = float(spec["fraction"])
     if spec["scheme"] == "hashed":
@@ -42,7 +49,8 @@ def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any])
             take = round(fraction * len(idx))
             mask[order[:take]] = True
         return mask
-    raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; use hashed or stratified")
+    raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; use hashed, stratified or "
+                      "grouped")
 
 
 def check_development_classes(dev_target: pd.Series, source: str) -> None:
@@ -77,7 +85,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     frame, task = load_checked(data_path, spec)
     keys = row_keys(frame, spec.get("id"))
     target = frame[spec["target"]] if task == "classification" else None
-    mask = sealed_mask(keys, target, spec)
+    groups = frame[spec["group"]] if spec.get("group") else None
+    mask = sealed_mask(keys, target, spec, groups)
     n_test, n_dev = int(mask.sum()), int((~mask).sum())
     if n_test < 1 or n_dev < 2:
         raise DataError(f"test.fraction {spec['fraction']} leaves {n_test} test and {n_dev} development rows in "
