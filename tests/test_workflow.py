@@ -199,3 +199,15 @@ def test_two_concurrent_openings_give_exactly_one(bc_workdir: Path) -> None:
     assert sorted(queue.get(timeout=5) for _ in procs) == ["opened", "refused"]
     entries = [json.loads(x) for x in (bc_workdir / "results/bc/ledger.jsonl").read_text().splitlines()]
     assert sum(e["event"] == "open_test" for e in entries) == 1
+
+
+def test_outputs_are_byte_identical_with_one_core(bc_finished: Path, bc_workdir: Path) -> None:
+    import hashlib
+
+    result = run_workflow(bc_workdir, "--cores", "1")
+    assert result.returncode == 0, result.stderr[-3000:]
+    for name in ("folds.parquet", "ranking.parquet", "choice.json", "final/verdict.json", "dev.parquet",
+                 "sealed/test.parquet", "plots/ranking.png"):
+        ours = hashlib.sha256((bc_workdir / "results/bc" / name).read_bytes()).hexdigest()
+        theirs = hashlib.sha256((bc_finished / "results/bc" / name).read_bytes()).hexdigest()
+        assert ours == theirs, name
