@@ -243,7 +243,9 @@ def fold_spec(config: dict[str, Any]) -> dict[str, Any]:
 
 def selection_fingerprint(config: dict[str, Any], code: str) -> str:
     """Hash of everything that decides which model is chosen (and so what an opening evaluates)."""
-    keys = ("data", "task", "metrics", "test", "folds", "candidates", "selection", "allowed_modules")
+    # Every key that reaches a param of a rule upstream of (or at) the opening.
+    keys = ("data", "task", "metrics", "test", "folds", "candidates", "selection", "allowed_modules", "leakage",
+            "opening")
     part = {k: config.get(k) for k in keys}
     part["test"] = {k: v for k, v in config["test"].items() if k != "reopen_reasons"}
     part["data"] = {k: v for k, v in config["data"].items() if k != "path"}

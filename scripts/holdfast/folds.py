@@ -126,3 +126,33 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
             if len(split):
                 raise DataError(f"folds ({scheme}), repeat {repeat}: group '{split.index[0]}' is in "
                                 f"{int(split.iloc[0])} folds (on both sides of a split); rebuild the folds")
+
+
+def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any], task: str,
+                   settings: dict[str, Any], manifest: dict[str, Any], summary_path: str) -> dict[str, Any]:
+    """Write folds_summary.parquet and return leakage.json's content; duplicates may be an error."""
+    from ._io import write_parquet
+    from .leakage import fold_summary
+
+    summary = fold_summary(dev, table, spec, task)
+    within = int(summary["duplicates_with_training"].sum())
+    if within and settings.get("duplicates") == "error":
+        worst = summary.sort_values("duplicates_with_training").iloc[-1]
+        raise DataError(f"folds: {within} validation row(s) repeat the features of a training row (most in repeat "
+                        f"{worst['repeat']}, fold {worst['fold']}: {worst['duplicates_with_training']}); "
+                        "remove duplicate rows or set leakage.duplicates: warn")
+    write_parquet(summary_path, summary)
+    at_seal = manifest.get("leakage", {})
+    lines = [f"leakage: {at_seal.get('duplicate_feature_rows_dev_test', 0)} test row(s) duplicate development rows; "
+             f"{within} validation row(s) duplicate training rows across folds; group overlap: none"]
+    lines += [f"leakage warning: feature '{a['feature']}' alone reaches {a['measure']} {a['value']:.3f}"
+              for a in at_seal.get("single_feature", [])]
+    return {
+        "duplicate_feature_rows_dev_test": at_seal.get("duplicate_feature_rows_dev_test"),
+        "duplicate_feature_rows_within_folds": within,
+        "duplicates_mode": settings.get("duplicates", "warn"),
+        "group_overlap": "none (checked for every fold)" if spec.get("group") else "no group column",
+        "single_feature": at_seal.get("single_feature", []),
+        "single_feature_threshold": at_seal.get("single_feature_threshold"),
+        "summary": "\n".join(lines),
+    }

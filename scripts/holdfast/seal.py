@@ -19,6 +19,7 @@ from ._io import read_table, sha256_file, write_json, write_parquet
 from .dataset import KEY, check_columns, check_target_for_task, hash_unit, infer_task, keys_digest, row_keys
 from .errors import ConfigError, DataError, SealedAccessError
 from .layout import DEV, LEDGER, MANIFEST, TEST
+from .leakage import duplicates_across, single_feature_alarms
 
 
 def data_fingerprint(path: str | os.PathLike[str]) -> dict[str, Any]:
@@ -71,7 +72,7 @@ def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd
 
 
 def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str | os.PathLike[str],
-         experiment: str, rule: str | None = None) -> dict[str, Any]:
+         experiment: str, rule: str | None = None, leakage: dict[str, Any] | None = None) -> dict[str, Any]:
     """Seal the test partition of an experiment and return its manifest.
 
     Refuses to run when the experiment already has a manifest or a sealed file:
@@ -96,6 +97,12 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     keyed = frame.copy()
     keyed.insert(0, KEY, keys.to_numpy())
     test, dev = keyed[mask].reset_index(drop=True), keyed[~mask].reset_index(drop=True)
+    guards = {"duplicates": "warn", "single_feature_threshold": 0.98, **(leakage or {})}
+    duplicates = duplicates_across(dev, test, spec)
+    if duplicates and guards["duplicates"] == "error":
+        raise DataError(f"{duplicates} sealed test row(s) of '{data_path}' repeat the features of a development row "
+                        "(exact duplicates); remove them or set leakage.duplicates: warn")
+    alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
 
     write_parquet(out / TEST, test, mode=0o444)
     write_parquet(out / DEV, dev)
@@ -111,6 +118,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                  "from": "id column" if spec.get("id") else "row content"},
         "files": {"test.parquet": sha256_file(out / TEST), "dev.parquet": sha256_file(out / DEV)},
         "holdfast": __version__,
+        "leakage": {"duplicate_feature_rows_dev_test": duplicates, "single_feature": alarms,
+                    "single_feature_threshold": float(guards["single_feature_threshold"])},
     }
     if task == "classification":
         manifest["counts"]["classes"] = {
@@ -120,6 +129,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     entry = ledger.append(out / LEDGER, "seal", {
         "experiment": experiment, "data_sha256": fingerprint["sha256"], "spec": sealed_spec,
         "counts": manifest["counts"], "keys": manifest["keys"], "files": manifest["files"],
+        "leakage": manifest["leakage"],
     }, rule=rule)
     manifest["ledger_anchor"] = entry["hash"]
     write_json(out / MANIFEST, manifest)

@@ -37,9 +37,15 @@ def seal(smk: Any) -> None:
 
     # The data path is read from the config, not a param: moving the file must not re-run the seal.
     exp = str(Path(smk.output.manifest).parents[1])
+    # Leakage settings come from the config too: a changed param would make Snakemake re-run the seal.
     manifest = run_seal(smk.config["data"]["path"], json.loads(smk.params.spec), exp, smk.params.experiment,
-                        rule=smk.rule)
+                        rule=smk.rule, leakage=smk.config.get("leakage"))
     print(f"sealed {manifest['counts']['test']} test rows; {manifest['counts']['dev']} development rows")
+    leaks = manifest["leakage"]
+    if leaks["duplicate_feature_rows_dev_test"]:
+        print(f"WARNING leakage: {leaks['duplicate_feature_rows_dev_test']} test row(s) duplicate development rows")
+    for alarm in leaks["single_feature"]:
+        print(f"WARNING leakage: feature '{alarm['feature']}' alone reaches {alarm['measure']} {alarm['value']:.3f}")
 
 
 def _scope(smk: Any) -> str:
@@ -53,8 +59,8 @@ def assign_folds(smk: Any) -> None:
     import pandas as pd
 
     from . import ledger
-    from ._io import sha256_file, write_parquet
-    from .folds import assign, check
+    from ._io import read_json, sha256_file, write_json, write_parquet
+    from .folds import assign, check, leakage_report
 
     spec, fold_spec = json.loads(smk.params.spec), json.loads(smk.params.folds)
     dev = pd.read_parquet(smk.input.dev)
@@ -68,13 +74,18 @@ def assign_folds(smk: Any) -> None:
     groups = dev[spec["group"]] if spec["group"] else None
     test_keys = set(pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"])
     check(table, dev["row_key"], test_keys, fold_spec, groups)
+    report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
+                            read_json(smk.input.manifest), smk.output.summary)
     write_parquet(smk.output.folds, table)
+    write_json(smk.output.leakage, report)
     ledger.append(smk.params.ledger, "assign_folds", {
         "scope": getattr(smk.params, "scope", scope), "scheme": fold_spec["scheme"], "k": fold_spec["k"],
         "repeats": fold_spec["repeats"],
         "seeds": [fold_spec["seed"] + r for r in range(fold_spec["repeats"])], "rows": len(dev),
         "folds_sha256": sha256_file(smk.output.folds), "dev_sha256": sha256_file(smk.input.dev),
+        "leakage_sha256": sha256_file(smk.output.leakage), "summary_sha256": sha256_file(smk.output.summary),
     }, rule=smk.rule)
+    print(report["summary"])
     print(f"assigned {len(dev)} rows to {fold_spec['k']} folds x {fold_spec['repeats']} repeat(s)")
 
 

@@ -5,12 +5,16 @@ rule assign_folds:
         manifest=PLAN.path("sealed/manifest.json"),
     output:
         folds=PLAN.path("folds.parquet"),
+        summary=PLAN.path("folds_summary.parquet"),
+        leakage=PLAN.path("leakage.json"),
     log:
         PLAN.path("logs/assign_folds.log"),
     params:
         spec=SPEC,
         folds=json.dumps(PLAN.config["folds"], sort_keys=True),
         test=PLAN.path("sealed/test.parquet"),
+        task=PLAN.config["task"],
+        leakage=json.dumps(PLAN.config["leakage"], sort_keys=True),
         ledger=LEDGER,
         code=code_hash("assign_folds"),
     resources:

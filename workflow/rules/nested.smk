@@ -3,12 +3,16 @@
 use rule assign_folds as assign_outer_folds with:
     output:
         folds=PLAN.path("nested/outer_folds.parquet"),
+        summary=PLAN.path("nested/outer_folds_summary.parquet"),
+        leakage=PLAN.path("nested/outer_leakage.json"),
     log:
         PLAN.path("logs/nested/assign_outer_folds.log"),
     params:
         spec=SPEC,
         folds=json.dumps(PLAN.outer_fold_spec(), sort_keys=True),
         test=PLAN.path("sealed/test.parquet"),
+        task=PLAN.config["task"],
+        leakage=json.dumps(PLAN.config["leakage"], sort_keys=True),
         ledger=LEDGER,
         code=code_hash("assign_folds"),
         scope="outer",
@@ -21,6 +25,8 @@ use rule assign_folds as nested_assign_folds with:
         outer=PLAN.path("nested/outer_folds.parquet"),
     output:
         folds=PLAN.path("nested/o{outer}/folds.parquet"),
+        summary=PLAN.path("nested/o{outer}/folds_summary.parquet"),
+        leakage=PLAN.path("nested/o{outer}/leakage.json"),
     log:
         PLAN.path("logs/nested/o{outer}/assign_folds.log"),
 
