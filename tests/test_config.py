@@ -72,3 +72,14 @@ def test_unsafe_yaml_tags_are_refused(tmp_path: Any) -> None:
     path.write_text("experiment: !!python/object/apply:os.system ['echo hi']\n")
     with pytest.raises(ConfigError, match="is not plain YAML"):
         cfg.load(path)
+
+
+def test_yaml_alias_bombs_are_refused_quickly(tmp_path: Any) -> None:
+    # A "billion laughs" document: nine levels of aliases, each repeating the one below nine times.
+    lines = ["experiment: x", "data: {path: d.csv, target: y}", "candidates: {m: {estimator: sklearn.a.B}}",
+             'l0: &l0 ["lol","lol","lol","lol","lol","lol","lol","lol","lol"]']
+    lines += [f"l{i}: &l{i} [{','.join([f'*l{i - 1}'] * 9)}]" for i in range(1, 9)]
+    path = tmp_path / "bomb.yaml"
+    path.write_text("\n".join(lines) + "\n")
+    with pytest.raises(ConfigError, match=r"config expands to more than 100000 values"):
+        cfg.load(path)

@@ -103,6 +103,7 @@ def validate(raw: Any) -> dict[str, Any]:
 
     if not isinstance(raw, dict):
         raise ConfigError("config must be a mapping of keys to values; see config/config.yaml for an example")
+    _check_size(raw)
     folds_raw = raw.get("folds") if isinstance(raw.get("folds"), dict) else {}
     if folds_raw.get("scheme") == "loo":
         for key in ("k", "repeats"):
@@ -119,6 +120,25 @@ def validate(raw: Any) -> dict[str, Any]:
         raise ConfigError(_schema_message(errors[0]))
     _cross_checks(config)
     return config
+
+
+MAX_CONFIG_NODES = 100_000
+
+
+def _check_size(raw: Any) -> None:
+    """Refuse configs that expand to huge trees (YAML anchors and aliases nested as a 'bomb')."""
+    seen = 0
+    stack = [raw]
+    while stack:
+        node = stack.pop()
+        seen += 1
+        if seen > MAX_CONFIG_NODES:
+            raise ConfigError(f"config expands to more than {MAX_CONFIG_NODES} values (nested YAML anchors and "
+                              "aliases?); write the values out plainly")
+        if isinstance(node, dict):
+            stack.extend(node.values())
+        elif isinstance(node, list):
+            stack.extend(node)
 
 
 def _cross_checks(config: dict[str, Any]) -> None:
