@@ -9,7 +9,7 @@ from holdfast.errors import ConfigError, DataError
 from holdfast.folds import assign, check, check_feasible
 
 SCHEMES = [("kfold", 1), ("kfold", 3), ("stratified", 1), ("stratified", 2), ("group", 1), ("group", 3),
-           ("stratified_group", 1)]
+           ("stratified_group", 1), ("leave_one_group_out", 1)]
 
 
 def dev_frame(n: int = 240, seed: int = 0) -> pd.DataFrame:
@@ -28,6 +28,10 @@ def spec(scheme: str, repeats: int, k: int = 4, seed: int = 7) -> dict[str, obje
     return {"scheme": scheme, "k": k, "repeats": repeats, "seed": seed}
 
 
+def n_folds(scheme: str, dev: pd.DataFrame) -> int:
+    return int(dev["g"].nunique()) if scheme == "leave_one_group_out" else 4
+
+
 @pytest.mark.parametrize(("scheme", "repeats"), SCHEMES)
 def test_invariants_hold_for_every_scheme(scheme: str, repeats: int) -> None:
     dev = dev_frame()
@@ -40,11 +44,11 @@ def test_invariants_hold_for_every_scheme(scheme: str, repeats: int) -> None:
     for _, part in table.groupby("repeat"):
         # each dev row validated exactly once per repeat
         assert sorted(part["row_key"]) == sorted(dev["row_key"])
-        for fold in range(4):
+        for fold in range(n_folds(scheme, dev)):
             validation = set(part.loc[part["fold"] == fold, "row_key"])
             training = set(part["row_key"]) - validation
             assert validation and training and not validation & training  # disjoint, non-empty
-            if scheme in ("group", "stratified_group"):
+            if scheme in ("group", "stratified_group", "leave_one_group_out"):
                 assert not {group_of[k] for k in validation} & {group_of[k] for k in training}
     assert not set(table["row_key"]) & test_keys
 
@@ -54,7 +58,7 @@ def test_same_seed_same_folds_other_seed_other_folds(scheme: str, repeats: int) 
     dev = dev_frame()
     first = assign(dev, spec(scheme, repeats), "y", "g")
     assert first.equals(assign(dev, spec(scheme, repeats), "y", "g"))
-    if scheme != "stratified_group":  # its seed only breaks ties (see the test of repeated repeats)
+    if scheme not in ("stratified_group", "leave_one_group_out"):  # seeds only break ties / play no part
         assert not first.equals(assign(dev, spec(scheme, repeats, seed=8), "y", "g"))
     if repeats > 1:  # repeats differ from each other
         by_repeat = [part["fold"].to_numpy() for _, part in first.groupby("repeat")]
@@ -108,6 +112,18 @@ def test_stratified_group_folds_equal_scikit_learn() -> None:
         splitter = StratifiedGroupKFold(n_splits=4, shuffle=True, random_state=3 + repeat)
         for fold, (_, validation) in enumerate(splitter.split(np.zeros((len(dev), 1)), dev["y"], dev["g"])):
             assert set(dev["row_key"].iloc[validation]) == set(ours[ours == fold].index)
+
+
+def test_leave_one_group_out_equals_scikit_learn() -> None:
+    # Reference implementation: sklearn.model_selection.LeaveOneGroupOut (split i holds out the i-th group).
+    from sklearn.model_selection import LeaveOneGroupOut
+
+    dev = dev_frame(150, seed=2)
+    table = assign(dev, spec("leave_one_group_out", 1), "y", "g").set_index("row_key")["fold"]
+    splits = list(LeaveOneGroupOut().split(np.zeros((len(dev), 1)), groups=dev["g"]))
+    assert table.nunique() == len(splits) == dev["g"].nunique()
+    for fold, (_, validation) in enumerate(splits):
+        assert set(dev["row_key"].iloc[validation]) == set(table[table == fold].index)
 
 
 def test_check_catches_each_broken_table() -> None:

@@ -105,11 +105,11 @@ def validate(raw: Any) -> dict[str, Any]:
         raise ConfigError("config must be a mapping of keys to values; see config/config.yaml for an example")
     _check_size(raw)
     folds_raw = raw.get("folds") if isinstance(raw.get("folds"), dict) else {}
-    if folds_raw.get("scheme") == "loo":
-        for key in ("k", "repeats"):
+    if folds_raw.get("scheme") in ("loo", "leave_one_group_out"):
+        for key in ("k", "repeats", "seed"):
             if key in folds_raw:
-                raise ConfigError(f"config key 'folds.{key}' has no effect with folds.scheme: loo (one fold per "
-                                  "development row, one repeat); remove it")
+                raise ConfigError(f"config key 'folds.{key}' has no effect with folds.scheme: {folds_raw['scheme']} "
+                                  "(one fold per row or group, one repeat, nothing random); remove it")
     config = copy.deepcopy(raw)
     schema = _schema()
     _fill_defaults(config, schema)
@@ -157,7 +157,7 @@ def _cross_checks(config: dict[str, Any]) -> None:
             raise ConfigError(f"config key 'data.drop' lists '{column}', which is data.{seen[column]}; "
                               "remove it from drop")
     for key, scheme in (("folds.scheme", folds["scheme"]), ("test.scheme", config["test"]["scheme"])):
-        if scheme in ("group", "stratified_group", "grouped") and data["group"] is None:
+        if scheme in ("group", "stratified_group", "grouped", "leave_one_group_out") and data["group"] is None:
             raise ConfigError(f"config key '{key}' is '{scheme}' but 'data.group' is not set; "
                               "name the group column in data.group or choose another scheme")
     if folds["scheme"] in ("stratified", "stratified_group") and config.get("task") == "regression":
@@ -177,9 +177,9 @@ def _cross_checks(config: dict[str, Any]) -> None:
             raise ConfigError(f"config key 'candidates.{family}': parameter '{overlap[0]}' is in both params and grid; "
                               "keep it in one of them")
     _check_selection(config)
-    if config["nested"]["k"] and folds["scheme"] == "loo":
-        raise ConfigError("config keys 'nested.k' and 'folds.scheme: loo' do not combine (the inner fold count "
-                          "would differ per outer fold); use kfold or stratified folds for nested CV")
+    if config["nested"]["k"] and folds["scheme"] in ("loo", "leave_one_group_out"):
+        raise ConfigError(f"config keys 'nested.k' and 'folds.scheme: {folds['scheme']}' do not combine (the inner "
+                          "fold count would differ per outer fold); use kfold, stratified or group folds")
     if config["nested"]["k"] == 1:
         raise ConfigError("config key 'nested.k' is 1; use 0 to turn nested cross-validation off or at least 2")
 

@@ -20,7 +20,11 @@ from .foldspec import effective_k
 
 def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, groups: pd.Series | None) -> None:
     """Refuse fold settings that cannot work on this data, before any work is done."""
-    k, scheme = effective_k(spec, n_rows), spec["scheme"]
+    n_groups = int(groups.nunique()) if groups is not None else None
+    if spec["scheme"] == "leave_one_group_out" and (n_groups or 0) < 2:
+        raise ConfigError(f"folds.scheme leave_one_group_out needs at least 2 groups in the development rows, there "
+                          f"are {n_groups or 0}; use another scheme")
+    k, scheme = effective_k(spec, n_rows, n_groups), spec["scheme"]
     if scheme == "loo" and n_rows < 2:
         raise ConfigError(f"folds.scheme loo needs at least 2 development rows, there are {n_rows}; add data")
     if k > n_rows:
@@ -43,14 +47,24 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
 def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
             groups: pd.Series | None) -> Iterator[np.ndarray]:
     """Yield the validation indices of each fold of one repeat."""
-    from sklearn.model_selection import GroupKFold, KFold, LeaveOneOut, StratifiedGroupKFold, StratifiedKFold
+    from sklearn.model_selection import (
+        GroupKFold,
+        KFold,
+        LeaveOneGroupOut,
+        LeaveOneOut,
+        StratifiedGroupKFold,
+        StratifiedKFold,
+    )
 
     seed = int(spec["seed"]) + repeat
-    k = effective_k(spec, n)
+    k = effective_k(spec, n, int(groups.nunique()) if groups is not None else None)
     placeholder = np.zeros((n, 1))
     scheme = spec["scheme"]
     if scheme == "loo":  # reference: sklearn.model_selection.LeaveOneOut (fold i validates row i)
         splits = LeaveOneOut().split(placeholder)
+    elif scheme == "leave_one_group_out":  # fold i validates the i-th group in sorted order
+        assert groups is not None
+        splits = LeaveOneGroupOut().split(placeholder, groups=groups.to_numpy())
     elif scheme == "kfold":
         splits = KFold(n_splits=k, shuffle=True, random_state=seed).split(placeholder)
     elif scheme == "stratified":
@@ -92,7 +106,8 @@ def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: 
                               "repeats would add nothing; use repeats: 1 or another scheme")
     table = pd.concat(parts, ignore_index=True)
     table["repeat"] = table["repeat"].astype(_small_uint(int(spec["repeats"])))
-    table["fold"] = table["fold"].astype(_small_uint(effective_k(spec, len(dev))))
+    n_groups = int(groups.nunique()) if groups is not None else None
+    table["fold"] = table["fold"].astype(_small_uint(effective_k(spec, len(dev), n_groups)))
     return table
 
 
@@ -101,7 +116,8 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
     """Check the invariants: every dev row validated once per repeat, no empty fold,
     no group on both sides of a fold, no test key anywhere. Raises DataError naming the fold."""
     dev_set = set(map(str, dev_keys))
-    scheme, k = spec["scheme"], effective_k(spec, len(dev_set))
+    scheme = spec["scheme"]
+    k = effective_k(spec, len(dev_set), int(groups.nunique()) if groups is not None else None)
     if test_keys:
         leaked = set(table[KEY]) & test_keys
         if leaked:
@@ -120,7 +136,7 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
         for fold in range(k):
             if int(sizes.get(fold, 0)) == 0:
                 raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold} is empty (0 rows); lower folds.k")
-        if group_of is not None and scheme in ("group", "stratified_group"):
+        if group_of is not None and scheme in ("group", "stratified_group", "leave_one_group_out"):
             fold_groups = part.assign(g=part[KEY].map(group_of)).groupby("g")["fold"].nunique()
             split = fold_groups[fold_groups > 1]
             if len(split):

@@ -199,13 +199,14 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         if main:
             _data_unchanged(config, manifest)
         task = manifest["spec"]["task"]
-        if main and config["folds"]["scheme"] in ("stratified", "group", "stratified_group"):
+        if main and config["folds"]["scheme"] in ("stratified", "group", "stratified_group", "leave_one_group_out"):
             import pandas as pd
 
             cols = [c for c in (spec["target"], spec["group"]) if c]
             dev = pd.read_parquet(exp / DEV, columns=cols)
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
         n_dev = int(manifest["counts"]["dev"])
+        n_groups = manifest["counts"].get("dev_groups")
     else:
         from .dataset import row_keys
         from .seal import check_development_classes, load_checked, sealed_mask
@@ -216,6 +217,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         groups = frame[spec["group"]] if spec["group"] else None
         dev = frame[~sealed_mask(keys, target, {**spec, "task": task}, groups)]
         n_dev = len(dev)
+        n_groups = int(dev[spec["group"]].nunique()) if spec["group"] else None
         if main:
             if task == "classification":
                 check_development_classes(dev[spec["target"]], config["data"]["path"])
@@ -225,7 +227,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
     from .foldspec import MAX_FIT_JOBS, fold_ids
 
     plan = Plan(config=config, exp=exp, families=families, manifest=manifest,
-                fold_ids=fold_ids(config["folds"], n_dev))
+                fold_ids=fold_ids(config["folds"], n_dev, n_groups))
     jobs = len(plan.fold_ids) * len(families) * (1 + int(config["nested"]["k"]))
     if jobs > MAX_FIT_JOBS:
         raise ConfigError(f"config key 'folds' gives {jobs} fit jobs ({len(plan.fold_ids)} folds x {len(families)} "
