@@ -71,3 +71,15 @@ def test_duplicates_between_training_and_validation_rows_are_counted_or_refused(
     with pytest.raises(DataError, match=r"validation row\(s\) repeat the features of a training row"):
         leakage_report(dev, folds, spec, "classification", {"duplicates": "error"}, manifest,
                        str(tmp_path / "other.parquet"))
+
+
+def test_a_class_missing_from_a_validation_fold_is_reported(tmp_path: Path) -> None:
+    dev = breast_cancer_frame().rename(columns={"patient": "row_key"}).head(40).copy()
+    dev["target"] = [0] * 38 + [1] * 2  # two positives cannot reach all four folds
+    spec = {**SPEC, "id": None}
+    folds = assign(dev, {"scheme": "kfold", "k": 4, "repeats": 1, "seed": 0}, "target", None)
+    manifest = {"leakage": {"duplicate_feature_rows_dev_test": 0, "single_feature": []}}
+    report = leakage_report(dev, folds, spec, "classification", {"duplicates": "warn"}, manifest,
+                            str(tmp_path / "summary.parquet"))
+    assert len(report["classes_missing_from_validation"]) >= 2
+    assert "class '1' is missing from the validation rows of repeat 0" in report["summary"]

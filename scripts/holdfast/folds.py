@@ -163,6 +163,12 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
              f"{within} validation row(s) duplicate training rows across folds; group overlap: none"]
     lines += [f"leakage warning: feature '{a['feature']}' alone reaches {a['measure']} {a['value']:.3f}"
               for a in at_seal.get("single_feature", [])]
+    missing = []
+    for column in [c for c in summary.columns if str(c).startswith("class_")]:
+        for _, row in summary[summary[column] == 0].iterrows():
+            missing.append({"repeat": int(row["repeat"]), "fold": int(row["fold"]), "class": column[len("class_"):]})
+    lines += [f"fold warning: class '{m['class']}' is missing from the validation rows of repeat {m['repeat']}, "
+              f"fold {m['fold']}; its scores for that class are undefined" for m in missing]
     return {
         "duplicate_feature_rows_dev_test": at_seal.get("duplicate_feature_rows_dev_test"),
         "duplicate_feature_rows_within_folds": within,
@@ -170,5 +176,6 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
         "group_overlap": "none (checked for every fold)" if spec.get("group") else "no group column",
         "single_feature": at_seal.get("single_feature", []),
         "single_feature_threshold": at_seal.get("single_feature_threshold"),
+        "classes_missing_from_validation": missing,
         "summary": "\n".join(lines),
     }
