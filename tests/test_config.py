@@ -56,7 +56,8 @@ def test_schema_and_cross_field_errors(config: dict[str, Any], message: str) -> 
 def test_defaults_are_filled_from_the_schema() -> None:
     config = cfg.validate({"experiment": "x", "data": {"path": "d.csv", "target": "y"},
                            "candidates": {"m": {"estimator": "sklearn.linear_model.Ridge"}}})
-    assert config["test"] == {"fraction": 0.2, "scheme": "hashed", "salt": "holdfast", "reopen_reasons": []}
+    assert config["test"] == {"fraction": 0.2, "scheme": "hashed", "salt": "holdfast", "reopen_reasons": [],
+                              "gap_hours": 0}
     assert config["folds"] == {"scheme": "kfold", "k": 5, "repeats": 1, "seed": 0}
     assert config["candidates"]["m"]["preprocess"] == {"impute": "median", "scale": "none", "categorical": "onehot"}
     assert config["allowed_modules"] == ["sklearn"]

@@ -186,3 +186,23 @@ def test_estimators_outside_the_allowed_modules_are_refused() -> None:
         import_estimator("os.path.join", ["sklearn"])
     with pytest.raises(ConfigError, match=r"has no class 'Nope'"):
         import_estimator("sklearn.linear_model.Nope", ["sklearn"])
+
+
+def test_time_tail_seals_the_latest_rows_after_a_gap(tmp_path: Path) -> None:
+    from holdfast.seal import seal
+
+    frame = breast_cancer_frame()
+    rng = np.random.default_rng(1)
+    start = pd.Timestamp("2025-01-01T00:00:00Z")
+    frame["taken_at"] = [start + pd.Timedelta(hours=float(h)) for h in rng.uniform(0, 24 * 365, len(frame))]
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    spec = {"target": "target", "id": "patient", "group": None, "time": "taken_at", "drop": [],
+            "task": "classification", "fraction": 0.2, "scheme": "time_tail", "salt": "s", "gap_hours": 240}
+    manifest = seal(tmp_path / "data.csv", spec, tmp_path / "exp", "exp")
+    dev = pd.read_parquet(tmp_path / "exp/dev.parquet")
+    test = pd.read_parquet(tmp_path / "exp/sealed/test.parquet")
+    first_test = pd.to_datetime(test["taken_at"], utc=True).min()
+    last_dev = pd.to_datetime(dev["taken_at"], utc=True).max()
+    assert first_test - last_dev >= pd.Timedelta(hours=240)
+    assert len(test) == round(0.2 * len(frame))
+    assert manifest["counts"]["left_out_in_gap"] == len(frame) - len(dev) - len(test) > 0

@@ -156,6 +156,12 @@ def _cross_checks(config: dict[str, Any]) -> None:
         if column in seen:
             raise ConfigError(f"config key 'data.drop' lists '{column}', which is data.{seen[column]}; "
                               "remove it from drop")
+    if config["test"]["scheme"] == "time_tail" and data["time"] is None:
+        raise ConfigError("config key 'test.scheme' is 'time_tail' but 'data.time' is not set; name the time column "
+                          "in data.time or choose another scheme")
+    if config["test"]["gap_hours"] and config["test"]["scheme"] != "time_tail":
+        raise ConfigError("config key 'test.gap_hours' only applies to test.scheme: time_tail; remove it or "
+                          "change the scheme")
     for key, scheme in (("folds.scheme", folds["scheme"]), ("test.scheme", config["test"]["scheme"])):
         if scheme in ("group", "stratified_group", "grouped", "leave_one_group_out") and data["group"] is None:
             raise ConfigError(f"config key '{key}' is '{scheme}' but 'data.group' is not set; "
@@ -253,6 +259,7 @@ def seal_spec(config: dict[str, Any]) -> dict[str, Any]:
         "drop": sorted(data["drop"]),
         "task": config.get("task"),
         "fraction": config["test"]["fraction"], "scheme": config["test"]["scheme"], "salt": config["test"]["salt"],
+        **({"gap_hours": config["test"]["gap_hours"]} if config["test"]["scheme"] == "time_tail" else {}),
     }
 
 

@@ -209,13 +209,12 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         n_groups = manifest["counts"].get("dev_groups")
     else:
         from .dataset import row_keys
-        from .seal import check_development_classes, load_checked, sealed_mask
+        from .seal import check_development_classes, load_checked, split_masks
 
         frame, task = load_checked(config["data"]["path"], spec)
         keys = row_keys(frame, spec["id"])
-        target = frame[spec["target"]] if task == "classification" else None
-        groups = frame[spec["group"]] if spec["group"] else None
-        dev = frame[~sealed_mask(keys, target, {**spec, "task": task}, groups)]
+        test_rows, dropped = split_masks(frame, keys, {**spec, "task": task}, task)
+        dev = frame[~test_rows & ~dropped]
         n_dev = len(dev)
         n_groups = int(dev[spec["group"]].nunique()) if spec["group"] else None
         if main:

@@ -54,6 +54,23 @@ def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any],
                       "grouped")
 
 
+def split_masks(frame: pd.DataFrame, keys: pd.Series, spec: dict[str, Any], task: str) -> tuple[np.ndarray, np.ndarray]:
+    """(sealed test rows, rows left out of both sides) for the configured test scheme."""
+    if spec["scheme"] == "time_tail":
+        times = pd.to_datetime(frame[spec["time"]], utc=True)
+        n_test = round(float(spec["fraction"]) * len(frame))
+        if n_test < 1:
+            return np.zeros(len(frame), dtype=bool), np.zeros(len(frame), dtype=bool)
+        cut = times.sort_values(kind="stable").iloc[len(frame) - n_test]
+        test = (times >= cut).to_numpy()
+        gap = pd.Timedelta(hours=float(spec.get("gap_hours", 0)))
+        dropped = ((times < cut) & (times >= cut - gap)).to_numpy()
+        return test, dropped
+    target = frame[spec["target"]] if task == "classification" else None
+    groups = frame[spec["group"]] if spec.get("group") else None
+    return sealed_mask(keys, target, spec, groups), np.zeros(len(frame), dtype=bool)
+
+
 def check_development_classes(dev_target: pd.Series, source: str) -> None:
     """Classification needs at least two classes among the development rows, not only in the data."""
     if dev_target.nunique() < 2:
@@ -85,18 +102,16 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                                     "the seal never re-runs: name a new experiment to draw a new test set")
     frame, task = load_checked(data_path, spec)
     keys = row_keys(frame, spec.get("id"))
-    target = frame[spec["target"]] if task == "classification" else None
-    groups = frame[spec["group"]] if spec.get("group") else None
-    mask = sealed_mask(keys, target, spec, groups)
-    n_test, n_dev = int(mask.sum()), int((~mask).sum())
+    mask, dropped = split_masks(frame, keys, spec, task)
+    n_test, n_dev = int(mask.sum()), int((~mask & ~dropped).sum())
     if n_test < 1 or n_dev < 2:
         raise DataError(f"test.fraction {spec['fraction']} leaves {n_test} test and {n_dev} development rows in "
                         f"'{data_path}'; choose a fraction that leaves rows on both sides")
     if task == "classification":
-        check_development_classes(frame[spec["target"]][~mask], str(data_path))
+        check_development_classes(frame[spec["target"]][~mask & ~dropped], str(data_path))
     keyed = frame.copy()
     keyed.insert(0, KEY, keys.to_numpy())
-    test, dev = keyed[mask].reset_index(drop=True), keyed[~mask].reset_index(drop=True)
+    test, dev = keyed[mask].reset_index(drop=True), keyed[~mask & ~dropped].reset_index(drop=True)
     guards = {"duplicates": "warn", "single_feature_threshold": 0.98, **(leakage or {})}
     duplicates = duplicates_across(dev, test, spec)
     if duplicates and guards["duplicates"] == "error":
@@ -113,7 +128,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         "data": {"path": str(data_path), "rows": len(frame), "columns": [str(c) for c in frame.columns],
                  **fingerprint},
         "spec": sealed_spec,
-        "counts": {"dev": n_dev, "test": n_test,
+        "counts": {"dev": n_dev, "test": n_test, "left_out_in_gap": int(dropped.sum()),
                    **({"dev_groups": int(dev[spec["group"]].nunique())} if spec.get("group") else {})},
         "keys": {"dev_sha256": keys_digest(dev[KEY]), "test_sha256": keys_digest(test[KEY]),
                  "from": "id column" if spec.get("id") else "row content"},
