@@ -254,4 +254,4 @@ def prepare_or_exit(raw: dict[str, Any], main: bool = True, results: str = "resu
         raise SystemExit(exc.exit_code) from None
 
 
-__all__ = ["ConfigError", "Plan", "code_hash", "prepare", "prepare_or_exit"]
+__all__ = ["Plan", "code_hash", "prepare", "prepare_or_exit"]

@@ -152,8 +152,8 @@ def add_comparison(ranking: pd.DataFrame, matrix: pd.DataFrame, winner: str, pri
     return out
 
 
-def optimism(fits: pd.DataFrame, oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, task: str,
-             matrix: pd.DataFrame, winner: str, draws: int, seed: int) -> dict[str, Any]:
+def optimism(oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, task: str, matrix: pd.DataFrame,
+             winner: str, draws: int, seed: int) -> dict[str, Any]:
     """How much the winner's CV mean flatters it: Tibshirani & Tibshirani (2009) and BBC-CV (2018)."""
     raw = float(matrix[winner].mean())
     tt = stats.tibshirani_bias(matrix, winner)
@@ -198,7 +198,7 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     dev = pd.read_parquet(dev_path, columns=[KEY, target])
     dev = dev[dev[KEY].isin(set(pd.read_parquet(folds_path, columns=[KEY])[KEY]))]  # nested: inner rows only
     oof = pd.concat([pd.read_parquet(p) for p in sorted(oof_paths)], ignore_index=True)
-    optimistic = optimism(fits, oof, dev, target, primary, task, matrix, winner["candidate"],
+    optimistic = optimism(oof, dev, target, primary, task, matrix, winner["candidate"],
                           int(selection["bootstrap"]), int(selection["seed"]))
     n_candidates = int(ranking["candidate"].nunique())
     failed = sorted(set(ranking.loc[~ranking["complete"], "candidate"]))
