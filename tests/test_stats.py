@@ -328,6 +328,8 @@ def test_weighted_scorer_equals_sklearn_on_resampled_rows(name: str, ties: bool)
 
 @pytest.mark.parametrize("name", ["neg_mean_squared_error", "neg_mean_absolute_error"])
 def test_weighted_regression_scorers_equal_sklearn(name: str) -> None:
+    # Reference implementation: scikit-learn's own scorers (sklearn.metrics.get_scorer), reached through
+    # replay_scorer, on the full rows and on a bootstrap resample.
     rng = np.random.default_rng(8)
     y = rng.normal(size=200)
     outputs = {"predict": y + rng.normal(scale=0.5, size=200)}
