@@ -29,7 +29,8 @@ def edit(path: str, value: Any) -> dict[str, Any]:
 
 
 @pytest.mark.parametrize(("config", "message"), [
-    (edit("folds.kk", 3), r"config key 'folds.kk' is not known; remove it or use one of: k, repeats, scheme, seed"),
+    (edit("folds.kk", 3), r"config key 'folds.kk' is not known; remove it or use one of: fraction, gap, k, "
+                          r"min_train, repeats, scheme, seed, window"),
     (edit("metricz", ["accuracy"]), r"config key 'metricz' is not known"),
     (edit("data.target", ...), r"config key 'data.target' is required"),
     (edit("folds.k", 0), r"config key 'folds.k': 0 is out of range; set it to a number at least 2"),
@@ -40,6 +41,16 @@ def edit(path: str, value: Any) -> dict[str, Any]:
     ({**base(), "folds": {"scheme": "loo", "k": 4}}, r"config key 'folds.k' has no effect with folds.scheme: loo"),
     ({**base(), "folds": {"scheme": "loo"}, "nested": {"k": 2}}, r"'nested.k' and 'folds.scheme: loo' do not"),
     (edit("nested.k", 1), r"config key 'nested.k' is 1; use 0 to turn nested cross-validation off"),
+    ({**base(), "folds": {"scheme": "holdout", "k": 4}},
+     r"config key 'folds.k' has no effect with folds.scheme: holdout \(it uses: fraction, repeats, seed\)"),
+    ({**base(), "folds": {"scheme": "kfold", "fraction": 0.3}}, r"'folds.fraction' has no effect with folds.scheme"),
+    ({**base(), "folds": {"scheme": "forward", "repeats": 2}}, r"'folds.repeats' has no effect with .*: forward"),
+    ({**base(), "folds": {"scheme": "forward"}}, r"'folds.scheme' is 'forward' but 'data.time' is not set"),
+    ({**base(), "folds": {"scheme": "holdout", "fraction": 1.5}}, r"config key 'folds.fraction'"),
+    ({**base(), "folds": {"scheme": "holdout"}, "selection": {"rule": "one_standard_error"}},
+     r"'selection.rule' is one_standard_error but folds.scheme holdout with one repeat gives one score"),
+    ({**base(), "folds": {"scheme": "holdout"}, "nested": {"k": 3}}, r"'nested.k' and 'folds.scheme: holdout' do"),
+    (edit("test.scheme", "stratified_grouped"), r"'test.scheme' is 'stratified_grouped' but 'data.group' is not"),
     (edit("experiment", "../escape"), r"config key 'experiment'"),
     (edit("experiment", "a/b"), r"config key 'experiment'"),
     (edit("folds.scheme", "group"), r"'folds.scheme' is 'group' but 'data.group' is not set"),
@@ -58,7 +69,8 @@ def test_defaults_are_filled_from_the_schema() -> None:
                            "candidates": {"m": {"estimator": "sklearn.linear_model.Ridge"}}})
     assert config["test"] == {"fraction": 0.2, "scheme": "hashed", "salt": "holdfast", "reopen_reasons": [],
                               "gap_hours": 0}
-    assert config["folds"] == {"scheme": "kfold", "k": 5, "repeats": 1, "seed": 0}
+    assert config["folds"] == {"scheme": "kfold", "k": 5, "repeats": 1, "seed": 0, "fraction": 0.2, "window": None,
+                               "gap": 0, "min_train": 1}
     assert config["candidates"]["m"]["preprocess"] == {"impute": "median", "scale": "none", "categorical": "onehot"}
     assert config["allowed_modules"] == ["sklearn"]
 

@@ -16,6 +16,7 @@ import yaml
 
 from ._io import canonical_json, sha256_text
 from .errors import ConfigError
+from .foldspec import FORWARD, GROUPED, HOLDOUT, KEYS, OPTIONAL, STRATIFIED
 
 ROOT = Path(__file__).resolve().parents[2]
 SCHEMA_PATH = ROOT / "workflow" / "schemas" / "config.schema.yaml"
@@ -105,11 +106,13 @@ def validate(raw: Any) -> dict[str, Any]:
         raise ConfigError("config must be a mapping of keys to values; see config/config.yaml for an example")
     _check_size(raw)
     folds_raw = raw.get("folds") if isinstance(raw.get("folds"), dict) else {}
-    if folds_raw.get("scheme") in ("loo", "leave_one_group_out"):
-        for key in ("k", "repeats", "seed"):
-            if key in folds_raw:
-                raise ConfigError(f"config key 'folds.{key}' has no effect with folds.scheme: {folds_raw['scheme']} "
-                                  "(one fold per row or group, one repeat, nothing random); remove it")
+    scheme = folds_raw.get("scheme", "kfold")
+    if scheme in KEYS:
+        for key in OPTIONAL:
+            if key in folds_raw and key not in KEYS[scheme]:
+                used = ", ".join(KEYS[scheme]) or "none"
+                raise ConfigError(f"config key 'folds.{key}' has no effect with folds.scheme: {scheme} (it uses: "
+                                  f"{used}); remove it")
     config = copy.deepcopy(raw)
     schema = _schema()
     _fill_defaults(config, schema)
@@ -163,14 +166,23 @@ def _cross_checks(config: dict[str, Any]) -> None:
         raise ConfigError("config key 'test.gap_hours' only applies to test.scheme: time_tail; remove it or "
                           "change the scheme")
     for key, scheme in (("folds.scheme", folds["scheme"]), ("test.scheme", config["test"]["scheme"])):
-        if scheme in ("group", "stratified_group", "grouped", "leave_one_group_out") and data["group"] is None:
+        if scheme in (*GROUPED, "grouped", "stratified_grouped") and data["group"] is None:
             raise ConfigError(f"config key '{key}' is '{scheme}' but 'data.group' is not set; "
                               "name the group column in data.group or choose another scheme")
-    if folds["scheme"] in ("stratified", "stratified_group") and config.get("task") == "regression":
+    if folds["scheme"] in FORWARD and data["time"] is None:
+        raise ConfigError(f"config key 'folds.scheme' is '{folds['scheme']}' but 'data.time' is not set; name the "
+                          "time column in data.time or choose another scheme")
+    if folds["scheme"] in STRATIFIED and config.get("task") == "regression":
         raise ConfigError(f"config key 'folds.scheme' is '{folds['scheme']}' but task is regression; "
-                          "use kfold or group")
-    if config["test"]["scheme"] == "stratified" and config.get("task") == "regression":
-        raise ConfigError("config key 'test.scheme' is 'stratified' but task is regression; use hashed")
+                          "use kfold, group or holdout")
+    if config["test"]["scheme"] in ("stratified", "stratified_grouped") and config.get("task") == "regression":
+        raise ConfigError(f"config key 'test.scheme' is '{config['test']['scheme']}' but task is regression; "
+                          "use hashed or grouped")
+    if (config["selection"]["rule"] == "one_standard_error" and folds["scheme"] in HOLDOUT
+            and int(folds["repeats"]) < 2):
+        raise ConfigError(f"config key 'selection.rule' is one_standard_error but folds.scheme {folds['scheme']} "
+                          "with one repeat gives one score per candidate and no standard error; raise "
+                          "folds.repeats or use best_mean")
     allowed = allowed_prefixes(config)
     for family, spec in config["candidates"].items():
         module = spec["estimator"].rsplit(".", 1)[0]
@@ -183,9 +195,10 @@ def _cross_checks(config: dict[str, Any]) -> None:
             raise ConfigError(f"config key 'candidates.{family}': parameter '{overlap[0]}' is in both params and grid; "
                               "keep it in one of them")
     _check_selection(config)
-    if config["nested"]["k"] and folds["scheme"] in ("loo", "leave_one_group_out"):
+    if config["nested"]["k"] and folds["scheme"] not in ("kfold", "stratified", "group", "stratified_group"):
         raise ConfigError(f"config keys 'nested.k' and 'folds.scheme: {folds['scheme']}' do not combine (the inner "
-                          "fold count would differ per outer fold); use kfold, stratified or group folds")
+                          "folds are drawn with the inner scheme and must cover every row once); use kfold, "
+                          "stratified or group folds")
     if config["nested"]["k"] == 1:
         raise ConfigError("config key 'nested.k' is 1; use 0 to turn nested cross-validation off or at least 2")
 
@@ -240,7 +253,7 @@ def with_task(config: dict[str, Any], task: str) -> dict[str, Any]:
         out["metrics"] = list(DEFAULT_METRICS[task])
     if task == "regression":
         for key in ("folds", "test"):
-            if out[key]["scheme"] in ("stratified", "stratified_group"):
+            if out[key]["scheme"] in (*STRATIFIED, "stratified_grouped"):
                 raise ConfigError(f"config key '{key}.scheme' is '{out[key]['scheme']}' but the target is continuous "
                                   "(regression); use another scheme")
     return out

@@ -23,15 +23,16 @@ from ._io import sha256_file, write_parquet
 from .candidates import build_pipeline
 from .dataset import KEY, split_xy
 from .errors import FitError
+from .folds import fold_masks
 from .scoring import model_outputs, replay, score_outputs
 
 
 def fold_rows(dev: pd.DataFrame, folds: pd.DataFrame, repeat: int, fold: int) -> tuple[np.ndarray, np.ndarray]:
     """Boolean masks over dev rows: (training, validation) for one fold."""
-    part = folds[folds["repeat"] == repeat]
-    validation_keys = set(part.loc[part["fold"] == fold, KEY])
-    validation = dev[KEY].isin(validation_keys).to_numpy()
-    training = dev[KEY].isin(set(part[KEY])).to_numpy() & ~validation
+    part = folds[folds["repeat"] == repeat].reset_index(drop=True)
+    train_mask, val_mask = fold_masks(part, fold)
+    validation = dev[KEY].isin(set(part.loc[val_mask, KEY])).to_numpy()
+    training = dev[KEY].isin(set(part.loc[train_mask, KEY])).to_numpy()
     return training, validation
 
 

@@ -7,6 +7,7 @@ must keep.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator
 from typing import Any
 
@@ -15,16 +16,56 @@ import pandas as pd
 
 from .dataset import KEY
 from .errors import ConfigError, DataError
-from .foldspec import effective_k
+from .foldspec import COMPLETE, FORWARD, GROUPED, HOLDOUT, STRATIFIED, effective_k, repeats
+
+
+def _holdout_sizes(fraction: float, n: int) -> tuple[int, int]:
+    """(validation, training) rows of a holdout, as ShuffleSplit counts them (ceil for validation)."""
+    n_val = math.ceil(fraction * n)
+    return n_val, n - n_val
+
+
+def _forward_window(spec: dict[str, Any], units: int) -> int:
+    return int(spec["window"]) if spec.get("window") else units // (int(spec["k"]) + 1)
 
 
 def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, groups: pd.Series | None) -> None:
     """Refuse fold settings that cannot work on this data, before any work is done."""
     n_groups = int(groups.nunique()) if groups is not None else None
-    if spec["scheme"] == "leave_one_group_out" and (n_groups or 0) < 2:
+    scheme = spec["scheme"]
+    if scheme == "leave_one_group_out" and (n_groups or 0) < 2:
         raise ConfigError(f"folds.scheme leave_one_group_out needs at least 2 groups in the development rows, there "
                           f"are {n_groups or 0}; use another scheme")
-    k, scheme = effective_k(spec, n_rows, n_groups), spec["scheme"]
+    if scheme in HOLDOUT:
+        n_val, n_train = _holdout_sizes(float(spec["fraction"]), n_rows)
+        if n_val < 2 or n_train < 2:
+            raise ConfigError(f"config key 'folds.fraction' is {spec['fraction']}: with {n_rows} development rows it "
+                              f"leaves {n_val} validation and {n_train} training row(s), fewer than 2 on a side; "
+                              "choose a fraction nearer 0.5 or use kfold")
+        if scheme == "stratified_holdout":
+            assert target is not None
+            counts = target.value_counts()
+            if int(counts.min()) < 2 or min(n_val, n_train) < len(counts):
+                raise ConfigError(f"config key 'folds.fraction' is {spec['fraction']}: stratified_holdout needs every "
+                                  f"one of the {len(counts)} classes on both sides, but class '{counts.idxmin()}' "
+                                  f"has {int(counts.min())} row(s) and the smaller side {min(n_val, n_train)}; use "
+                                  "folds.scheme: holdout or a fraction nearer 0.5")
+        return
+    if scheme in FORWARD:
+        units, what = (n_groups, "groups") if scheme == "forward_group" else (n_rows, "rows")
+        assert units is not None
+        k, gap, least = int(spec["k"]), int(spec["gap"]), int(spec["min_train"])
+        window = _forward_window(spec, units)
+        first_train = units - k * window - gap
+        if window < 1:
+            raise ConfigError(f"folds ({scheme}): {units} development {what} cannot fill {k} validation windows "
+                              "of at least 1; lower folds.k")
+        if first_train < least:
+            raise ConfigError(f"folds ({scheme}): with {units} development {what}, k={k} windows of {window} and a "
+                              f"gap of {gap}, fold 0 would train on {max(first_train, 0)} {what}, fewer than "
+                              f"folds.min_train={least}; lower folds.k, folds.window or folds.gap")
+        return
+    k = effective_k(spec, n_rows, n_groups)
     if scheme == "loo" and n_rows < 2:
         raise ConfigError(f"folds.scheme loo needs at least 2 development rows, there are {n_rows}; add data")
     if k > n_rows:
@@ -46,14 +87,16 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
 
 def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
             groups: pd.Series | None) -> Iterator[np.ndarray]:
-    """Yield the validation indices of each fold of one repeat."""
+    """Yield the validation indices of each fold of one repeat (complete and holdout schemes)."""
     from sklearn.model_selection import (
         GroupKFold,
         KFold,
         LeaveOneGroupOut,
         LeaveOneOut,
+        ShuffleSplit,
         StratifiedGroupKFold,
         StratifiedKFold,
+        StratifiedShuffleSplit,
     )
 
     seed = int(spec["seed"]) + repeat
@@ -77,44 +120,120 @@ def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
         assert target is not None and groups is not None
         splitter = StratifiedGroupKFold(n_splits=k, shuffle=True, random_state=seed)
         splits = splitter.split(placeholder, target.to_numpy(), groups=groups.to_numpy())
+    elif scheme == "holdout":
+        splits = ShuffleSplit(n_splits=1, test_size=float(spec["fraction"]), random_state=seed).split(placeholder)
+    elif scheme == "stratified_holdout":
+        assert target is not None
+        splitter = StratifiedShuffleSplit(n_splits=1, test_size=float(spec["fraction"]), random_state=seed)
+        splits = splitter.split(placeholder, target.to_numpy())
     else:
-        raise ConfigError(f"config key 'folds.scheme': unknown scheme {scheme!r}; use kfold, stratified or group")
+        raise ConfigError(f"config key 'folds.scheme': unknown scheme {scheme!r}; see config/README.md")
     for _, validation in splits:
         yield validation
+
+
+def time_order(dev: pd.DataFrame, time_col: str) -> np.ndarray:
+    """Positions of the development rows sorted by time; ties keep their stored order."""
+    times = pd.to_datetime(dev[time_col], utc=True).to_numpy()
+    return np.argsort(times, kind="stable")
+
+
+def _forward(dev: pd.DataFrame, spec: dict[str, Any], time_col: str,
+             group_col: str | None) -> tuple[np.ndarray, np.ndarray]:
+    """Fold (−1: never validated) and train_from (k: never trained on) of every dev row for forward folds.
+
+    The cuts are those of scikit-learn's TimeSeriesSplit(n_splits=k, test_size=window, gap=gap) on the
+    rows (forward) or groups (forward_group) in time order. On purpose we also drop from a fold's training
+    part every row (group) not strictly earlier than the window's first time, so equal timestamps never
+    straddle a cut; with distinct times the folds equal TimeSeriesSplit's.
+    """
+    times = pd.to_datetime(dev[time_col], utc=True).to_numpy()
+    k, gap = int(spec["k"]), int(spec["gap"])
+    if group_col is None:
+        unit_of = np.empty(len(dev), dtype=np.int64)
+        unit_of[time_order(dev, time_col)] = np.arange(len(dev))  # each row is its own unit, in time order
+        first = last = times[np.argsort(unit_of)]
+    else:
+        frame = pd.DataFrame({"g": dev[group_col].astype(str).to_numpy(), "t": times})
+        spans = frame.groupby("g")["t"].agg(["min", "max"])
+        spans = spans.reset_index().sort_values(["min", "max", "g"], kind="stable").reset_index(drop=True)
+        unit_of = frame["g"].map(pd.Series(spans.index, index=spans["g"])).to_numpy(dtype=np.int64)
+        first, last = spans["min"].to_numpy(), spans["max"].to_numpy()
+    units = len(first)
+    window = _forward_window(spec, units)
+    starts = [units - (k - f) * window for f in range(k)]
+    unit_fold = np.full(units, -1, dtype=np.int64)
+    unit_train = np.full(units, k, dtype=np.int64)
+    for f in reversed(range(k)):
+        start = starts[f]
+        unit_fold[start:start + window] = f
+        window_first = first[start:start + window].min()
+        allowed = (np.arange(units) < start - gap) & (last < window_first)
+        unit_train[allowed] = f
+    return unit_fold[unit_of], unit_train[unit_of]
 
 
 def _small_uint(limit: int) -> str:
     return "uint8" if limit < 2**8 else "uint16" if limit < 2**16 else "uint32"
 
 
-def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: str | None) -> pd.DataFrame:
-    """Draw the fold table for the development rows (in their stored order)."""
-    target = dev[target_col] if spec["scheme"] in ("stratified", "stratified_group") else None
-    groups = dev[group_col] if group_col else None
+def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: str | None,
+           time_col: str | None = None) -> pd.DataFrame:
+    """Draw the fold table ``row_key, repeat, fold, train_from`` for the development rows.
+
+    A row is validated in fold ``fold`` of its repeat (null: in no fold) and is in the training part
+    of fold f exactly when it is not validated there and ``train_from <= f``. For every scheme but the
+    forward ones train_from is 0, so training is the rest of the development rows.
+    """
+    scheme = spec["scheme"]
+    target = dev[target_col] if scheme in STRATIFIED else None
+    groups = dev[group_col] if group_col and scheme in GROUPED else None
     check_feasible(spec, len(dev), target, groups)
     keys = dev[KEY].to_numpy()
     parts = []
-    for repeat in range(int(spec["repeats"])):
-        fold_of = np.full(len(dev), -1, dtype=np.int64)
-        for fold, validation in enumerate(_splits(spec, repeat, len(dev), target, groups)):
-            fold_of[validation] = fold
-        parts.append(pd.DataFrame({KEY: keys, "repeat": repeat, "fold": fold_of}))
+    k = effective_k(spec, len(dev), int(groups.nunique()) if groups is not None else None)
+    for repeat in range(repeats(spec)):
+        train_from = np.zeros(len(dev), dtype=np.int64)
+        if scheme in FORWARD:
+            if time_col is None:
+                raise ConfigError(f"folds.scheme {scheme} needs data.time; name the time column")
+            fold_of, train_from = _forward(dev, spec, time_col, group_col if scheme == "forward_group" else None)
+        else:
+            fold_of = np.full(len(dev), -1, dtype=np.int64)
+            for fold, validation in enumerate(_splits(spec, repeat, len(dev), target, groups)):
+                fold_of[validation] = fold
+        parts.append(pd.DataFrame({KEY: keys, "repeat": repeat, "fold": fold_of, "train_from": train_from}))
     for repeat in range(1, len(parts)):
         if np.array_equal(parts[repeat]["fold"].to_numpy(), parts[0]["fold"].to_numpy()):
-            raise ConfigError(f"config key 'folds.repeats': repeat {repeat} of scheme {spec['scheme']} gives the same "
+            raise ConfigError(f"config key 'folds.repeats': repeat {repeat} of scheme {scheme} gives the same "
                               "folds as repeat 0 (its shuffle only reorders groups with tied class shares), so the "
                               "repeats would add nothing; use repeats: 1 or another scheme")
     table = pd.concat(parts, ignore_index=True)
-    table["repeat"] = table["repeat"].astype(_small_uint(int(spec["repeats"])))
-    n_groups = int(groups.nunique()) if groups is not None else None
-    table["fold"] = table["fold"].astype(_small_uint(effective_k(spec, len(dev), n_groups)))
+    table["repeat"] = table["repeat"].astype(_small_uint(repeats(spec)))
+    fold_type = "UI" + _small_uint(k)[2:]  # nullable UInt: null = validated in no fold
+    table["fold"] = table["fold"].astype("Int64").where(table["fold"] >= 0).astype(fold_type)
+    table["train_from"] = table["train_from"].astype(_small_uint(k + 1))
     return table
 
 
+def fold_masks(part: pd.DataFrame, fold: int) -> tuple[np.ndarray, np.ndarray]:
+    """(training, validation) masks over one repeat's rows of the fold table for one fold."""
+    validated = part["fold"].to_numpy(dtype="float64", na_value=np.nan)
+    validation = validated == fold
+    train_from = part["train_from"].to_numpy() if "train_from" in part else np.zeros(len(part), dtype=np.int64)
+    training = ~validation & (train_from <= fold)
+    return training, validation
+
+
 def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, spec: dict[str, Any],
-          groups: pd.Series | None = None) -> None:
-    """Check the invariants: every dev row validated once per repeat, no empty fold,
-    no group on both sides of a fold, no test key anywhere. Raises DataError naming the fold."""
+          groups: pd.Series | None = None, times: pd.Series | None = None) -> None:
+    """Check the invariants; raise DataError naming the scheme, repeat, fold and count.
+
+    Every scheme: each dev row listed once per repeat, no test key, no empty fold, training and
+    validation disjoint and both non-empty. Complete schemes: every row validated exactly once per
+    repeat. Grouped schemes: no group on both sides of any fold. Forward schemes: every training row
+    strictly earlier than the fold's first validation row, with at least the gap between them.
+    """
     dev_set = set(map(str, dev_keys))
     scheme = spec["scheme"]
     k = effective_k(spec, len(dev_set), int(groups.nunique()) if groups is not None else None)
@@ -126,30 +245,83 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
     unknown = set(table[KEY]) - dev_set
     if unknown:
         raise DataError(f"folds ({scheme}) name {len(unknown)} row(s) not in the development set; rebuild the folds")
-    group_of = dict(zip(map(str, dev_keys), groups.to_numpy(), strict=True)) if groups is not None else None
+    group_of = dict(zip(map(str, dev_keys), groups.astype(str).to_numpy(), strict=True)) if groups is not None else None
+    time_of = (dict(zip(map(str, dev_keys), pd.to_datetime(times, utc=True), strict=True))
+               if times is not None else None)
     for repeat, part in table.groupby("repeat", sort=True):
+        part = part.reset_index(drop=True)
         counts = part[KEY].value_counts()
         if len(counts) != len(dev_set) or int(counts.max()) != 1:
-            raise DataError(f"folds ({scheme}), repeat {repeat}: {len(dev_set) - len(counts)} development row(s) are "
-                            "never validated or some are validated twice; rebuild the folds")
-        sizes = part["fold"].value_counts()
+            raise DataError(f"folds ({scheme}), repeat {repeat}: {len(dev_set) - len(counts)} development row(s) "
+                            "missing from the table or listed twice; rebuild the folds")
+        never = int(part["fold"].isna().sum())
+        if scheme in COMPLETE and never:
+            raise DataError(f"folds ({scheme}), repeat {repeat}: {never} development row(s) are never validated; "
+                            "rebuild the folds")
         for fold in range(k):
-            if int(sizes.get(fold, 0)) == 0:
+            training, validation = fold_masks(part, fold)
+            if not validation.any():
                 raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold} is empty (0 rows); lower folds.k")
-        if group_of is not None and scheme in ("group", "stratified_group", "leave_one_group_out"):
-            fold_groups = part.assign(g=part[KEY].map(group_of)).groupby("g")["fold"].nunique()
-            split = fold_groups[fold_groups > 1]
-            if len(split):
-                raise DataError(f"folds ({scheme}), repeat {repeat}: group '{split.index[0]}' is in "
-                                f"{int(split.iloc[0])} folds (on both sides of a split); rebuild the folds")
+            if not training.any():
+                raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold} has no training rows; lower folds.k")
+            if group_of is not None and scheme in GROUPED:
+                train_groups = {group_of[key] for key in part.loc[training, KEY]}
+                both = train_groups & {group_of[key] for key in part.loc[validation, KEY]}
+                if both:
+                    raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold}: {len(both)} group(s) on both "
+                                    f"sides, e.g. '{sorted(both)[0]}'; rebuild the folds")
+            if scheme in FORWARD and time_of is not None:
+                _check_forward(part, training, validation, time_of, group_of, spec, int(repeat), fold)
+
+
+def _check_forward(part: pd.DataFrame, training: np.ndarray, validation: np.ndarray, time_of: dict[str, Any],
+                   group_of: dict[str, str] | None, spec: dict[str, Any], repeat: int, fold: int) -> None:
+    """Training strictly earlier than validation, with at least ``gap`` rows (groups) between them."""
+    scheme = spec["scheme"]
+    train_times = [time_of[key] for key in part.loc[training, KEY]]
+    val_times = [time_of[key] for key in part.loc[validation, KEY]]
+    later = sum(t >= min(val_times) for t in train_times)
+    if later:
+        raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold}: {later} training row(s) are not earlier "
+                        f"than the first validation time {min(val_times)}; rebuild the folds")
+    latest, first = max(train_times), min(val_times)
+    between = [key for key in part[KEY] if latest < time_of[key] < first]
+    count = len({group_of[key] for key in between}) if scheme == "forward_group" and group_of else len(between)
+    if count < int(spec["gap"]):
+        raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold}: only {count} row(s)/group(s) lie between "
+                        f"the last training time and the first validation time, fewer than folds.gap="
+                        f"{spec['gap']}; rebuild the folds")
+
+
+def time_overlap(dev: pd.DataFrame, table: pd.DataFrame, time_col: str) -> list[dict[str, Any]]:
+    """Per fold of a scheme that ignores time: training rows later than the fold's first validation row."""
+    times = pd.Series(pd.to_datetime(dev[time_col], utc=True).to_numpy(), index=dev[KEY].to_numpy())
+    out = []
+    for repeat, part in table.groupby("repeat", sort=True):
+        part = part.reset_index(drop=True)
+        stamps = times.loc[part[KEY]].to_numpy()
+        for fold in sorted(part["fold"].dropna().unique()):
+            training, validation = fold_masks(part, int(fold))
+            later = int((stamps[training] > stamps[validation].min()).sum())
+            if later:
+                out.append({"repeat": int(repeat), "fold": int(fold), "training_rows_later": later,
+                            "training_rows": int(training.sum())})
+    return out
+
+
+def scheme_ignores_time(fold_spec: dict[str, Any]) -> bool:
+    """True for fold schemes that may train on rows later than the ones they validate."""
+    return fold_spec["scheme"] not in FORWARD
 
 
 def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any], task: str,
-                   settings: dict[str, Any], manifest: dict[str, Any], summary_path: str) -> dict[str, Any]:
+                   settings: dict[str, Any], manifest: dict[str, Any], summary_path: str,
+                   fold_spec: dict[str, Any] | None = None) -> dict[str, Any]:
     """Write folds_summary.parquet and return leakage.json's content; duplicates may be an error."""
     from ._io import write_parquet
     from .leakage import fold_summary
 
+    fold_spec = fold_spec or {"scheme": "kfold"}
     summary = fold_summary(dev, table, spec, task)
     within = int(summary["duplicates_with_training"].sum())
     if within and settings.get("duplicates") == "error":
@@ -157,18 +329,37 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
         raise DataError(f"folds: {within} validation row(s) repeat the features of a training row (most in repeat "
                         f"{worst['repeat']}, fold {worst['fold']}: {worst['duplicates_with_training']}); "
                         "remove duplicate rows or set leakage.duplicates: warn")
-    write_parquet(summary_path, summary)
     at_seal = manifest.get("leakage", {})
     lines = [f"leakage: {at_seal.get('duplicate_feature_rows_dev_test', 0)} test row(s) duplicate development rows; "
              f"{within} validation row(s) duplicate training rows across folds; group overlap: none"]
     lines += [f"leakage warning: feature '{a['feature']}' alone reaches {a['measure']} {a['value']:.3f}"
               for a in at_seal.get("single_feature", [])]
+    mode = settings.get("time_order", "note")
+    seal_time = at_seal.get("time_order")
+    if seal_time and seal_time.get("dev_rows_after_first_test") and mode == "warn":
+        lines.append(f"leakage warning: test.scheme {seal_time['scheme']} ignores time: "
+                     f"{seal_time['dev_rows_after_first_test']} development row(s) are later than the earliest test "
+                     f"row ({seal_time['share']:.0%}); if the model will forecast, use test.scheme: time_tail")
+    fold_time = None
+    if spec.get("time") and scheme_ignores_time(fold_spec):
+        overlap = time_overlap(dev, table, spec["time"])
+        fold_time = {"column": spec["time"], "scheme": fold_spec["scheme"], "folds": overlap,
+                     "training_rows_later": sum(o["training_rows_later"] for o in overlap)}
+        if overlap and mode != "note":
+            worst = max(overlap, key=lambda o: o["training_rows_later"])
+            message = (f"folds.scheme {fold_spec['scheme']} ignores time: in {len(overlap)} "
+                       f"fold(s) training rows are later than validation rows (most in repeat {worst['repeat']}, "
+                       f"fold {worst['fold']}: {worst['training_rows_later']} of {worst['training_rows']})")
+            if mode == "error":
+                raise DataError(f"{message}; use folds.scheme: forward or set leakage.time_order: note")
+            lines.append(f"leakage warning: {message}; if the model will forecast, use folds.scheme: forward")
     missing = []
     for column in [c for c in summary.columns if str(c).startswith("class_")]:
         for _, row in summary[summary[column] == 0].iterrows():
             missing.append({"repeat": int(row["repeat"]), "fold": int(row["fold"]), "class": column[len("class_"):]})
     lines += [f"fold warning: class '{m['class']}' is missing from the validation rows of repeat {m['repeat']}, "
               f"fold {m['fold']}; its scores for that class are undefined" for m in missing]
+    write_parquet(summary_path, summary)
     return {
         "duplicate_feature_rows_dev_test": at_seal.get("duplicate_feature_rows_dev_test"),
         "duplicate_feature_rows_within_folds": within,
@@ -177,5 +368,7 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
         "single_feature": at_seal.get("single_feature", []),
         "single_feature_threshold": at_seal.get("single_feature_threshold"),
         "classes_missing_from_validation": missing,
+        "time_order_at_seal": seal_time,
+        "time_order_in_folds": fold_time,
         "summary": "\n".join(lines),
     }

@@ -70,9 +70,12 @@ def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], t
     hashes = feature_hashes(dev, spec).set_axis(dev[KEY])
     data = dev.set_index(KEY)
     rows = []
+    from .folds import fold_masks
+
     for (repeat, fold), part in folds.groupby(["repeat", "fold"], sort=True):
         keys = part[KEY].to_numpy()
-        training = folds.loc[(folds["repeat"] == repeat) & (folds["fold"] != fold), KEY].to_numpy()
+        whole = folds[folds["repeat"] == repeat].reset_index(drop=True)
+        training = whole.loc[fold_masks(whole, int(fold))[0], KEY].to_numpy()
         sub = data.loc[keys]
         row: dict[str, Any] = {"repeat": int(repeat), "fold": int(fold), "rows": len(keys),
                                "training_rows": len(training),

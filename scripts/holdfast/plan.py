@@ -199,7 +199,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         if main:
             _data_unchanged(config, manifest)
         task = manifest["spec"]["task"]
-        if main and config["folds"]["scheme"] in ("stratified", "group", "stratified_group", "leave_one_group_out"):
+        if main and config["folds"]["scheme"] not in ("kfold", "loo"):
             import pandas as pd
 
             cols = [c for c in (spec["target"], spec["group"]) if c]
@@ -209,12 +209,13 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         n_groups = manifest["counts"].get("dev_groups")
     else:
         from .dataset import row_keys
-        from .seal import check_development_classes, load_checked, split_masks
+        from .seal import check_development_classes, check_sides, load_checked, split_masks
 
         frame, task = load_checked(config["data"]["path"], spec)
         keys = row_keys(frame, spec["id"])
         test_rows, dropped = split_masks(frame, keys, {**spec, "task": task}, task)
         dev = frame[~test_rows & ~dropped]
+        check_sides(int(test_rows.sum()), len(dev), spec, config["data"]["path"])
         n_dev = len(dev)
         n_groups = int(dev[spec["group"]].nunique()) if spec["group"] else None
         if main:
@@ -239,8 +240,11 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         check_metrics(config["metrics"], task)
         check_estimators(config, families, task, cfg.allowed_prefixes(config))
         if dev_target is not None:
-            stratified = config["folds"]["scheme"] in ("stratified", "stratified_group")
-            check_feasible(config["folds"], len(dev_target), dev_target if stratified else None, dev_groups)
+            from .foldspec import GROUPED, STRATIFIED
+
+            scheme = config["folds"]["scheme"]
+            check_feasible(config["folds"], len(dev_target), dev_target if scheme in STRATIFIED else None,
+                           dev_groups if scheme in GROUPED else None)
         _opening_guard(plan)
     return plan
 

@@ -70,23 +70,26 @@ def assign_folds(smk: Any) -> None:
 
         dev = dev[~outer_rows(dev, pd.read_parquet(smk.input.outer), int(smk.wildcards.outer))]
         dev = dev.reset_index(drop=True)
-    table = assign(dev, fold_spec, spec["target"], spec["group"])
+    table = assign(dev, fold_spec, spec["target"], spec["group"], spec.get("time"))
     groups = dev[spec["group"]] if spec["group"] else None
+    times = dev[spec["time"]] if spec.get("time") else None
     test_keys = set(pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"])
-    check(table, dev["row_key"], test_keys, fold_spec, groups)
+    check(table, dev["row_key"], test_keys, fold_spec, groups, times)
     report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
-                            read_json(smk.input.manifest), smk.output.summary)
+                            read_json(smk.input.manifest), smk.output.summary, fold_spec)
     write_parquet(smk.output.folds, table)
     write_json(smk.output.leakage, report)
+    n_folds, n_repeats = int(table["fold"].max()) + 1, int(table["repeat"].max()) + 1
+    randomised = fold_spec["scheme"] not in ("loo", "leave_one_group_out", "forward", "forward_group")
     ledger.append(smk.params.ledger, "assign_folds", {
-        "scope": getattr(smk.params, "scope", scope), "scheme": fold_spec["scheme"], "k": fold_spec["k"],
-        "repeats": fold_spec["repeats"],
-        "seeds": [fold_spec["seed"] + r for r in range(fold_spec["repeats"])], "rows": len(dev),
+        "scope": getattr(smk.params, "scope", scope), "scheme": fold_spec["scheme"], "k": n_folds,
+        "repeats": n_repeats, "seeds": [fold_spec["seed"] + r for r in range(n_repeats)] if randomised else [],
+        "rows": len(dev),
         "folds_sha256": sha256_file(smk.output.folds), "dev_sha256": sha256_file(smk.input.dev),
         "leakage_sha256": sha256_file(smk.output.leakage), "summary_sha256": sha256_file(smk.output.summary),
     }, rule=smk.rule)
     print(report["summary"])
-    print(f"assigned {len(dev)} rows to {fold_spec['k']} folds x {fold_spec['repeats']} repeat(s)")
+    print(f"assigned {len(dev)} rows to {n_folds} folds x {n_repeats} repeat(s) ({fold_spec['scheme']})")
 
 
 def fit_family(smk: Any) -> None:

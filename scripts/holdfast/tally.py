@@ -161,9 +161,14 @@ def optimism(oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, ta
     if task == "classification":
         classes = sorted(pd.unique(dev[target]).tolist())
     complete = oof[oof["candidate"].isin(matrix.columns)]
-    arrays = stats.oof_arrays(complete, dev[KEY].to_numpy(), classes)
-    scorer = stats.sklearn_scorer(primary, task, classes)
-    bbc = stats.bbc_cv(arrays, dev[target].to_numpy(), scorer, draws=draws, seed=seed)
+    bbc, bbc_note = None, ""
+    if len(dev) >= 2:
+        arrays = stats.oof_arrays(complete, dev[KEY].to_numpy(), classes)
+        scorer = stats.sklearn_scorer(primary, task, classes)
+        bbc = stats.bbc_cv(arrays, dev[target].to_numpy(), scorer, draws=draws, seed=seed)
+    else:
+        bbc_note = ("not computed: BBC needs out-of-fold predictions of the same rows in every repeat, and "
+                    "repeated holdouts validate different rows in each repeat")
     summary = stats.optimism_summary(raw, tt, bbc)
     summary.update({
         "metric": primary, "winner": winner,
@@ -172,7 +177,10 @@ def optimism(oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, ta
                  "bbc: bootstrap bias-corrected CV, Tsamardinos, Greasidou & Borboudakis, Machine Learning 107, "
                  "2018, from the stored out-of-fold predictions (it estimates the best-mean selection procedure)."),
     })
-    summary["bbc"]["seed"] = seed
+    if summary["bbc"] is not None:
+        summary["bbc"]["seed"] = seed
+    else:
+        summary["bbc_note"] = bbc_note
     return summary
 
 
@@ -196,8 +204,15 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     else:
         ranking = ranking.assign(diff_vs_winner=np.nan, diff_se=np.nan, t=np.nan, p=np.nan)
     dev = pd.read_parquet(dev_path, columns=[KEY, target])
-    dev = dev[dev[KEY].isin(set(pd.read_parquet(folds_path, columns=[KEY])[KEY]))]  # nested: inner rows only
+    # Rows validated in every repeat (all inner rows for complete schemes; holdout and forward folds
+    # validate some rows only). Nested: the fold table lists the inner rows only.
+    folds_table = pd.read_parquet(folds_path, columns=[KEY, "repeat", "fold"])
+    per_repeat = [frozenset(part.loc[part["fold"].notna(), KEY]) for _, part in folds_table.groupby("repeat")]
+    every = set(per_repeat[0]) if len(set(per_repeat)) == 1 else set()  # BBC: the same rows in every repeat
+    dev = dev[dev[KEY].isin(every)]
     oof = pd.concat([pd.read_parquet(p) for p in sorted(oof_paths)], ignore_index=True)
+    if "repeat" in oof.columns:
+        oof = oof[oof[KEY].isin(every)]
     optimistic = optimism(oof, dev, target, primary, task, matrix, winner["candidate"],
                           int(selection["bootstrap"]), int(selection["seed"]))
     n_candidates = int(ranking["candidate"].nunique())
