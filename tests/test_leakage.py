@@ -83,3 +83,46 @@ def test_a_class_missing_from_a_validation_fold_is_reported(tmp_path: Path) -> N
                             str(tmp_path / "summary.parquet"))
     assert len(report["classes_missing_from_validation"]) >= 2
     assert "class '1' is missing from the validation rows of repeat 0" in report["summary"]
+
+
+def with_times(frame: pd.DataFrame) -> pd.DataFrame:
+    """The frame with an hourly time column in row order (crafted: rows are not a forecast by themselves)."""
+    out = frame.copy()
+    out["visit_at"] = pd.date_range("2025-03-01", periods=len(out), freq="h", tz="UTC").astype(str)
+    return out
+
+
+def test_a_test_split_that_ignores_time_is_noted_warned_or_refused(tmp_path: Path) -> None:
+    data = tmp_path / "data.csv"
+    with_times(breast_cancer_frame()).to_csv(data, index=False)
+    spec = {**SPEC, "time": "visit_at"}
+    noted = seal(data, spec, tmp_path / "note", "note")["leakage"]["time_order"]
+    assert noted["dev_rows_after_first_test"] > 0 and noted["mode"] == "note"
+    with pytest.raises(DataError, match=r"time column 'visit_at' of .* contradicts the test split \(hashed\): \d+ "
+                                        r"development row\(s\) are not earlier than the first test row"):
+        seal(data, spec, tmp_path / "error", "error", leakage={"time_order": "error"})
+    assert not (tmp_path / "error").exists()
+    tail = seal(data, {**spec, "scheme": "time_tail", "gap_hours": 0}, tmp_path / "tail", "tail")
+    assert tail["leakage"]["time_order"]["dev_rows_after_first_test"] == 0  # the time split respects time
+
+
+def test_folds_that_train_on_later_rows_are_noted_warned_or_refused(tmp_path: Path) -> None:
+    dev = with_times(breast_cancer_frame()).rename(columns={"patient": "row_key"})
+    spec = {**SPEC, "id": None, "time": "visit_at"}
+    manifest = {"leakage": {"duplicate_feature_rows_dev_test": 0, "single_feature": []}}
+    kfold = {"scheme": "kfold", "k": 4, "repeats": 1, "seed": 0}
+    folds = assign(dev, kfold, "target", None, "visit_at")
+    for mode in ("note", "warn"):
+        report = leakage_report(dev, folds, spec, "classification", {"time_order": mode}, manifest,
+                                str(tmp_path / f"{mode}.parquet"), kfold)
+        assert report["time_order_in_folds"]["training_rows_later"] > 0
+        assert ("ignores time: in 4 fold(s) training rows are later" in report["summary"]) == (mode == "warn")
+    with pytest.raises(DataError, match=r"folds.scheme kfold ignores time: in 4 fold\(s\) training rows are later "
+                                        r"than validation rows .*use folds.scheme: forward"):
+        leakage_report(dev, folds, spec, "classification", {"time_order": "error"}, manifest,
+                       str(tmp_path / "error.parquet"), kfold)
+    assert not (tmp_path / "error.parquet").exists()
+    forward = {"scheme": "forward", "k": 3, "window": None, "gap": 2, "min_train": 1, "repeats": 1}
+    report = leakage_report(dev, assign(dev, forward, "target", None, "visit_at"), spec, "classification",
+                            {"time_order": "error"}, manifest, str(tmp_path / "forward.parquet"), forward)
+    assert report["time_order_in_folds"] is None and "ignores time" not in report["summary"]

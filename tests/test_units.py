@@ -206,3 +206,23 @@ def test_time_tail_seals_the_latest_rows_after_a_gap(tmp_path: Path) -> None:
     assert first_test - last_dev >= pd.Timedelta(hours=240)
     assert len(test) == round(0.2 * len(frame))
     assert manifest["counts"]["left_out_in_gap"] == len(frame) - len(dev) - len(test) > 0
+
+
+def test_stratified_grouped_test_partition_keeps_groups_whole_and_class_shares_near() -> None:
+    # Breast cancer data (scikit-learn's bundled set) with 60 invented groups of unequal size.
+    frame = breast_cancer_frame()
+    rng = np.random.default_rng(4)
+    groups = pd.Series([f"clinic{i}" for i in rng.integers(0, 60, len(frame))])
+    target = frame["target"]
+    spec = {"fraction": 0.25, "scheme": "stratified_grouped", "salt": "s"}
+    mask = sealed_mask(frame["patient"], target, spec, groups)
+    assert not set(groups[mask]) & set(groups[~mask])  # no group on both sides
+    for label in (0, 1):  # each class's test share within one typical group size of the fraction
+        share = mask[target.to_numpy() == label].mean()
+        assert abs(share - 0.25) < 0.06, (label, share)
+    assert np.array_equal(mask, sealed_mask(frame["patient"], target, spec, groups))  # same salt, same rows
+    other = sealed_mask(frame["patient"], target, {**spec, "salt": "t"}, groups)
+    assert not np.array_equal(mask, other)
+    with pytest.raises(ConfigError, match=r"only 1 group\(s\) have class '1' as their most common class"):
+        lonely = pd.Series(np.where(target == 1, "all-positives", groups))
+        sealed_mask(frame["patient"], target, spec, lonely)

@@ -37,6 +37,9 @@ def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any],
         unique = pd.Series(values.unique())
         chosen = set(unique[hash_unit(unique, spec["salt"]) < float(spec["fraction"])])
         return values.isin(chosen).to_numpy()
+    if spec["scheme"] == "stratified_grouped":
+        assert groups is not None and target is not None
+        return _stratified_groups(groups.astype(str), target, spec)
     units = hash_unit(keys, spec["salt"])
     fraction = float(spec["fraction"])
     if spec["scheme"] == "hashed":
@@ -50,8 +53,36 @@ def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any],
             take = round(fraction * len(idx))
             mask[order[:take]] = True
         return mask
-    raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; use hashed, stratified or "
-                      "grouped")
+    raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; see config/README.md")
+
+
+def _stratified_groups(groups: pd.Series, target: pd.Series, spec: dict[str, Any]) -> np.ndarray:
+    """Whole groups to the test set, chosen per class so each class's test share is near the fraction.
+
+    A group counts for its most common class (ties: the smallest label). Within a class, groups are
+    taken in order of their salted hash while taking the next one brings the class's test rows
+    nearer fraction × the class's rows; at least one group per class stays on each side.
+    """
+    fraction = float(spec["fraction"])
+    table = pd.crosstab(groups.to_numpy(), target.to_numpy())
+    majority = table.idxmax(axis=1)  # first maximum in sorted label order
+    sizes = table.sum(axis=1)
+    chosen: set[str] = set()
+    for label in table.columns:
+        members = pd.Series(majority.index[majority == label])
+        if len(members) < 2:
+            raise ConfigError(f"config key 'test.scheme' is stratified_grouped but only {len(members)} group(s) "
+                              f"have class '{label}' as their most common class, so that class cannot be on both "
+                              "sides; use test.scheme: grouped")
+        order = members.iloc[np.lexsort((members.to_numpy(), hash_unit(members, spec["salt"])))]
+        goal, taken, count = fraction * float(sizes.loc[members].sum()), 0.0, 0
+        for group in order:
+            size = float(sizes.loc[group])
+            if count == len(members) - 1 or abs(taken + size - goal) >= abs(taken - goal):
+                break
+            chosen.add(group)
+            taken, count = taken + size, count + 1
+    return groups.isin(chosen).to_numpy()
 
 
 def split_masks(frame: pd.DataFrame, keys: pd.Series, spec: dict[str, Any], task: str) -> tuple[np.ndarray, np.ndarray]:
@@ -69,6 +100,34 @@ def split_masks(frame: pd.DataFrame, keys: pd.Series, spec: dict[str, Any], task
     target = frame[spec["target"]] if task == "classification" else None
     groups = frame[spec["group"]] if spec.get("group") else None
     return sealed_mask(keys, target, spec, groups), np.zeros(len(frame), dtype=bool)
+
+
+def time_order_at_seal(dev: pd.DataFrame, test: pd.DataFrame, spec: dict[str, Any], mode: str,
+                       source: str) -> dict[str, Any] | None:
+    """How many development rows are later than the earliest test row; an error where the scheme forbids it."""
+    column = spec.get("time")
+    if not column or test.empty:
+        return None
+    dev_times = pd.to_datetime(dev[column], utc=True)
+    first_test = pd.to_datetime(test[column], utc=True).min()
+    later = int((dev_times >= first_test).sum()) if spec["scheme"] == "time_tail" else int(
+        (dev_times > first_test).sum())
+    found = {"column": column, "scheme": spec["scheme"], "first_test_time": str(first_test),
+             "dev_rows_after_first_test": later, "share": later / max(len(dev), 1), "mode": mode}
+    if later and (spec["scheme"] == "time_tail" or mode == "error"):
+        raise DataError(f"time column '{column}' of '{source}' contradicts the test split ({spec['scheme']}): "
+                        f"{later} development row(s) are not earlier than the first test row ({first_test}); "
+                        + ("use test.scheme: time_tail or set leakage.time_order: note"
+                           if spec["scheme"] != "time_tail" else "check the time column for mixed time zones"))
+    return found
+
+
+def check_sides(n_test: int, n_dev: int, spec: dict[str, Any], source: str) -> None:
+    """At least 2 rows on each side of the seal, or the setting is impossible."""
+    if n_test < 2 or n_dev < 2:
+        raise ConfigError(f"config key 'test.fraction' is {spec['fraction']}: with test.scheme {spec['scheme']} it "
+                          f"leaves {n_test} test and {n_dev} development row(s) of '{source}', fewer than 2 on a "
+                          "side; choose a fraction nearer 0.5 (or another salt)")
 
 
 def check_development_classes(dev_target: pd.Series, source: str) -> None:
@@ -104,9 +163,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     keys = row_keys(frame, spec.get("id"))
     mask, dropped = split_masks(frame, keys, spec, task)
     n_test, n_dev = int(mask.sum()), int((~mask & ~dropped).sum())
-    if n_test < 1 or n_dev < 2:
-        raise DataError(f"test.fraction {spec['fraction']} leaves {n_test} test and {n_dev} development rows in "
-                        f"'{data_path}'; choose a fraction that leaves rows on both sides")
+    check_sides(n_test, n_dev, spec, str(data_path))
     if task == "classification":
         check_development_classes(frame[spec["target"]][~mask & ~dropped], str(data_path))
     keyed = frame.copy()
@@ -118,6 +175,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         raise DataError(f"{duplicates} sealed test row(s) of '{data_path}' repeat the features of a development row "
                         "(exact duplicates); remove them or set leakage.duplicates: warn")
     alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
+    time_check = time_order_at_seal(dev, test, spec, guards.get("time_order", "note"), str(data_path))
 
     write_parquet(out / TEST, test, mode=0o444)
     write_parquet(out / DEV, dev)
@@ -135,7 +193,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         "files": {"test.parquet": sha256_file(out / TEST), "dev.parquet": sha256_file(out / DEV)},
         "holdfast": __version__,
         "leakage": {"duplicate_feature_rows_dev_test": duplicates, "single_feature": alarms,
-                    "single_feature_threshold": float(guards["single_feature_threshold"])},
+                    "single_feature_threshold": float(guards["single_feature_threshold"]),
+                    **({"time_order": time_check} if time_check else {})},
     }
     if task == "classification":
         manifest["counts"]["classes"] = {
