@@ -130,11 +130,12 @@ def verify_chain(path: str | os.PathLike[str]) -> tuple[list[dict[str, Any]], li
     if not ledger.exists():
         return [], [Problem("ledger-missing", f"ledger '{ledger}' does not exist")]
     data = ledger.read_bytes()
-    if data and not data.endswith(b"\n"):
-        problems.append(Problem("torn-append", "the last ledger line is incomplete (an append was cut off)"))
     lines = data.split(b"\n")
     if lines and lines[-1] == b"":
         lines = lines[:-1]
+    if data and not data.endswith(b"\n"):
+        problems.append(Problem("torn-append", f"ledger line {len(lines)}, the last, is incomplete "
+                                "(an append was cut off)"))
     prev_hash: str | None = GENESIS
     for number, raw in enumerate(lines, start=1):
         try:

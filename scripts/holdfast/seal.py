@@ -147,18 +147,55 @@ def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd
     return frame, task
 
 
+def _interrupted_seal(out: Path, test: pd.DataFrame, data_sha256: str, sealed_spec: dict[str, Any],
+                      experiment: str) -> dict[str, Any] | None:
+    """Check what a killed seal left behind; return its ledger entry, if it wrote one.
+
+    A seal killed after writing the sealed file (or its ledger line) but before the manifest
+    may finish on a rerun only if it would seal exactly the same rows: the existing file's bytes
+    must equal what this seal writes, and a recorded seal must name the same data and spec.
+    Anything else is refused, as a second seal always is.
+    """
+    from ._io import write_parquet as _write
+
+    existing = out / TEST
+    events = ledger.events(ledger.read(out / LEDGER), "seal") if (out / LEDGER).exists() else []
+    if not existing.exists() and not events:
+        return None
+    refuse = SealedAccessError(f"experiment '{experiment}' is already sealed ('{existing}' or its ledger line "
+                               "exists) and this seal would differ; the seal never re-runs: name a new experiment "
+                               "to draw a new test set")
+    probe = out / ".sealed-check.parquet"
+    _write(probe, test)
+    try:
+        expected = sha256_file(probe)
+    finally:
+        probe.unlink()
+    if existing.exists() and sha256_file(existing) != expected:
+        raise refuse
+    if len(events) > 1:
+        raise refuse
+    if events:
+        details = events[0]["details"]
+        if (details.get("data_sha256") != data_sha256 or details.get("spec") != sealed_spec
+                or details.get("files", {}).get("test.parquet") != expected):
+            raise refuse
+        return events[0]
+    return None
+
+
 def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str | os.PathLike[str],
          experiment: str, rule: str | None = None, leakage: dict[str, Any] | None = None) -> dict[str, Any]:
     """Seal the test partition of an experiment and return its manifest.
 
-    Refuses to run when the experiment already has a manifest or a sealed file:
-    the seal happens once per experiment.
+    Refuses to run when the experiment already has a manifest: the seal happens once per
+    experiment. A seal killed before its manifest was written may finish on a rerun, but only
+    when it seals byte-identical rows (see :func:`_interrupted_seal`).
     """
     out = Path(exp_dir)
-    for existing in (out / MANIFEST, out / TEST):
-        if existing.exists():
-            raise SealedAccessError(f"experiment '{experiment}' is already sealed ('{existing}' exists); "
-                                    "the seal never re-runs: name a new experiment to draw a new test set")
+    if (out / MANIFEST).exists():
+        raise SealedAccessError(f"experiment '{experiment}' is already sealed ('{out / MANIFEST}' exists); "
+                                "the seal never re-runs: name a new experiment to draw a new test set")
     frame, task = load_checked(data_path, spec)
     keys = row_keys(frame, spec.get("id"))
     mask, dropped = split_masks(frame, keys, spec, task)
@@ -177,10 +214,12 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
     time_check = time_order_at_seal(dev, test, spec, guards.get("time_order", "note"), str(data_path))
 
-    write_parquet(out / TEST, test, mode=0o444)
-    write_parquet(out / DEV, dev)
     fingerprint = data_fingerprint(data_path)
     sealed_spec = {**spec, "task": task}
+    earlier = _interrupted_seal(out, test, fingerprint["sha256"], sealed_spec, experiment)
+    if not (out / TEST).exists():
+        write_parquet(out / TEST, test, mode=0o444)
+    write_parquet(out / DEV, dev)
     manifest: dict[str, Any] = {
         "experiment": experiment,
         "data": {"path": str(data_path), "rows": len(frame), "columns": [str(c) for c in frame.columns],
@@ -201,11 +240,14 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
             "dev": {str(k): int(v) for k, v in dev[spec["target"]].value_counts().sort_index().items()},
             "test": {str(k): int(v) for k, v in test[spec["target"]].value_counts().sort_index().items()},
         }
-    entry = ledger.append(out / LEDGER, "seal", {
+    entry = earlier or ledger.append(out / LEDGER, "seal", {
         "experiment": experiment, "data_sha256": fingerprint["sha256"], "spec": sealed_spec,
         "counts": manifest["counts"], "keys": manifest["keys"], "files": manifest["files"],
         "leakage": manifest["leakage"],
     }, rule=rule)
+    if earlier and earlier["details"].get("files") != manifest["files"]:
+        raise SealedAccessError(f"experiment '{experiment}': the interrupted seal recorded other file hashes than "
+                                "this seal gives; name a new experiment to draw a new test set")
     manifest["ledger_anchor"] = entry["hash"]
     write_json(out / MANIFEST, manifest)
     return manifest

@@ -181,4 +181,10 @@ def run(smk: Any) -> None:
     except HoldfastError as exc:
         print(exc.format_message(), flush=True)
         os.write(stderr, (exc.format_message() + "\n").encode())
-        sys.exit(exc.exit_code)
+        # An ordinary exception, not SystemExit: Snakemake runs the body in a worker thread, and a
+        # SystemExit there kills the thread and leaves the run waiting for ever.
+        raise StepError(exc.format_message()) from None
+
+
+class StepError(Exception):
+    """A job's holdfast error, re-raised so Snakemake marks the job failed and stops the run."""
