@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import re
+import subprocess
+import sys
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -11,7 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-from conftest import breast_cancer_frame, run_workflow, tree_digest, write_config
+from conftest import REPO, breast_cancer_frame, run_workflow, tree_digest, write_config
 from holdfast.dataset import hash_unit
 
 Edit = Callable[[Path, dict[str, Any]], None]
@@ -240,6 +242,88 @@ def invalid_parameter_value(workdir: Path, config: dict[str, Any]) -> None:
     config["candidates"]["tree"]["params"]["min_samples_leaf"] = "many"
 
 
+def empty_data_file(workdir: Path, config: dict[str, Any]) -> None:
+    """A new experiment whose data file has zero bytes."""
+    (workdir / "bad.csv").write_bytes(b"")
+    config["experiment"] = FRESH
+    config["data"]["path"] = "bad.csv"
+
+
+def unreadable_parquet(workdir: Path, config: dict[str, Any]) -> None:
+    """A '.parquet' data file that is not Parquet (a truncated or mislabelled download)."""
+    (workdir / "bad.parquet").write_bytes(b"PAR1 this is not a parquet file")
+    config["experiment"] = FRESH
+    config["data"]["path"] = "bad.parquet"
+
+
+def duplicate_column_names(workdir: Path, config: dict[str, Any]) -> None:
+    """A CSV header that names one column twice."""
+    frame = breast_cancer_frame()
+    text = frame.to_csv(index=False).replace("mean_texture", "mean_radius", 1)
+    (workdir / "bad.csv").write_text(text, encoding="utf-8")
+    config["experiment"] = FRESH
+    config["data"]["path"] = "bad.csv"
+
+
+def target_single_class(workdir: Path, config: dict[str, Any]) -> None:
+    """Every row has the same class."""
+    frame = breast_cancer_frame()
+    frame["target"] = 1
+    use_data(workdir, config, frame)
+
+
+def text_feature_without_encoder(workdir: Path, config: dict[str, Any]) -> None:
+    """A text feature column while a family declares no categorical encoder."""
+    frame = breast_cancer_frame()
+    frame["referral"] = np.where(np.arange(len(frame)) % 3 == 0, "gp", "clinic")
+    use_data(workdir, config, frame)
+    config["candidates"]["tree"]["preprocess"] = {"categorical": "none"}
+
+
+def data_outside_project(workdir: Path, config: dict[str, Any]) -> None:
+    """A data path outside the work folder, without data.allow_outside_project."""
+    config["experiment"] = FRESH
+    config["data"]["path"] = str(workdir.parent / "elsewhere.csv")
+    breast_cancer_frame().to_csv(workdir.parent / "elsewhere.csv", index=False)
+
+
+def yaml_alias_bomb(workdir: Path, config: dict[str, Any]) -> None:
+    """Nested YAML anchors and aliases that expand to 10^9 values (parsed with the safe loader)."""
+    levels = ["a: &a [x, x, x, x, x, x, x, x, x, x]"]
+    levels += [f"{c}: &{c} [" + ", ".join([f"*{p}"] * 10) + "]" for p, c in zip("abcdefgh", "bcdefghi", strict=True)]
+    bomb = yaml.safe_load("\n".join(levels))
+    config["candidates"]["tree"]["params"]["bomb"] = bomb["i"]
+
+
+def k_above_groups(workdir: Path, config: dict[str, Any]) -> None:
+    """Group folds with more folds than groups."""
+    frame = breast_cancer_frame()
+    frame["clinic"] = [f"C{i % 4}" for i in range(len(frame))]
+    use_data(workdir, config, frame)
+    config["data"]["group"] = "clinic"
+    config["folds"] = {"scheme": "group", "k": 6}
+
+
+def holdout_fraction_too_small(workdir: Path, config: dict[str, Any]) -> None:
+    """A holdout whose validation share leaves a single row."""
+    config["folds"] = {"scheme": "holdout", "fraction": 0.002}
+
+
+def forward_too_little_training(workdir: Path, config: dict[str, Any]) -> None:
+    """Forward folds whose first window would train on fewer rows than folds.min_train."""
+    frame = breast_cancer_frame()
+    frame["visit_at"] = pd.date_range("2025-01-01", periods=len(frame), freq="h", tz="UTC").astype(str)
+    use_data(workdir, config, frame)
+    config["data"]["time"] = "visit_at"
+    config["folds"] = {"scheme": "forward", "k": 5, "min_train": 200}
+
+
+def tiny_test_fraction(workdir: Path, config: dict[str, Any]) -> None:
+    """A test fraction so small that one row would be sealed."""
+    config["experiment"] = FRESH
+    config["test"] = {**config["test"], "scheme": "stratified", "fraction": 0.002}
+
+
 # --- the table ---------------------------------------------------------------------------------------------------
 
 CASES = [
@@ -255,7 +339,8 @@ CASES = [
                  r"target column 'target' has 2 missing value\(s\) in 'bad\.csv'; drop or fill those rows",
                  id="target-missing-values"),
     pytest.param(unknown_fold_key, CONFIG_ERROR,
-                 r"config key 'folds\.kk' is not known; remove it or use one of: k, repeats, scheme, seed",
+                 r"config key 'folds\.kk' is not known; remove it or use one of: fraction, gap, k, min_train, "
+                 r"repeats, scheme, seed, window",
                  id="misspelt-fold-key"),
     pytest.param(unknown_top_level_key, CONFIG_ERROR,
                  r"config key 'metric' is not known; remove it or use one of: .*\bmetrics\b", id="misspelt-top-key"),
@@ -342,12 +427,44 @@ CASES = [
     pytest.param(invalid_parameter_value, CONFIG_ERROR,
                  r"config key 'candidates\.tree': a value is not accepted by .*'min_samples_leaf'.*fix params",
                  id="parameter-value-invalid"),
+    pytest.param(empty_data_file, DATA_ERROR,
+                 r"data file 'bad\.csv' is empty; point data\.path at a file with a header and rows", id="data-empty"),
+    pytest.param(unreadable_parquet, DATA_ERROR,
+                 r"data file 'bad\.parquet' could not be read \(ArrowInvalid: .*\); check its format",
+                 id="data-unreadable"),
+    pytest.param(duplicate_column_names, DATA_ERROR,
+                 r"data file 'bad\.csv' repeats column name 'mean_radius'; give every column a unique name",
+                 id="columns-duplicate"),
+    pytest.param(target_single_class, DATA_ERROR, r"target column 'target' .*(one|single) (value|class)",
+                 id="target-one-class"),
+    pytest.param(text_feature_without_encoder, CONFIG_ERROR,
+                 r"config key 'candidates\.tree\.preprocess\.categorical' is none but feature column 'referral' is "
+                 r"not numeric; set it to onehot, or list the column in data\.drop", id="text-without-encoder"),
+    pytest.param(data_outside_project, CONFIG_ERROR,
+                 r"config key 'data\.path': '.*elsewhere\.csv' is outside the project folder .*; copy the file "
+                 r"into the project or set data\.allow_outside_project: true", id="data-outside-project"),
+    pytest.param(yaml_alias_bomb, CONFIG_ERROR,
+                 r"config expands to more than 100000 values \(nested YAML anchors and aliases\?\)",
+                 id="yaml-alias-bomb"),
+    pytest.param(k_above_groups, CONFIG_ERROR,
+                 r"config key 'folds\.k' is 6 but group column 'clinic' has only 4 groups in the development rows",
+                 id="k-above-groups"),
+    pytest.param(holdout_fraction_too_small, CONFIG_ERROR,
+                 r"config key 'folds\.fraction' is 0\.002: with \d+ development rows it leaves 1 validation and "
+                 r"\d+ training row\(s\), fewer than 2 on a side", id="holdout-fraction-too-small"),
+    pytest.param(forward_too_little_training, CONFIG_ERROR,
+                 r"folds \(forward\): with \d+ development rows, k=5 windows of \d+ and a gap of 0, fold 0 would "
+                 r"train on \d+ rows, fewer than folds\.min_train=200", id="forward-min-train"),
+    pytest.param(tiny_test_fraction, CONFIG_ERROR,
+                 r"config key 'test\.fraction' is 0\.002: with test\.scheme stratified it leaves 1 test and \d+ "
+                 r"development row\(s\) of 'data\.csv', fewer than 2 on a side", id="test-fraction-one-row"),
 ]
 # Through the real Snakemake as well (each costs a full start-up): the issue's acceptance list plus
 # one case per error class and per place the check happens.
-REAL_RUN = {"missing-data-file", "target-column-missing", "target-missing-values", "misspelt-fold-key",
+REAL_RUN = {"data-file-missing", "target-column-missing", "target-missing-values", "misspelt-fold-key",
             "k-above-smallest-class", "estimator-os-system", "scorer-unknown",
-            "class-only-in-test", "parameter-value-invalid", "experiment-parent-path", "sealed-data-file-deleted"}
+            "class-only-in-test", "parameter-value-invalid", "experiment-parent-path", "sealed-data-file-deleted",
+            "data-outside-project", "holdout-fraction-too-small", "forward-min-train", "k-above-groups"}
 
 
 def prepared_case(workdir: Path, edit: Edit) -> dict[str, Any]:
@@ -397,3 +514,61 @@ def test_bad_input_stops_the_real_workflow_with_one_line(bc_copy: Path, edit: Ed
     assert "Traceback" not in result.stderr, result.stderr[-3000:]
     assert snapshot(results) == before, "a bad input must not write under results/"
     assert not (bc_copy / "escape").exists() and not (bc_copy / "results" / "team").exists()
+
+
+# --- a config file whose YAML would run code -------------------------------------------------------------------------
+
+# What Snakemake 9 says when it cannot load a --configfile; it reads the file itself (yaml.FullLoader, via yte)
+# before the Snakefile and any holdfast code run, and names neither the file nor the offending tag.
+SNAKEMAKE_CONFIG_REFUSAL = ("Config file is not valid JSON or YAML. In case of YAML, make sure to not mix whitespace "
+                            "and tab indentation.")
+
+
+def tagged_config(workdir: Path, payload: Path) -> Path:
+    """The finished experiment's config, its name replaced by a YAML tag that would run ``touch <payload>``."""
+    text = (workdir / "config.yaml").read_text(encoding="utf-8")
+    first, rest = text.split("\n", 1)
+    assert first == "experiment: bc"
+    path = workdir / "tagged.yaml"
+    path.write_text(f'experiment: !!python/object/apply:os.system ["touch {payload}"]\n{rest}', encoding="utf-8")
+    return path
+
+
+@pytest.mark.slow
+def test_configfile_with_code_running_yaml_tag_runs_nothing(bc_copy: Path, tmp_path: Path) -> None:
+    """A --configfile with a python/object/apply tag stops the real run; the command never runs, results/ is kept."""
+    payload = tmp_path / "pwned"
+    tagged = tagged_config(bc_copy, payload)
+    live = tmp_path / "live"  # the same text under a loader that runs tags: the payload is a working command
+    yaml.load(tagged.read_text(encoding="utf-8").replace(str(payload), str(live)), Loader=yaml.UnsafeLoader)
+    assert live.exists() and not payload.exists()
+    results = bc_copy / "results"
+    before = snapshot(results)
+
+    result = run_workflow(bc_copy, configfile=tagged.name)
+
+    assert result.returncode != 0, result.stderr[-3000:]
+    assert not payload.exists(), "the config file's YAML tag ran a command"
+    assert snapshot(results) == before, "a bad config file must not write under results/"
+    assert last_stderr_line(result.stderr) == SNAKEMAKE_CONFIG_REFUSAL, result.stderr[-3000:]
+    assert "Traceback" not in result.stderr, result.stderr[-3000:]
+    # holdfast's own reader, which the README gives for checking a config first, names the file and the tag.
+    check = subprocess.run([sys.executable, "-m", "holdfast", "check", str(tagged)], capture_output=True, text=True,
+                           cwd=bc_copy, env={"PYTHONPATH": str(REPO / "scripts"), "PATH": "/usr/bin:/bin"},
+                           timeout=300)
+    assert check.returncode == CONFIG_ERROR, check.stdout + check.stderr
+    assert check.stderr.startswith(f"holdfast: config error: config file '{tagged}' is not plain YAML")
+    assert "python/object/apply:os.system" in check.stderr
+    assert not payload.exists() and snapshot(results) == before
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
+    "Snakemake loads --configfile before any holdfast code runs, and its error names neither the file nor the tag"))
+def test_configfile_with_code_running_yaml_tag_is_named(bc_copy: Path, tmp_path: Path) -> None:
+    """The real run's error names the config file that holds the tag, as holdfast's own messages name files."""
+    tagged = tagged_config(bc_copy, tmp_path / "pwned")
+    result = run_workflow(bc_copy, configfile=tagged.name)
+    assert result.returncode != 0
+    error = result.stderr[result.stderr.rfind("Error"):]  # the error block, after Snakemake's header
+    assert tagged.name in error, result.stderr[-3000:]

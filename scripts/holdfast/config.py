@@ -237,6 +237,18 @@ def allowed_prefixes(config: dict[str, Any]) -> list[str]:
     return [ALWAYS_ALLOWED, *extra]
 
 
+def check_data_location(config: dict[str, Any], project: str | os.PathLike[str] = ".") -> None:
+    """Refuse a data path outside the project folder unless data.allow_outside_project is set."""
+    data = config["data"]
+    if data.get("allow_outside_project"):
+        return
+    root = Path(project).resolve()
+    where = (root / data["path"]).resolve()  # an absolute path replaces root; symlinks are followed
+    if not where.is_relative_to(root):
+        raise ConfigError(f"config key 'data.path': '{data['path']}' is outside the project folder '{root}'; copy "
+                          "the file into the project or set data.allow_outside_project: true")
+
+
 def load(path: str | os.PathLike[str]) -> dict[str, Any]:
     """Read and validate a config file."""
     return validate(read_yaml(path))
@@ -288,7 +300,7 @@ def selection_fingerprint(config: dict[str, Any], code: str) -> str:
             "opening")
     part = {k: config.get(k) for k in keys}
     part["test"] = {k: v for k, v in config["test"].items() if k != "reopen_reasons"}
-    part["data"] = {k: v for k, v in config["data"].items() if k != "path"}
+    part["data"] = {k: v for k, v in config["data"].items() if k not in ("path", "allow_outside_project")}
     return sha256_text(canonical_json({"config": part, "code": code}))
 
 

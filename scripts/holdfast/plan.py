@@ -187,9 +187,29 @@ def _opening_guard(plan: Plan) -> None:
                                 + refusal(plan.config["experiment"], openings, allowed))
 
 
+def _check_encoders(config: dict[str, Any], text_columns: list[str]) -> None:
+    """A family that declares no categorical encoder cannot take text features: say so before any fit."""
+    if not text_columns:
+        return
+    for family, spec in config["candidates"].items():
+        if spec["preprocess"].get("categorical", "onehot") == "none":
+            raise ConfigError(f"config key 'candidates.{family}.preprocess.categorical' is none but feature column "
+                              f"'{text_columns[0]}' is not numeric; set it to onehot, or list the column in data.drop")
+
+
+def _text_features(frame: Any, spec: dict[str, Any]) -> list[str]:
+    import pandas as pd
+
+    from .dataset import feature_columns
+
+    return [c for c in feature_columns(frame, spec) if not (pd.api.types.is_numeric_dtype(frame[c])
+                                                            or pd.api.types.is_bool_dtype(frame[c]))]
+
+
 def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") -> Plan:
     """Validate the config and run the parse-time guards; ``main`` adds the checks that import scikit-learn."""
     config = cfg.validate(raw)
+    cfg.check_data_location(config)
     exp = cfg.experiment_dir(config, results)
     manifest = read_manifest(exp)
     spec = cfg.seal_spec(config)
@@ -207,6 +227,11 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
         n_dev = int(manifest["counts"]["dev"])
         n_groups = manifest["counts"].get("dev_groups")
+        text_columns: list[str] = []
+        if main and any(f["preprocess"].get("categorical") == "none" for f in config["candidates"].values()):
+            import pandas as pd
+
+            text_columns = _text_features(pd.read_parquet(exp / DEV).drop(columns=["row_key"]), spec)
     else:
         from .dataset import row_keys
         from .seal import check_development_classes, check_sides, load_checked, split_masks
@@ -218,6 +243,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         check_sides(int(test_rows.sum()), len(dev), spec, config["data"]["path"])
         n_dev = len(dev)
         n_groups = int(dev[spec["group"]].nunique()) if spec["group"] else None
+        text_columns = _text_features(frame, spec) if main else []
         if main:
             if task == "classification":
                 check_development_classes(dev[spec["target"]], config["data"]["path"])
@@ -238,6 +264,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         from .scoring import check_metrics
 
         check_metrics(config["metrics"], task)
+        _check_encoders(config, text_columns)
         check_estimators(config, families, task, cfg.allowed_prefixes(config))
         if dev_target is not None:
             from .foldspec import GROUPED, STRATIFIED
