@@ -78,6 +78,8 @@ def test_demo_passes_audit_and_folds_equal_stratified_kfold(demo_finished: Path)
     leakage = json.loads((exp / "leakage.json").read_text())  # the guards are silent on the clean demo
     assert leakage["duplicate_feature_rows_dev_test"] == 0 and leakage["duplicate_feature_rows_within_folds"] == 0
     assert leakage["single_feature"] == []
+    assert "warning" not in leakage["summary"]  # time order only noted (leakage.time_order: note) on the demo
+    assert leakage["time_order_in_folds"]["scheme"] == "stratified"
     dev = pd.read_parquet(exp / "dev.parquet")
     folds = pd.read_parquet(exp / "folds.parquet")
     config = cfg.load(demo_finished / "config.yaml")

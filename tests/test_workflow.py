@@ -211,3 +211,21 @@ def test_outputs_are_byte_identical_with_one_core(bc_finished: Path, bc_workdir:
         ours = hashlib.sha256((bc_workdir / "results/bc" / name).read_bytes()).hexdigest()
         theirs = hashlib.sha256((bc_finished / "results/bc" / name).read_bytes()).hexdigest()
         assert ours == theirs, name
+
+
+def test_every_seed_is_recorded_in_the_ledger(bc_finished: Path) -> None:
+    """Fold seeds, estimator random_states, the BBC seed and the test interval's seed are all in the ledger."""
+    from holdfast import ledger
+
+    config = yaml.safe_load((bc_finished / "config.yaml").read_text())
+    entries = ledger.read(bc_finished / "results" / "bc" / "ledger.jsonl")
+    by_event = {e["event"]: e["details"] for e in entries}
+    assert by_event["assign_folds"]["seeds"] == [config["folds"]["seed"]]
+    fits = [e["details"] for e in entries if e["event"] == "fit"]
+    tree_states = {v for d in fits if d["family"] == "tree" for v in d["random_states"].values()}
+    assert tree_states == {0}  # fixed in the config's params
+    logistic_states = {v for d in fits if d["family"] == "logistic" for v in d["random_states"].values()}
+    assert logistic_states == {0}  # unseeded in the config: holdfast fixes 0 and records it
+    assert by_event["tally"]["bbc_seed"] == 0 and by_event["tally"]["bbc_draws"] > 0
+    assert by_event["refit"]["random_state"] in ("0", "None")
+    assert by_event["open_test"]["interval_seed"] == config["opening"]["seed"]

@@ -36,6 +36,9 @@ def fold_rows(dev: pd.DataFrame, folds: pd.DataFrame, repeat: int, fold: int) ->
     return training, validation
 
 
+SEEDS: dict[str, Any] = {}  # candidate id -> the random_state its estimator was fitted with (for the ledger)
+
+
 def fit_one(candidate: dict[str, Any], x_train: pd.DataFrame, y_train: pd.Series, x_val: pd.DataFrame,
             y_val: pd.Series, metrics: list[str], task: str, threads: int,
             allowed: list[str]) -> tuple[dict[str, Any], dict[str, np.ndarray] | None, Any]:
@@ -48,6 +51,7 @@ def fit_one(candidate: dict[str, Any], x_train: pd.DataFrame, y_train: pd.Series
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             model = build_pipeline(candidate, x_train, threads, allowed)
+            SEEDS[candidate["id"]] = model.named_steps["model"].get_params(deep=False).get("random_state")
             model.fit(x_train, y_train)
             record["fit_seconds"] = time.perf_counter() - start
             classes = getattr(model, "classes_", None)
@@ -67,6 +71,11 @@ def fit_one(candidate: dict[str, Any], x_train: pd.DataFrame, y_train: pd.Series
         last = traceback.format_exception_only(type(exc), exc)[-1].strip()
         record.update({"status": "failed", "error": last[:500], "warnings": ""})
         return record, None, None
+
+
+def _plain(seed: Any) -> int | str | None:
+    """A random_state as the ledger can hold it (an int, None, or the repr of a generator)."""
+    return seed if seed is None or isinstance(seed, int) else repr(seed)
 
 
 def oof_frame(keys: np.ndarray, candidate: str, outputs: dict[str, np.ndarray], classes: Any) -> pd.DataFrame:
@@ -126,5 +135,6 @@ def fit_family(dev_path: str, folds_path: str, family: dict[str, Any], spec: dic
         "n_val": int(validation.sum()), "candidates": len(fits), "failed": len(failed),
         "folds_sha256": sha256_file(folds_path), "fits": str(Path(fits_path).name),
         "fits_sha256": sha256_file(fits_path), "oof_sha256": sha256_file(oof_path),
+        "random_states": {c["id"]: _plain(SEEDS.get(c["id"])) for c in family["candidates"]},
     }, rule=rule)
     return fits

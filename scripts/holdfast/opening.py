@@ -154,6 +154,7 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
             "opening": number, "winner": verdict["winner"]["candidate"], "model_sha256": model_sha,
             "test_sha256": test_sha, "rows": len(test), "verdict_sha256": sha256_file(archive),
             "reasons": reopen_reasons[: number - 1], "fingerprint": fingerprint,
+            "interval_seed": seed, "interval_draws": draws,
         }, rule=rule)
         write_json(target, verdict)
         return verdict

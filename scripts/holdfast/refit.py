@@ -98,5 +98,6 @@ def refit_winner(choice_path: str, dev_path: str, spec: dict[str, Any], threads:
         "scope": scope, "winner": candidate["id"], "family": candidate["family"], "rows": len(dev),
         "dev_sha256": card["trained_on"]["dev_sha256"], "model_sha256": card["model_file"]["sha256"],
         "card_sha256": sha256_file(card_path), "choice_sha256": sha256_file(choice_path),
+        "random_state": card["estimator_params"].get("random_state"),
     }, rule=rule)
     return card
