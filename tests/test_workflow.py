@@ -229,3 +229,29 @@ def test_every_seed_is_recorded_in_the_ledger(bc_finished: Path) -> None:
     assert by_event["tally"]["bbc_seed"] == 0 and by_event["tally"]["bbc_draws"] > 0
     assert by_event["refit"]["random_state"] in ("0", "None")
     assert by_event["open_test"]["interval_seed"] == config["opening"]["seed"]
+
+
+def test_a_second_invocation_on_the_same_experiment_stops_with_a_clear_message(bc_copy: Path) -> None:
+    """While one run holds the work folder, a second is refused by Snakemake's lock; the first finishes cleanly."""
+    import os
+    import time
+
+    from conftest import REPO
+
+    cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(bc_copy), "--cores", "1",
+           "--forcerun", "audit", "--configfile", str(bc_copy / "config.yaml")]
+    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+    first = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
+                             stdin=subprocess.DEVNULL)
+    locks = bc_copy / ".snakemake" / "locks"
+    deadline = time.monotonic() + 120
+    while not (locks.exists() and any(locks.iterdir())):  # the first run has taken the lock
+        assert first.poll() is None and time.monotonic() < deadline, "the first run never took the lock"
+        time.sleep(0.05)
+    second = run_workflow(bc_copy)
+    _, err = first.communicate(timeout=300)
+    assert second.returncode != 0
+    assert "Directory cannot be locked" in second.stderr, second.stderr[-2000:]
+    assert first.returncode == 0, err[-2000:]
+    ledger = (bc_copy / "results" / "bc" / "ledger.jsonl").read_text().splitlines()
+    assert sum('"event":"open_test"' in line for line in ledger) == 1
