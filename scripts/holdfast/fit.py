@@ -36,9 +36,6 @@ def fold_rows(dev: pd.DataFrame, folds: pd.DataFrame, repeat: int, fold: int) ->
     return training, validation
 
 
-SEEDS: dict[str, Any] = {}  # candidate id -> the random_state its estimator was fitted with (for the ledger)
-
-
 def fit_one(candidate: dict[str, Any], x_train: pd.DataFrame, y_train: pd.Series, x_val: pd.DataFrame,
             y_val: pd.Series, metrics: list[str], task: str, threads: int,
             allowed: list[str]) -> tuple[dict[str, Any], dict[str, np.ndarray] | None, Any]:
@@ -51,7 +48,7 @@ def fit_one(candidate: dict[str, Any], x_train: pd.DataFrame, y_train: pd.Series
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             model = build_pipeline(candidate, x_train, threads, allowed)
-            SEEDS[candidate["id"]] = model.named_steps["model"].get_params(deep=False).get("random_state")
+            record["random_state"] = _plain(model.named_steps["model"].get_params(deep=False).get("random_state"))
             model.fit(x_train, y_train)
             record["fit_seconds"] = time.perf_counter() - start
             classes = getattr(model, "classes_", None)
@@ -111,9 +108,11 @@ def fit_family(dev_path: str, folds_path: str, family: dict[str, Any], spec: dic
     x_train, y_train, x_val, y_val = x[training], y[training], x[validation], y[validation]
     keys_val = dev.loc[validation, KEY].to_numpy()
     records, oofs = [], []
+    seeds: dict[str, int | str | None] = {}
     for candidate in family["candidates"]:
         record, outputs, classes = fit_one(candidate, x_train, y_train, x_val, y_val, metrics, task, threads, allowed)
         record.update({"repeat": repeat, "fold": fold})
+        seeds[candidate["id"]] = record.pop("random_state", None)  # for the ledger, not the fit table
         records.append(record)
         if outputs is not None:
             oofs.append(oof_frame(keys_val, candidate["id"], outputs, classes).assign(repeat=repeat, fold=fold))
@@ -135,6 +134,6 @@ def fit_family(dev_path: str, folds_path: str, family: dict[str, Any], spec: dic
         "n_val": int(validation.sum()), "candidates": len(fits), "failed": len(failed),
         "folds_sha256": sha256_file(folds_path), "fits": str(Path(fits_path).name),
         "fits_sha256": sha256_file(fits_path), "oof_sha256": sha256_file(oof_path),
-        "random_states": {c["id"]: _plain(SEEDS.get(c["id"])) for c in family["candidates"]},
+        "random_states": seeds,
     }, rule=rule)
     return fits

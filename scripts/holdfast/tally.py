@@ -211,8 +211,7 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     every = set(per_repeat[0]) if len(set(per_repeat)) == 1 else set()  # BBC: the same rows in every repeat
     dev = dev[dev[KEY].isin(every)]
     oof = pd.concat([pd.read_parquet(p) for p in sorted(oof_paths)], ignore_index=True)
-    if "repeat" in oof.columns:
-        oof = oof[oof[KEY].isin(every)]
+    oof = oof[oof[KEY].isin(every)]
     optimistic = optimism(oof, dev, target, primary, task, matrix, winner["candidate"],
                           int(selection["bootstrap"]), int(selection["seed"]))
     n_candidates = int(ranking["candidate"].nunique())
