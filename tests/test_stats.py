@@ -31,6 +31,7 @@ from holdfast.stats import (
     replay_scorer,
     sklearn_scorer,
     tibshirani_bias,
+    tibshirani_caution,
 )
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -272,6 +273,24 @@ def test_tibshirani_bias_is_non_negative_and_moves_down(folds: int, candidates: 
     r = tibshirani_bias(scores)
     assert r.bias >= 0 and r.corrected <= r.raw
     assert r.raw == pytest.approx(scores.mean(axis=0).max())
+
+
+@pytest.mark.parametrize("k", [4, 16])
+def test_tibshirani_correction_is_about_sqrt_k_minus_one_times_the_optimism(k: int) -> None:
+    # holdfast's own derivation (stats.tibshirani_caution), checked here by simulation, not a published
+    # source: M candidates with equal true score and independent N(0, 1) fold scores. The winner's true
+    # optimism is E[max_j mean_k] = c/sqrt(k); T&T's correction is about c(1 - 1/sqrt(k)), a ratio of sqrt(k) - 1.
+    rng = np.random.default_rng(7)
+    reps, m = 4000, 20
+    scores = rng.standard_normal((reps, k, m))
+    optimism = scores.mean(axis=1).max(axis=1).mean()  # true score is 0
+    correction = np.mean([tibshirani_bias(one).bias for one in scores])
+    assert correction / optimism == pytest.approx(math.sqrt(k) - 1, rel=0.1)
+
+
+def test_tibshirani_caution_from_nine_folds() -> None:
+    assert tibshirani_caution(5) == "" and tibshirani_caution(8) == ""
+    assert "10 folds" in tibshirani_caution(10) and "2.2 times" in tibshirani_caution(10)
 
 
 def test_best_by_mean_breaks_ties_by_smallest_label() -> None:

@@ -71,6 +71,7 @@ def test_finished_run_reports_uncertainty_comparison_and_optimism(bc_finished: P
     for name in ("tibshirani", "bbc"):
         assert optimism[name]["optimism"] == pytest.approx(optimism["raw"] - optimism[name]["corrected"])
         assert optimism[name]["optimism"] >= 0
+    assert optimism["tibshirani"]["folds_per_repeat"] == 3 and "caution" not in optimism["tibshirani"]  # k = 3
     verdict = json.loads((exp / "final/verdict.json").read_text())
     block = verdict["metrics"]["accuracy"]
     assert block["cv_corrected_bbc"] == optimism["bbc"]["corrected"]

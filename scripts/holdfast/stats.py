@@ -422,6 +422,23 @@ def tibshirani_bias(fold_scores: pd.DataFrame | np.ndarray, winner: Hashable | N
     return TibshiraniEstimate(winner=chosen, raw=raw, bias=bias, corrected=raw - bias, folds=matrix.shape[0])
 
 
+def tibshirani_caution(folds_per_repeat: int) -> str:
+    """A warning for reports when the T&T correction is expected to overshoot (k ≥ 9 folds), else ''.
+
+    When candidates differ mostly by noise, a fold's best score beats the winner's fold score by
+    about (√k − 1) times the raw optimism, so the corrected value misses the truth by about
+    (√k − 2) times it, on the other side: further than the raw mean once √k − 2 > 1, i.e. k ≥ 9.
+    This is holdfast's own derivation, checked by its simulation (bench/optimism.py), not the paper's.
+    """
+    k = int(folds_per_repeat)
+    if k < 9:
+        return ""
+    return (f"with {k} folds per repeat this correction tends to overshoot: when candidates differ mostly by "
+            f"noise it is about {math.sqrt(k) - 1:.1f} times the true optimism, so the corrected value can land "
+            "further from the truth than the raw mean, on the pessimistic side; bbc does not share this "
+            "(holdfast's own derivation and simulation, bench/optimism.py)")
+
+
 # ---------------------------------------------------------------------------------------------
 # Scorers for the bootstrap: generic callables, and weighted scorers that vectorise over draws
 # ---------------------------------------------------------------------------------------------

@@ -177,6 +177,11 @@ def optimism(oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, ta
                  "bbc: bootstrap bias-corrected CV, Tsamardinos, Greasidou & Borboudakis, Machine Learning 107, "
                  "2018, from the stored out-of-fold predictions (it estimates the best-mean selection procedure)."),
     })
+    folds_per_repeat = int(matrix.index.get_level_values("fold").nunique())
+    summary["tibshirani"]["folds_per_repeat"] = folds_per_repeat
+    caution = stats.tibshirani_caution(folds_per_repeat)
+    if caution:
+        summary["tibshirani"]["caution"] = caution
     if summary["bbc"] is not None:
         summary["bbc"]["seed"] = seed
     else:
