@@ -226,3 +226,17 @@ def test_stratified_grouped_test_partition_keeps_groups_whole_and_class_shares_n
     with pytest.raises(ConfigError, match=r"only 1 group\(s\) have class '1' as their most common class"):
         lonely = pd.Series(np.where(target == 1, "all-positives", groups))
         sealed_mask(frame["patient"], target, spec, lonely)
+
+
+def test_a_write_removes_the_temporary_file_a_killed_writer_left(tmp_path: Path) -> None:
+    from holdfast._io import write_json
+
+    target = tmp_path / "choice.json"
+    stale = tmp_path / ".choice.json.k3x9q_.tmp"  # the name tempfile.mkstemp gives in write_atomic
+    other = tmp_path / ".ranking.parquet.a1b2c3.tmp"  # another output's leftover is not ours to remove
+    stale.write_text("half a file")
+    other.write_text("half a file")
+    write_json(target, {"winner": "a"})
+    assert json.loads(target.read_text()) == {"winner": "a"}
+    assert not stale.exists() and other.exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == [".ranking.parquet.a1b2c3.tmp", "choice.json"]

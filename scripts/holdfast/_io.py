@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import glob
 import hashlib
 import json
 import os
@@ -37,10 +38,14 @@ def canonical_json(value: Any) -> str:
 def write_atomic(path: str | os.PathLike[str], writer: Callable[[str], None], mode: int | None = None) -> None:
     """Write through ``writer(tmp_path)`` to a temporary name, fsync, then rename into place.
 
-    A reader never sees a half-written file, and a crash leaves the old file (or none).
+    A reader never sees a half-written file, and a crash leaves the old file (or none). A process
+    killed mid-write leaves its temporary file behind; the next write of the same output removes
+    it (only the job that owns an output writes it, so such a file is never a live one).
     """
     target = Path(path)
     target.parent.mkdir(parents=True, exist_ok=True)
+    for stale in target.parent.glob(f".{glob.escape(target.name)}.*.tmp"):
+        stale.unlink(missing_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     os.close(fd)
     try:
