@@ -29,7 +29,9 @@ STAGE_MODULES = {
 }
 
 
-def _relative_imports(module: str) -> set[str]:
+@cache
+def _relative_imports(module: str) -> frozenset[str]:
+    # Cached: every stage's hash walks the shared modules again, and every job re-parses the Snakefile.
     tree = ast.parse((PACKAGE / f"{module}.py").read_text(encoding="utf-8"))
     found = set()
     for node in ast.walk(tree):
@@ -38,7 +40,7 @@ def _relative_imports(module: str) -> set[str]:
                 found.add(node.module.split(".")[0])
             else:
                 found.update(alias.name for alias in node.names)
-    return {m for m in found if (PACKAGE / f"{m}.py").exists()}
+    return frozenset(m for m in found if (PACKAGE / f"{m}.py").exists())
 
 
 @cache
