@@ -232,8 +232,15 @@ def test_every_seed_is_recorded_in_the_ledger(bc_finished: Path) -> None:
 
 
 def test_a_second_invocation_on_the_same_experiment_stops_with_a_clear_message(bc_copy: Path) -> None:
-    """While one run holds the work folder, a second is refused by Snakemake's lock; the first finishes cleanly."""
+    """While one run holds the work folder, a second is refused; the first finishes cleanly.
+
+    The first run is frozen (SIGSTOP to its process group) once it holds the lock, so the second always
+    meets it: without the freeze the one forced job may finish first and the test would race. Snakemake
+    refuses the second either by its lock or, once the first's job has started, by naming that job's
+    output as incomplete; following that message's advice (--rerun-incomplete) then meets the lock.
+    """
     import os
+    import signal
     import time
 
     from conftest import REPO
@@ -242,16 +249,24 @@ def test_a_second_invocation_on_the_same_experiment_stops_with_a_clear_message(b
            "--forcerun", "audit", "--configfile", str(bc_copy / "config.yaml")]
     env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
     first = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
-                             stdin=subprocess.DEVNULL)
+                             stdin=subprocess.DEVNULL, start_new_session=True)
     locks = bc_copy / ".snakemake" / "locks"
     deadline = time.monotonic() + 120
-    while not (locks.exists() and any(locks.iterdir())):  # the first run has taken the lock
-        assert first.poll() is None and time.monotonic() < deadline, "the first run never took the lock"
-        time.sleep(0.05)
-    second = run_workflow(bc_copy)
+    try:
+        while not (locks.exists() and any(locks.iterdir())):  # the first run has taken the lock
+            assert first.poll() is None and time.monotonic() < deadline, "the first run never took the lock"
+            time.sleep(0.02)
+        os.killpg(first.pid, signal.SIGSTOP)
+        second = run_workflow(bc_copy)
+        advised = run_workflow(bc_copy, "--rerun-incomplete")
+    finally:
+        os.killpg(first.pid, signal.SIGCONT)
     _, err = first.communicate(timeout=300)
     assert second.returncode != 0
-    assert "Directory cannot be locked" in second.stderr, second.stderr[-2000:]
+    assert ("Directory cannot be locked" in second.stderr
+            or "IncompleteFilesException" in second.stderr), second.stderr[-2000:]
+    assert advised.returncode != 0
+    assert "Directory cannot be locked" in advised.stderr, advised.stderr[-2000:]
     assert first.returncode == 0, err[-2000:]
     ledger = (bc_copy / "results" / "bc" / "ledger.jsonl").read_text().splitlines()
     assert sum('"event":"open_test"' in line for line in ledger) == 1
