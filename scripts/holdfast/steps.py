@@ -1,7 +1,7 @@
 """Adapters from a Snakemake job's named fields to the package functions.
 
-Every rule's body is ``run_step(...)`` (workflow/rules/common.smk), which calls :func:`run`
-with the job's input, output, params, wildcards, threads, log and rule name. The adapter
+Every rule runs one generated script (``plan.job_script``) that calls :func:`run` with
+Snakemake's job object (input, output, params, wildcards, threads, log, rule, config). The adapter
 sends output to the rule's log before any heavy import, reads named fields and calls
 exactly one package function. A holdfast error becomes one line in the log and on
 stderr, and the job's exit code.
@@ -181,8 +181,8 @@ def run(smk: Any) -> None:
     except HoldfastError as exc:
         print(exc.format_message(), flush=True)
         os.write(stderr, (exc.format_message() + "\n").encode())
-        # An ordinary exception, not SystemExit: Snakemake runs the body in a worker thread, and a
-        # SystemExit there kills the thread and leaves the run waiting for ever.
+        # An ordinary exception, not SystemExit, so that run() is safe to call in any thread (a SystemExit
+        # in a Snakemake worker thread leaves the run waiting for ever); the job script exits 1 on it.
         raise StepError(exc.format_message()) from None
 
 

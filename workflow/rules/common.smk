@@ -5,13 +5,15 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(workflow.basedir) / "scripts"))
 
-from holdfast.plan import code_hash, prepare_or_exit  # noqa: E402
+from holdfast.plan import code_hash, job_script, prepare_or_exit  # noqa: E402
 
 if not workflow.overwrite_configfiles:
     # The demo experiment; --configfile replaces it entirely (no merging of two experiments).
     workflow.configfile("config/config.yaml")
 
 PLAN = prepare_or_exit(config, main=workflow.is_main_process)
+# Every rule's body: one generated script that hands the job to holdfast.steps.run (see plan.job_script).
+JOB_SCRIPT = job_script()
 LEDGER = PLAN.path("ledger.jsonl")
 SPEC = json.dumps(PLAN.spec, sort_keys=True)  # column roles, task and test partition
 METRICS = json.dumps(PLAN.config["metrics"])
@@ -23,20 +25,6 @@ wildcard_constraints:
     repeat=r"\d+",
     fold=r"\d+",
     outer=r"\d+",
-
-
-def run_step(input, output, params, wildcards, threads, log, rule):
-    """Every rule's body: hand the job's named fields to one holdfast function (holdfast.steps).
-
-    A run block rather than a script keeps Snakemake's code trigger on this line's text, which
-    never changes; code changes are tracked by holdfast's per-stage code hash param instead.
-    """
-    from types import SimpleNamespace
-
-    from holdfast.steps import run
-
-    run(SimpleNamespace(input=input, output=output, params=params, wildcards=wildcards, threads=threads,
-                        log=log, rule=rule, config=config))
 
 
 def family_json(wildcards):

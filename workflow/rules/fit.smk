@@ -20,5 +20,5 @@ rule fit_family:
     resources:
         mem_mb=family_resource("mem_mb"),
         runtime=family_resource("runtime"),
-    run:
-        run_step(input, output, params, wildcards, threads, log, rule)
+    script:
+        JOB_SCRIPT

@@ -20,5 +20,5 @@ rule assign_folds:
     resources:
         mem_mb=2000,
         runtime=30,
-    run:
-        run_step(input, output, params, wildcards, threads, log, rule)
+    script:
+        JOB_SCRIPT

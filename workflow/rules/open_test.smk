@@ -22,5 +22,5 @@ rule open_test:
     resources:
         mem_mb=4000,
         runtime=30,
-    run:
-        run_step(input, output, params, wildcards, threads, log, rule)
+    script:
+        JOB_SCRIPT

@@ -17,5 +17,5 @@ rule refit_winner:
     resources:
         mem_mb=4000,
         runtime=60,
-    run:
-        run_step(input, output, params, wildcards, threads, log, rule)
+    script:
+        JOB_SCRIPT
