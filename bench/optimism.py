@@ -28,8 +28,10 @@ Each is run at every rho in --rhos (default 0 and 0.8); rho = 0 is always part o
 run so the hard case stays visible.
 
 Targets (issue 3): BBC mean bias within ±0.01 for every M, and both corrections closer to the
-truth than the raw estimate. The script prints whether each is met, once judging T&T at k = 10
-and once at k = 5; it does not tune anything.
+truth than the raw estimate. They are judged where the issue states them: the equal-error
+scenario, whose raw estimate is optimistic by construction, with T&T from holdfast's default
+5 folds. The same checks are then printed beyond that scope (T&T from 10 folds; the
+better-candidate scenarios), every miss listed, so nothing is hidden; nothing is tuned to pass.
 
 Reading the table (our diagnosis, checked against the printed shares): T&T takes each fold's
 maximum over candidates, and a fold's scores are noisier than the CV means (n/k rows instead of
@@ -69,7 +71,8 @@ from holdfast.stats import accuracy_scorer, bbc_cv, tibshirani_bias
 from scipy.stats import norm
 
 BASE_ERROR = 0.30
-FOLD_COUNTS = (10, 5)  # the first is the headline T&T column
+DEFAULT_K = 5  # holdfast's default folds.k (workflow/schemas/config.schema.yaml); the headline T&T column
+FOLD_COUNTS = (DEFAULT_K, 10)  # 10: the fold count of the T&T paper's examples, shown beside it
 
 
 def scenario_errors(scenario: str, m: int) -> np.ndarray:
@@ -182,6 +185,26 @@ def uniform_sanity(seed: int, pairs: int = 1_000_000) -> None:
           f"E[min] = {u.mean():.4f} (theory 1/3 = 0.3333), P(min < 0.5) = {(u < 0.5).mean():.4f} (theory 0.75)")
 
 
+def print_targets(misses: dict[str, list[str]], scenarios: list[str], rhos: list[float], ms: list[int]) -> None:
+    """The issue-3 target where it is defined, then the same checks beyond it, each with its misses."""
+    rows_per_scenario = len(rhos) * len(ms)
+    print("\nTargets: BBC mean bias within ±0.01, and T&T and BBC each closer to the truth than raw.")
+    groups = [(f"Issue 3 target: equal true errors (the raw estimate is optimistic by construction), "
+               f"T&T from {DEFAULT_K} folds (holdfast's default)", f"tt{DEFAULT_K}", ["equal"])]
+    for k in FOLD_COUNTS[1:]:
+        groups.append((f"Beyond the target: equal true errors, T&T from {k} folds", f"tt{k}", ["equal"]))
+    if len(scenarios) > 1:
+        groups.append((f"Beyond the target: one better candidate, T&T from {DEFAULT_K} folds "
+                       "(raw has little optimism when CV finds the better one)", f"tt{DEFAULT_K}", scenarios[1:]))
+    for title, key, wanted in groups:
+        found = [miss for miss in misses[key] if miss.split(",")[0] in wanted]
+        total = rows_per_scenario * len(wanted)
+        verdict = f"met in all {total} rows" if not found else f"missed in {len(found)} of {total} rows:"
+        print(f"- {title}: {verdict}")
+        for miss in found:
+            print(f"    {miss}")
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--reps", type=int, default=400, help="replications per (scenario, M)")
@@ -221,12 +244,7 @@ def main(argv: list[str] | None = None) -> int:
                                           args.draws).items():
                 misses[key] += found
     uniform_sanity(args.seed)
-    for k in FOLD_COUNTS:
-        found = misses[f"tt{k}"]
-        print(f"\nTargets with T&T from {k}-fold CV (BBC mean bias within ±0.01; T&T and BBC each closer to "
-              "the truth than raw):", "all met" if not found else f"missed in {len(found)} row(s):")
-        for miss in found:
-            print(f"  {miss}")
+    print_targets(misses, scenarios, rhos, ms)
     print(f"(total {time.perf_counter() - start:.0f} s)", file=sys.stderr)
     return 0
 
