@@ -106,6 +106,8 @@ def bc_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
     write_config(workdir, small_classification_config())
     result = run_workflow(workdir)
     assert result.returncode == 0, result.stderr[-3000:]
+    # Kept beside the work directory, not in it, so copies and digests of the experiment don't see it.
+    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)
     return workdir
 
 

@@ -76,4 +76,34 @@ def test_finished_run_reports_uncertainty_comparison_and_optimism(bc_finished: P
     block = verdict["metrics"]["accuracy"]
     assert block["cv_corrected_bbc"] == optimism["bbc"]["corrected"]
     assert isinstance(block["cv_corrected_bbc_inside_interval"], bool)
+    low, high = block["interval"]
+    corrected = [block["cv_corrected_bbc"], block["cv_corrected_tibshirani"]]
+    if all(low <= v <= high for v in corrected):
+        assert block["agreement"] == "inside"
+    elif all(v < low for v in corrected):
+        assert block["agreement"] == "test better than cv"
+    elif all(v > high for v in corrected):
+        assert block["agreement"] == "test worse than cv"
+    else:
+        assert block["agreement"] == "borderline"
+    assert verdict["metrics"]["roc_auc"]["agreement"] in ("inside", "test better than cv", "test worse than cv",
+                                                          "borderline")
     assert "cv_corrected_note" in verdict["metrics"]["roc_auc"]
+
+
+@pytest.mark.slow
+def test_a_finished_run_ends_with_the_headline_numbers(bc_finished: Path) -> None:
+    from holdfast.opening import headline
+
+    exp = bc_finished / "results" / "bc"
+    verdict = json.loads((exp / "final/verdict.json").read_text())
+    block = verdict["metrics"]["accuracy"]
+    line = headline(exp)
+    low, high = block["interval"]
+    for part in (verdict["winner"]["candidate"], f"CV {block['cv_mean']:.4f}", f"BBC {block['cv_corrected_bbc']:.4f}",
+                 f"T&T {block['cv_corrected_tibshirani']:.4f}", f"test {block['test']:.4f}",
+                 f"[{low:.4f}, {high:.4f}]", f"agreement: {block['agreement']}"):
+        assert part in line
+    stdout = (bc_finished.parent / f"{bc_finished.name}.stdout").read_text()
+    assert f"holdfast: {line}" in stdout.splitlines()
+    assert headline(bc_finished / "results" / "no-such-experiment") == ""

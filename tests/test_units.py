@@ -254,3 +254,24 @@ def test_the_job_script_is_dated_1970_and_restored_when_edited(tmp_path: Path) -
     path.write_text("print('edited')\n")
     assert Path(job_script(str(tmp_path / "holdfast"))) == path
     assert path.read_text() == text and path.stat().st_mtime == 0
+
+
+@pytest.mark.parametrize(("values", "expected"), [
+    ({"cv_corrected_bbc": 0.85, "cv_corrected_tibshirani": 0.86}, "inside"),
+    ({"cv_corrected_bbc": 0.70, "cv_corrected_tibshirani": 0.71}, "test better than cv"),
+    ({"cv_corrected_bbc": 0.95, "cv_corrected_tibshirani": 0.96}, "test worse than cv"),
+    ({"cv_corrected_bbc": 0.79, "cv_corrected_tibshirani": 0.81}, "borderline"),
+    ({"cv_mean": 0.95}, "test worse than cv"),  # no corrected estimate: the raw mean is compared
+    ({"cv_mean": 0.85, "cv_corrected_bbc": None}, "inside"),
+    ({"cv_mean": float("nan")}, "not judged"),
+])
+def test_agreement_of_cv_estimates_with_the_test_interval(values: dict[str, float | None], expected: str) -> None:
+    from holdfast.opening import agreement
+
+    # scores are greater-is-better: below the interval means the test found the model better than CV did
+    verdict, note = agreement({"interval": [0.80, 0.90], "cv_mean": 0.99, **values})
+    assert verdict == expected
+    assert note
+    named = [n for n in ("cv_corrected_bbc", "cv_corrected_tibshirani") if values.get(n) is not None]
+    if expected != "not judged":
+        assert all(n in note for n in named or ["cv_mean"])

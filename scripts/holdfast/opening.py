@@ -18,7 +18,7 @@ from . import ledger
 from ._io import read_json, sha256_file, write_json
 from .dataset import split_xy
 from .errors import ModelFileError, SealedAccessError
-from .layout import ARCHIVE, CHOICE, LEDGER, MANIFEST, MODEL, RANKING, TEST
+from .layout import ARCHIVE, CHOICE, LEDGER, MANIFEST, MODEL, RANKING, TEST, VERDICT
 from .refit import load_model
 from .scoring import bootstrap_interval, clopper_pearson, model_outputs, replay, score_outputs
 from .tally import CAUTION
@@ -81,7 +81,39 @@ def _metric_block(metric: str, value: float, model: Any, y: Any, level: float, d
             block[f"cv_corrected_{name}_inside_interval"] = _inside(corrected, low, high)
     else:
         block["cv_corrected_note"] = "no optimism correction: the winner was not selected on this metric"
+    block["agreement"], block["agreement_note"] = agreement(block)
     return block
+
+
+def agreement(block: dict[str, Any]) -> tuple[str, str]:
+    """Where the CV estimates sit against the test interval, and what a gap can mean, in plain words.
+
+    The corrected estimates are compared when the metric has them, else the raw CV mean. Scores are
+    greater-is-better, so a CV estimate below the interval means the test set found the refit
+    winner better than CV predicted, and above it worse.
+    """
+    names = [n for n in ("cv_corrected_bbc", "cv_corrected_tibshirani") if block.get(n) is not None] or ["cv_mean"]
+    low, high = block["interval"]
+    values = [block.get(n) for n in names]
+    if not all(v is not None and np.isfinite(v) for v in [*values, low, high]):
+        return "not judged", "no finite CV estimate or test interval to compare"
+    sides = {"below" if v < low else "above" if v > high else "inside" for v in values}
+    which = " and ".join(names)
+    if sides == {"inside"}:
+        return "inside", f"{which} inside the test interval: CV and the test set agree within chance"
+    if sides == {"below"}:
+        return "test better than cv", (
+            f"{which} below the test interval: the test set found the refit winner better than CV predicted. Part "
+            "of such a gap is expected, because every CV fit trained on fewer development rows than the refit "
+            "winner, which trained on all of them; a large gap can also mean the test rows differ from the "
+            "development rows")
+    if sides == {"above"}:
+        return "test worse than cv", (
+            f"{which} above the test interval: the test set found the refit winner worse than CV predicted, more "
+            "than chance usually allows. Look for a shift between development and test rows (time, site, "
+            "population), for leakage between folds (leakage.json), or for choices made outside this workflow "
+            "that CV could not see")
+    return "borderline", f"{which} fall on different sides of the test interval's edge: read as borderline agreement"
 
 
 def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list[str], task: str,
@@ -141,7 +173,8 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
             "metrics_note": ("scikit-learn scorer values: greater is better (neg_* metrics are negated errors). "
                              "test: the refit winner on the sealed test rows, with its interval. cv_mean: the "
                              "winner's raw cross-validated mean (optimistic: it was picked as the best). "
-                             "cv_corrected_*: that mean with the selection optimism removed (primary metric)."),
+                             "cv_corrected_*: that mean with the selection optimism removed (primary metric). "
+                             "agreement: where those CV estimates sit against the test interval, in plain words."),
             "caution": CAUTION,
         }
         if number > 1:
@@ -158,3 +191,30 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
         }, rule=rule)
         write_json(target, verdict)
         return verdict
+
+
+def headline(exp_dir: str | Path) -> str:
+    """One line for the end of a run: the winner, its CV estimates and its test score on the primary metric.
+
+    Empty when the experiment has no verdict yet (a run stopped before the opening).
+    """
+    exp = Path(exp_dir)
+    if not (exp / VERDICT).exists() or not (exp / CHOICE).exists():
+        return ""
+    verdict, choice = read_json(exp / VERDICT), read_json(exp / CHOICE)
+    metric = choice["metric"]
+    block = verdict["metrics"].get(metric)
+    if block is None:
+        return ""
+    corrected = [f"{label} {block[key]:.4f}" for key, label in (("cv_corrected_bbc", "BBC"),
+                                                                 ("cv_corrected_tibshirani", "T&T"))
+                 if block.get(key) is not None]
+    low, high = block["interval"]
+    line = (f"winner {verdict['winner']['family']} {verdict['winner']['candidate']}, {metric}: "
+            f"CV {block['cv_mean']:.4f}"
+            + (f" (corrected for selection: {', '.join(corrected)})" if corrected else "")
+            + f"; test {block['test']:.4f}, {block['level']:.0%} interval [{low:.4f}, {high:.4f}]; "
+            f"agreement: {block.get('agreement', 'not judged')}")
+    if verdict.get("compromised"):
+        line += f"; {verdict['test_set_opened']}: the test estimate is compromised"
+    return line

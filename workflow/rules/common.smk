@@ -74,7 +74,13 @@ def all_targets():
 
 
 onsuccess:
-    # One closing line: where the audit stands (the audit rule writes it; the run never hides a failure).
+    # Closing lines: the headline numbers, then where the audit stands (the audit rule writes it; the
+    # run never hides a failure).
+    from holdfast.opening import headline
+
+    summary = headline(PLAN.exp)
+    if summary:
+        print(f"holdfast: {summary}")
     audit_path = Path(PLAN.path("audit.json"))
     if audit_path.exists():
         result = json.loads(audit_path.read_text())
