@@ -39,6 +39,7 @@ def nested_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
     write_config(workdir, config)
     result = run_workflow(workdir)
     assert result.returncode == 0, result.stderr[-3000:]
+    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)  # beside the experiment, not in it
     return workdir / "results" / "nested-demo"
 
 
@@ -76,3 +77,14 @@ def test_nested_work_never_opens_the_test_set_and_the_audit_passes(nested_run: P
     assert sum(e["event"] == "open_test" for e in entries) == 1
     assert {e["details"]["scope"] for e in entries if e["event"] == "score_outer"} == {"o0", "o1"}
     assert audit(str(nested_run))["passed"]
+
+
+def test_the_run_ends_with_the_nested_estimate(nested_run: Path) -> None:
+    from holdfast.nested import headline
+
+    summary = json.loads((nested_run / "nested" / "summary.json").read_text())
+    line = headline(nested_run)
+    assert f"roc_auc: {summary['metrics']['roc_auc']['mean']:.4f}" in line  # the primary metric, first in config
+    assert all(f"{candidate} ×{count}" in line for candidate, count in summary["winner_counts"].items())
+    workdir = nested_run.parents[1]
+    assert f"holdfast: {line}" in (workdir.parent / f"{workdir.name}.stdout").read_text().splitlines()

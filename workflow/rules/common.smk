@@ -76,11 +76,11 @@ def all_targets():
 onsuccess:
     # Closing lines: the headline numbers, then where the audit stands (the audit rule writes it; the
     # run never hides a failure).
-    from holdfast.opening import headline
+    from holdfast import nested, opening
 
-    summary = headline(PLAN.exp)
-    if summary:
-        print(f"holdfast: {summary}")
+    for summary in (opening.headline(PLAN.exp), nested.headline(PLAN.exp)):
+        if summary:
+            print(f"holdfast: {summary}")
     audit_path = Path(PLAN.path("audit.json"))
     if audit_path.exists():
         result = json.loads(audit_path.read_text())
