@@ -80,7 +80,7 @@ def test_nested_work_never_opens_the_test_set_and_the_audit_passes(nested_run: P
 
 
 def test_the_run_ends_with_the_nested_estimate(nested_run: Path) -> None:
-    from holdfast.nested import headline
+    from holdfast.headline import nested_line as headline
 
     summary = json.loads((nested_run / "nested" / "summary.json").read_text())
     line = headline(nested_run)

@@ -93,7 +93,7 @@ def test_finished_run_reports_uncertainty_comparison_and_optimism(bc_finished: P
 
 @pytest.mark.slow
 def test_a_finished_run_ends_with_the_headline_numbers(bc_finished: Path) -> None:
-    from holdfast.opening import headline
+    from holdfast.headline import verdict_line as headline
 
     exp = bc_finished / "results" / "bc"
     verdict = json.loads((exp / "final/verdict.json").read_text())

@@ -21,6 +21,7 @@ VERDICT = "final/verdict.json"
 ARCHIVE = "final/openings"
 LEDGER = "ledger.jsonl"
 AUDIT = "audit.json"
+NESTED_SUMMARY = "nested/summary.json"
 
 
 def fit_file(kind: str, family: str, repeat: int, fold: int) -> str:

@@ -9,7 +9,6 @@ the outer folds. The sealed test set is never read.
 from __future__ import annotations
 
 import math
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -90,16 +89,3 @@ def summarise(score_paths: list[str], metrics: list[str], summary_path: str, led
                                                   "summary_sha256": sha256_file(summary_path)}, rule=rule)
     return summary
 
-
-def headline(exp_dir: str | Path) -> str:
-    """One line for the end of a run: the nested estimate of the selection procedure, and who won where."""
-    path = Path(exp_dir) / "nested" / "summary.json"
-    if not path.exists():
-        return ""
-    summary = read_json(path)
-    choice = Path(exp_dir) / "choice.json"
-    metric = read_json(choice)["metric"] if choice.exists() else next(iter(summary["metrics"]))
-    numbers = summary["metrics"][metric]
-    winners = ", ".join(f"{c} ×{n}" for c, n in summary["winner_counts"].items())
-    return (f"nested CV of the whole selection ({summary['outer_folds']} outer folds), {metric}: "
-            f"{numbers['mean']:.4f} (naive se {numbers['se']:.4f}); outer-fold winners: {winners}")

@@ -18,7 +18,7 @@ from . import ledger
 from ._io import read_json, sha256_file, write_json
 from .dataset import split_xy
 from .errors import ModelFileError, SealedAccessError
-from .layout import ARCHIVE, CHOICE, LEDGER, MANIFEST, MODEL, RANKING, TEST, VERDICT
+from .layout import ARCHIVE, CHOICE, LEDGER, MANIFEST, MODEL, RANKING, TEST
 from .refit import load_model
 from .scoring import bootstrap_interval, clopper_pearson, model_outputs, replay, score_outputs
 from .tally import CAUTION
@@ -192,29 +192,3 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
         write_json(target, verdict)
         return verdict
 
-
-def headline(exp_dir: str | Path) -> str:
-    """One line for the end of a run: the winner, its CV estimates and its test score on the primary metric.
-
-    Empty when the experiment has no verdict yet (a run stopped before the opening).
-    """
-    exp = Path(exp_dir)
-    if not (exp / VERDICT).exists() or not (exp / CHOICE).exists():
-        return ""
-    verdict, choice = read_json(exp / VERDICT), read_json(exp / CHOICE)
-    metric = choice["metric"]
-    block = verdict["metrics"].get(metric)
-    if block is None:
-        return ""
-    corrected = [f"{label} {block[key]:.4f}" for key, label in (("cv_corrected_bbc", "BBC"),
-                                                                 ("cv_corrected_tibshirani", "T&T"))
-                 if block.get(key) is not None]
-    low, high = block["interval"]
-    line = (f"winner {verdict['winner']['family']} {verdict['winner']['candidate']}, {metric}: "
-            f"CV {block['cv_mean']:.4f}"
-            + (f" (corrected for selection: {', '.join(corrected)})" if corrected else "")
-            + f"; test {block['test']:.4f}, {block['level']:.0%} interval [{low:.4f}, {high:.4f}]; "
-            f"agreement: {block.get('agreement', 'not judged')}")
-    if verdict.get("compromised"):
-        line += f"; {verdict['test_set_opened']}: the test estimate is compromised"
-    return line

@@ -76,11 +76,10 @@ def all_targets():
 onsuccess:
     # Closing lines: the headline numbers, then where the audit stands (the audit rule writes it; the
     # run never hides a failure).
-    from holdfast import nested, opening
+    from holdfast.headline import lines
 
-    for summary in (opening.headline(PLAN.exp), nested.headline(PLAN.exp)):
-        if summary:
-            print(f"holdfast: {summary}")
+    for line in lines(PLAN.exp):
+        print(f"holdfast: {line}")
     audit_path = Path(PLAN.path("audit.json"))
     if audit_path.exists():
         result = json.loads(audit_path.read_text())
