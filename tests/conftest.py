@@ -111,6 +111,19 @@ def bc_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return workdir
 
 
+@pytest.fixture(scope="session")
+def demo_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo experiment exactly as shipped (config/config.yaml on data_demo/shipments.csv), run once."""
+    workdir = tmp_path_factory.mktemp("demo")
+    (workdir / "data_demo").mkdir()
+    shutil.copy(REPO / "data_demo" / "shipments.csv", workdir / "data_demo" / "shipments.csv")
+    shutil.copy(REPO / "config" / "config.yaml", workdir / "config.yaml")
+    result = run_workflow(workdir)
+    assert result.returncode == 0, result.stderr[-3000:]
+    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)  # beside the work directory, not in it
+    return workdir
+
+
 @pytest.fixture
 def bc_copy(bc_finished: Path, tmp_path: Path) -> Path:
     """A private copy of the finished experiment, times and Snakemake metadata included."""

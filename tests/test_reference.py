@@ -3,30 +3,16 @@
 from __future__ import annotations
 
 import json
-import shutil
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import REPO, run_workflow
 from holdfast import config as cfg
 from holdfast.candidates import build_pipeline, expand
 from holdfast.dataset import split_xy
 from holdfast.scoring import clopper_pearson
-
-
-@pytest.fixture(scope="session")
-def demo_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The demo experiment exactly as shipped (config/config.yaml on data_demo/shipments.csv), run once."""
-    workdir = tmp_path_factory.mktemp("demo")
-    (workdir / "data_demo").mkdir()
-    shutil.copy(REPO / "data_demo" / "shipments.csv", workdir / "data_demo" / "shipments.csv")
-    shutil.copy(REPO / "config" / "config.yaml", workdir / "config.yaml")
-    result = run_workflow(workdir)
-    assert result.returncode == 0, result.stderr[-3000:]
-    return workdir
 
 
 def assert_ranking_matches_cross_val_score(workdir: Path, config_name: str = "config.yaml") -> int:
