@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import hashlib
 import json
+import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -275,3 +277,36 @@ def test_agreement_of_cv_estimates_with_the_test_interval(values: dict[str, floa
     named = [n for n in ("cv_corrected_bbc", "cv_corrected_tibshirani") if values.get(n) is not None]
     if expected != "not judged":
         assert all(n in note for n in named or ["cv_mean"])
+
+
+def _seal_in_child(data: str, exp: str, queue: Any) -> None:
+    from holdfast.errors import SealedAccessError
+    from holdfast.seal import seal
+
+    spec = {"target": "target", "id": "patient", "group": None, "time": None, "drop": [], "task": "classification",
+            "fraction": 0.25, "scheme": "hashed", "salt": "s"}
+    try:
+        seal(data, spec, exp, "race")
+        queue.put("sealed")
+    except SealedAccessError:
+        queue.put("refused")
+
+
+def test_two_concurrent_seals_give_exactly_one(tmp_path: Path) -> None:
+    import multiprocessing
+
+    data, exp = tmp_path / "data.csv", tmp_path / "exp"
+    breast_cancer_frame().to_csv(data, index=False)
+    ctx = multiprocessing.get_context("fork")
+    queue = ctx.Queue()
+    procs = [ctx.Process(target=_seal_in_child, args=(str(data), str(exp), queue)) for _ in range(2)]
+    # Hold the seal's lock while both start, so both reach it before either can finish: without the
+    # lock they would both pass the "already sealed?" check and append two seal events.
+    with ledger.locked(exp / "seal"):
+        for proc in procs:
+            proc.start()
+        time.sleep(2.0)
+    for proc in procs:
+        proc.join(timeout=300)
+    assert sorted(queue.get(timeout=5) for _ in procs) == ["refused", "sealed"]
+    assert len(ledger.events(ledger.read(exp / "ledger.jsonl"), "seal")) == 1

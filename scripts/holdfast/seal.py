@@ -190,7 +190,9 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
 
     Refuses to run when the experiment already has a manifest: the seal happens once per
     experiment. A seal killed before its manifest was written may finish on a rerun, but only
-    when it seals byte-identical rows (see :func:`_interrupted_seal`).
+    when it seals byte-identical rows (see :func:`_interrupted_seal`). The writing holds a lock
+    and looks for the manifest again under it, so two seals started at once (say, after a misused
+    ``--unlock``) give one seal and one refusal, never two seal events.
     """
     out = Path(exp_dir)
     if (out / MANIFEST).exists():
@@ -214,40 +216,45 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
     time_check = time_order_at_seal(dev, test, spec, guards.get("time_order", "note"), str(data_path))
 
-    fingerprint = data_fingerprint(data_path)
-    sealed_spec = {**spec, "task": task}
-    earlier = _interrupted_seal(out, test, fingerprint["sha256"], sealed_spec, experiment)
-    if not (out / TEST).exists():
-        write_parquet(out / TEST, test, mode=0o444)
-    write_parquet(out / DEV, dev)
-    manifest: dict[str, Any] = {
-        "experiment": experiment,
-        "data": {"path": str(data_path), "rows": len(frame), "columns": [str(c) for c in frame.columns],
-                 **fingerprint},
-        "spec": sealed_spec,
-        "counts": {"dev": n_dev, "test": n_test, "left_out_in_gap": int(dropped.sum()),
-                   **({"dev_groups": int(dev[spec["group"]].nunique())} if spec.get("group") else {})},
-        "keys": {"dev_sha256": keys_digest(dev[KEY]), "test_sha256": keys_digest(test[KEY]),
-                 "from": "id column" if spec.get("id") else "row content"},
-        "files": {"test.parquet": sha256_file(out / TEST), "dev.parquet": sha256_file(out / DEV)},
-        "holdfast": __version__,
-        "leakage": {"duplicate_feature_rows_dev_test": duplicates, "single_feature": alarms,
-                    "single_feature_threshold": float(guards["single_feature_threshold"]),
-                    **({"time_order": time_check} if time_check else {})},
-    }
-    if task == "classification":
-        manifest["counts"]["classes"] = {
-            "dev": {str(k): int(v) for k, v in dev[spec["target"]].value_counts().sort_index().items()},
-            "test": {str(k): int(v) for k, v in test[spec["target"]].value_counts().sort_index().items()},
+    with ledger.locked(out / "seal"):  # the checks above wrote nothing; from here on, one seal at a time
+        if (out / MANIFEST).exists():
+            raise SealedAccessError(f"experiment '{experiment}' was sealed by another run while this one "
+                                    "prepared; the seal never re-runs: name a new experiment to draw a new "
+                                    "test set")
+        fingerprint = data_fingerprint(data_path)
+        sealed_spec = {**spec, "task": task}
+        earlier = _interrupted_seal(out, test, fingerprint["sha256"], sealed_spec, experiment)
+        if not (out / TEST).exists():
+            write_parquet(out / TEST, test, mode=0o444)
+        write_parquet(out / DEV, dev)
+        manifest: dict[str, Any] = {
+            "experiment": experiment,
+            "data": {"path": str(data_path), "rows": len(frame), "columns": [str(c) for c in frame.columns],
+                     **fingerprint},
+            "spec": sealed_spec,
+            "counts": {"dev": n_dev, "test": n_test, "left_out_in_gap": int(dropped.sum()),
+                       **({"dev_groups": int(dev[spec["group"]].nunique())} if spec.get("group") else {})},
+            "keys": {"dev_sha256": keys_digest(dev[KEY]), "test_sha256": keys_digest(test[KEY]),
+                     "from": "id column" if spec.get("id") else "row content"},
+            "files": {"test.parquet": sha256_file(out / TEST), "dev.parquet": sha256_file(out / DEV)},
+            "holdfast": __version__,
+            "leakage": {"duplicate_feature_rows_dev_test": duplicates, "single_feature": alarms,
+                        "single_feature_threshold": float(guards["single_feature_threshold"]),
+                        **({"time_order": time_check} if time_check else {})},
         }
-    entry = earlier or ledger.append(out / LEDGER, "seal", {
-        "experiment": experiment, "data_sha256": fingerprint["sha256"], "spec": sealed_spec,
-        "counts": manifest["counts"], "keys": manifest["keys"], "files": manifest["files"],
-        "leakage": manifest["leakage"],
-    }, rule=rule)
-    if earlier and earlier["details"].get("files") != manifest["files"]:
-        raise SealedAccessError(f"experiment '{experiment}': the interrupted seal recorded other file hashes than "
-                                "this seal gives; name a new experiment to draw a new test set")
-    manifest["ledger_anchor"] = entry["hash"]
-    write_json(out / MANIFEST, manifest)
-    return manifest
+        if task == "classification":
+            manifest["counts"]["classes"] = {
+                "dev": {str(k): int(v) for k, v in dev[spec["target"]].value_counts().sort_index().items()},
+                "test": {str(k): int(v) for k, v in test[spec["target"]].value_counts().sort_index().items()},
+            }
+        entry = earlier or ledger.append(out / LEDGER, "seal", {
+            "experiment": experiment, "data_sha256": fingerprint["sha256"], "spec": sealed_spec,
+            "counts": manifest["counts"], "keys": manifest["keys"], "files": manifest["files"],
+            "leakage": manifest["leakage"],
+        }, rule=rule)
+        if earlier and earlier["details"].get("files") != manifest["files"]:
+            raise SealedAccessError(f"experiment '{experiment}': the interrupted seal recorded other file hashes than "
+                                    "this seal gives; name a new experiment to draw a new test set")
+        manifest["ledger_anchor"] = entry["hash"]
+        write_json(out / MANIFEST, manifest)
+        return manifest
