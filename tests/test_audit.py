@@ -372,6 +372,9 @@ def test_untouched_experiment_passes(bc_copy: Path) -> None:
     cli = audit_cli(exp)
     assert cli.returncode == 0, cli.stdout + cli.stderr
     assert cli.stdout.startswith("PASS: experiment 'bc'") and "test set opened 1 time(s)" in cli.stdout
+    from holdfast.headline import verdict_line
+
+    assert f"  {verdict_line(exp)}" in cli.stdout.splitlines()  # the numbers the passing record vouches for
 
 
 @pytest.mark.parametrize(("mutate", "expected", "absent"), CASES)
@@ -408,6 +411,7 @@ def test_cli_fails_and_prints_every_reason(bc_copy: Path, mutate: Mutation, expe
     for problem in result["problems"]:
         assert f"  - [{problem['code']}] {problem['message']}" in printed
     assert f"[{expected}]" in cli.stdout
+    assert not [line for line in cli.stdout.splitlines() if line.startswith("  winner ")]  # vouches for nothing
 
 
 def test_cli_refuses_a_folder_that_is_no_experiment(tmp_path: Path) -> None:

@@ -19,6 +19,11 @@ def _audit(args: argparse.Namespace) -> int:
         return 2
     result = audit(str(exp))
     print(report(result))
+    if result["passed"]:  # what the passing record vouches for; a failing one vouches for nothing
+        from .headline import lines
+
+        for line in lines(exp):
+            print(f"  {line}")
     return 0 if result["passed"] else 1
 
 
