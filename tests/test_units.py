@@ -310,3 +310,18 @@ def test_two_concurrent_seals_give_exactly_one(tmp_path: Path) -> None:
         proc.join(timeout=300)
     assert sorted(queue.get(timeout=5) for _ in procs) == ["refused", "sealed"]
     assert len(ledger.events(ledger.read(exp / "ledger.jsonl"), "seal")) == 1
+
+
+def test_plot_labels_show_only_the_parameters_that_vary_within_a_family() -> None:
+    from holdfast.tally import candidate_labels
+
+    candidates = {
+        "a1": {"family": "forest", "params": {"n_estimators": 100, "min_samples_leaf": 1}},
+        "a2": {"family": "forest", "params": {"n_estimators": 100, "min_samples_leaf": 5}},
+        "b1": {"family": "logistic", "params": {"C": 1.0, "max_iter": 1000}},
+        "c1": {"family": "tree", "params": {"max_depth": "None"}},
+        "c2": {"family": "tree", "params": {}},
+    }
+    labels = candidate_labels(candidates, ["a1", "a2", "b1", "c1", "c2"])
+    assert labels == {"a1": "forest · min_samples_leaf=1 · a1", "a2": "forest · min_samples_leaf=5 · a2",
+                      "b1": "logistic · b1", "c1": "tree · max_depth=None · c1", "c2": "tree · max_depth=default · c2"}

@@ -114,27 +114,66 @@ def _why(rule: str, winner: pd.Series, runner: pd.Series | None, primary: str, n
     return text
 
 
-def plot_ranking(ranking: pd.DataFrame, primary: str, path: str, top: int = 25) -> None:
-    """Mean ± one standard error of the primary metric for the best candidates."""
+def candidate_labels(candidates: dict[str, dict[str, Any]], ids: list[str]) -> dict[str, str]:
+    """Plot labels: family, the parameters that vary within the family, and the id."""
+    by_family: dict[str, list[str]] = {}
+    for cid in ids:
+        by_family.setdefault(candidates[cid]["family"], []).append(cid)
+    labels: dict[str, str] = {}
+    for family, members in by_family.items():
+        everyone = [c for c, spec in candidates.items() if spec["family"] == family]
+        keys = sorted({k for c in everyone for k in candidates[c].get("params", {})})
+        varying = [k for k in keys if len({repr(candidates[c].get("params", {}).get(k)) for c in everyone}) > 1]
+        for cid in members:
+            params = candidates[cid].get("params", {})
+            shown = ", ".join(f"{k}={params[k]!r}".replace("'", "") if k in params else f"{k}=default"
+                              for k in varying)
+            labels[cid] = f"{family} · {shown} · {cid}" if shown else f"{family} · {cid}"
+    return labels
+
+
+def plot_ranking(ranking: pd.DataFrame, primary: str, path: str, winner: str, rule: str,
+                 corrected: dict[str, float], labels: dict[str, str], top: int = 25) -> None:
+    """The best candidates' CV means with naive and corrected standard errors; the winner and its corrections marked."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    part = ranking[(ranking["metric"] == primary) & ranking["complete"]].sort_values("rank").head(top)
-    labels = [f"{f} · {c}" for f, c in zip(part["family"], part["candidate"], strict=True)]
-    height = max(2.5, 0.32 * len(part) + 1.2)
-    fig, ax = plt.subplots(figsize=(7.5, height))
+    complete = ranking[(ranking["metric"] == primary) & ranking["complete"]].sort_values("rank")
+    part = complete.head(top)
+    if winner not in set(part["candidate"]):  # the one-SE rule may pick a candidate outside the top rows
+        part = pd.concat([part.head(top - 1), complete[complete["candidate"] == winner]])
+    height = max(2.8, 0.34 * len(part) + 1.6)
+    fig, ax = plt.subplots(figsize=(8.5, height))
     ypos = np.arange(len(part))[::-1]
-    ax.errorbar(part["mean"], ypos, xerr=part["se"].fillna(0), fmt="o", color="#1f5f8b", ecolor="#8aa9c1", capsize=3)
-    ax.set_yticks(ypos, labels, fontsize=8)
-    ax.set_xlabel(f"mean validation {primary} (± 1 naive standard error over folds; greater is better)")
-    ax.set_title("Candidates by cross-validated score", fontsize=10)
+    means = part["mean"].to_numpy()
+    ax.errorbar(means, ypos, xerr=part["se_corrected"].fillna(0).to_numpy(), fmt="none", ecolor="#b9c9d6",
+                elinewidth=1, capsize=4, label="± 1 corrected standard error (Nadeau–Bengio)")
+    ax.errorbar(means, ypos, xerr=part["se"].fillna(0).to_numpy(), fmt="none", ecolor="#5b84a6", elinewidth=2.5,
+                capsize=0, label="± 1 naive standard error")
+    is_winner = (part["candidate"] == winner).to_numpy()
+    ax.plot(means[~is_winner], ypos[~is_winner], "o", color="#1f5f8b", markersize=5, linestyle="none")
+    ax.plot(means[is_winner], ypos[is_winner], "D", color="#b35900", markersize=7, linestyle="none",
+            label=f"winner ({rule.replace('_', ' ')})")
+    for (name, value), marker in zip(sorted(corrected.items()), ("x", "+"), strict=False):
+        ax.plot([value], ypos[is_winner], marker, color="#b35900", markersize=9, linestyle="none",
+                label=f"winner corrected for selection ({name})")
+    names = [labels.get(c, c) for c in part["candidate"]]
+    ax.set_yticks(ypos, names, fontsize=7.5)
+    for tick, flag in zip(ax.get_yticklabels(), is_winner, strict=True):
+        if flag:
+            tick.set_fontweight("bold")
+    ax.set_xlabel(f"mean validation {primary} over folds (greater is better)")
+    shown = f"best {len(part)} of {len(complete)}" if len(part) < len(complete) else f"all {len(part)}"
+    ax.set_title(f"Candidates by cross-validated score ({shown})", fontsize=10)
     ax.grid(axis="x", alpha=0.3)
     fig.tight_layout()
+    below = 0.62 / (ax.get_position().height * height)  # about 0.6 inch under the axes: clear of the x label
+    ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -below), ncol=2, frameon=False)
 
-    def _write(tmp: str) -> None:
-        fig.savefig(tmp, format="png", dpi=110, metadata={"Software": None})
+    def _write(tmp: str) -> None:  # tight: long labels and the legend below the axes stay inside the image
+        fig.savefig(tmp, format="png", dpi=110, metadata={"Software": None}, bbox_inches="tight")
 
     write_atomic(path, _write)
     plt.close(fig)
@@ -252,7 +291,11 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
         "caution": CAUTION,
     }
     write_parquet(ranking_path, ranking)
-    plot_ranking(ranking, primary, plot_path)
+    corrected = {name: optimistic[name]["corrected"] for name in ("bbc", "tibshirani")
+                 if optimistic.get(name) and optimistic[name].get("corrected") is not None}
+    shown_ids = sorted(ranking.loc[ranking["metric"] == primary, "candidate"])
+    plot_ranking(ranking, primary, plot_path, winner["candidate"], rule, corrected,
+                 candidate_labels(candidates, shown_ids))
     write_json(choice_path, choice)
     ledger.append(ledger_path, "tally", {
         "scope": scope, "winner": winner["candidate"], "rule": rule, "metric": primary, "candidates": n_candidates,
