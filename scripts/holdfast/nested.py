@@ -88,4 +88,3 @@ def summarise(score_paths: list[str], metrics: list[str], summary_path: str, led
     ledger.append(ledger_path, "nested_summary", {"scope": "nested", "outer_folds": len(scores),
                                                   "summary_sha256": sha256_file(summary_path)}, rule=rule)
     return summary
-

@@ -191,4 +191,3 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
         }, rule=rule)
         write_json(target, verdict)
         return verdict
-

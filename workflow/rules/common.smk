@@ -74,15 +74,15 @@ def all_targets():
 
 
 onsuccess:
-    # Closing lines: the headline numbers, then where the audit stands (the audit rule writes it; the
-    # run never hides a failure).
-    from holdfast.headline import lines
-
-    for line in lines(PLAN.exp):
-        print(f"holdfast: {line}")
+    # Closing lines: where the audit stands (the audit rule writes it; the run never hides a failure)
+    # and, only when it passed, the headline numbers that record vouches for (as `holdfast audit`).
     audit_path = Path(PLAN.path("audit.json"))
     if audit_path.exists():
+        from holdfast.headline import lines
+
         result = json.loads(audit_path.read_text())
         state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
+        for line in lines(PLAN.exp) if result["passed"] else []:
+            print(f"holdfast: {line}")
         print(f"holdfast: experiment '{PLAN.config['experiment']}': audit {state} "
               f"(test set opened {result['test_set_opened']} time(s)); details: holdfast audit {PLAN.exp}")
