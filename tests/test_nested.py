@@ -88,3 +88,23 @@ def test_the_run_ends_with_the_nested_estimate(nested_run: Path) -> None:
     assert all(f"{candidate} ×{count}" in line for candidate, count in summary["winner_counts"].items())
     workdir = nested_run.parents[1]
     assert f"holdfast: {line}" in (workdir.parent / f"{workdir.name}.stdout").read_text().splitlines()
+
+
+def test_summary_carries_the_corrected_standard_error(nested_run: Path) -> None:
+    import math
+
+    summary = json.loads((nested_run / "nested" / "summary.json").read_text())
+    outer = [json.loads(p.read_text()) for p in sorted((nested_run / "nested").glob("o*/score.json"))]
+    assert len(outer) == summary["outer_folds"] == 2
+    j = len(outer)
+    n_train = sum(o["training_rows"] for o in outer) / j
+    n_val = sum(o["rows"] for o in outer) / j
+    for numbers in summary["metrics"].values():
+        # Nadeau & Bengio, "Inference for the Generalization Error", Machine Learning 52 (2003): the variance
+        # of a mean over J resamples is (1/J + n_val/n_train) * sd^2, written out here without holdfast.stats.
+        values = numbers["by_outer_fold"]
+        mean = sum(values) / j
+        sd2 = sum((v - mean) ** 2 for v in values) / (j - 1)
+        assert numbers["se"] == pytest.approx(math.sqrt(sd2 / j), rel=1e-12)
+        assert numbers["se_corrected"] == pytest.approx(math.sqrt((1 / j + n_val / n_train) * sd2), rel=1e-12)
+        assert numbers["se_corrected"] > numbers["se"]

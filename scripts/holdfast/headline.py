@@ -47,10 +47,11 @@ def nested_line(exp_dir: str | Path) -> str:
     summary = read_json(path)
     choice = Path(exp_dir) / CHOICE
     metric = read_json(choice)["metric"] if choice.exists() else next(iter(summary["metrics"]))
-    numbers = summary["metrics"][metric]
+    numbers = {"se_corrected": float("nan"), **summary["metrics"][metric]}  # older summaries lack it
     winners = ", ".join(f"{c} ×{n}" for c, n in summary["winner_counts"].items())
     return (f"nested CV of the whole selection ({summary['outer_folds']} outer folds), {metric}: "
-            f"{numbers['mean']:.4f} (naive se {numbers['se']:.4f}); outer-fold winners: {winners}")
+            f"{numbers['mean']:.4f} (se {numbers['se']:.4f}, corrected se {numbers['se_corrected']:.4f}); "
+            f"outer-fold winners: {winners}")
 
 
 def lines(exp_dir: str | Path) -> list[str]:

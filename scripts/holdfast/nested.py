@@ -20,6 +20,7 @@ from .dataset import KEY, split_xy
 from .errors import DataError
 from .refit import load_model
 from .scoring import model_outputs, replay, score_outputs
+from .stats import corrected_variance
 
 
 def outer_rows(dev: pd.DataFrame, outer: pd.DataFrame, fold: int) -> np.ndarray:
@@ -64,12 +65,17 @@ def summarise(score_paths: list[str], metrics: list[str], summary_path: str, led
     """Mean, sd and standard error over outer folds per metric, and which candidate won where."""
     scores = [read_json(p) for p in sorted(score_paths)]
     per_metric = {}
+    n_train = [s["training_rows"] for s in scores]
+    n_val = [s["rows"] for s in scores]
     for metric in metrics:
         values = np.array([s["scores"][metric] for s in scores], dtype=float)
         sd = float(values.std(ddof=1)) if len(values) > 1 else float("nan")
+        # The whole selection is one learning procedure scored by k-fold CV over the outer folds, so the
+        # Nadeau & Bengio (2003) correction applies to it as to any candidate (holdfast.stats).
+        corrected = corrected_variance(values, n_train, n_val).corrected_se if len(values) > 1 else float("nan")
         per_metric[metric] = {"mean": float(values.mean()), "sd": sd,
                               "se": sd / math.sqrt(len(values)) if len(values) > 1 else float("nan"),
-                              "by_outer_fold": values.tolist()}
+                              "se_corrected": corrected, "by_outer_fold": values.tolist()}
     winners: dict[str, int] = {}
     for s in scores:
         winners[s["winner"]] = winners.get(s["winner"], 0) + 1
@@ -82,7 +88,8 @@ def summarise(score_paths: list[str], metrics: list[str], summary_path: str, led
         "note": ("Each number estimates how well the whole selection procedure (these candidates, these folds, this "
                  "rule) does on rows it never saw, not how well one particular model does. The winner may differ "
                  "between outer folds; the sealed test set was not used. se is the naive standard error over outer "
-                 "folds (outer training sets overlap, so it is too small)."),
+                 "folds (outer training sets overlap, so it is too small); se_corrected is the Nadeau & Bengio "
+                 "(2003) corrected one, sqrt((1/J + n_val/n_train) * sd^2) over the J outer folds."),
     }
     write_json(summary_path, summary)
     ledger.append(ledger_path, "nested_summary", {"scope": "nested", "outer_folds": len(scores),
