@@ -96,3 +96,13 @@ def test_yaml_alias_bombs_are_refused_quickly(tmp_path: Any) -> None:
     path.write_text("\n".join(lines) + "\n")
     with pytest.raises(ConfigError, match=r"config expands to more than 100000 values"):
         cfg.load(path)
+
+
+def test_changed_parts_name_what_differs_and_fall_back_when_unrecorded() -> None:
+    from holdfast.config import changed_parts
+
+    recorded = {"config 'folds'": "a", "config 'candidates'": "b", "holdfast code of step 'tally'": "c"}
+    current = {"config 'folds'": "a", "config 'candidates'": "B", "holdfast code of step 'tally'": "C"}
+    assert changed_parts(recorded, current) == ["config 'candidates'", "holdfast code of step 'tally'"]
+    assert changed_parts(recorded, {**recorded, "config 'opening'": "d"}) == ["config 'opening'"]  # new ingredient
+    assert changed_parts(None, current) == [] and changed_parts({}, current) == []  # recorded before parts

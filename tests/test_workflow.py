@@ -95,6 +95,8 @@ def test_family_edit_after_opening_stops_before_any_job(bc_copy: Path) -> None:
         result = run_workflow(bc_copy, *extra)
         assert result.returncode != 0
         assert "already opened 1 time(s)" in result.stderr
+        assert "config 'candidates' changed since the opening" in result.stderr  # names what changed, only that
+        assert "config 'folds'" not in result.stderr and "holdfast code" not in result.stderr
         assert "new experiment" in result.stderr and "reopen_reasons" in result.stderr
     assert tree_digest(bc_copy / "results") == before
 

@@ -293,15 +293,33 @@ def fold_spec(config: dict[str, Any]) -> dict[str, Any]:
     return dict(config["folds"])
 
 
-def selection_fingerprint(config: dict[str, Any], code: str) -> str:
-    """Hash of everything that decides which model is chosen (and so what an opening evaluates)."""
+def _selection_part(config: dict[str, Any]) -> dict[str, Any]:
     # Every key that reaches a param of a rule upstream of (or at) the opening.
     keys = ("data", "task", "metrics", "test", "folds", "candidates", "selection", "allowed_modules", "leakage",
             "opening")
     part = {k: config.get(k) for k in keys}
     part["test"] = {k: v for k, v in config["test"].items() if k != "reopen_reasons"}
     part["data"] = {k: v for k, v in config["data"].items() if k not in ("path", "allow_outside_project")}
-    return sha256_text(canonical_json({"config": part, "code": code}))
+    return part
+
+
+def selection_fingerprint(config: dict[str, Any], code: str) -> str:
+    """Hash of everything that decides which model is chosen (and so what an opening evaluates)."""
+    return sha256_text(canonical_json({"config": _selection_part(config), "code": code}))
+
+
+def selection_parts(config: dict[str, Any], codes: dict[str, str]) -> dict[str, str]:
+    """Short hashes of each config section and each step's code behind the fingerprint: they name what changed."""
+    out = {f"config '{k}'": sha256_text(canonical_json(v))[:16] for k, v in _selection_part(config).items()}
+    out.update({f"holdfast code of step '{stage}'": h for stage, h in codes.items()})
+    return out
+
+
+def changed_parts(recorded: Any, current: dict[str, str]) -> list[str]:
+    """The names whose hashes differ between a recorded and the current :func:`selection_parts` ([] if unknown)."""
+    if not isinstance(recorded, dict) or not recorded:
+        return []
+    return sorted(name for name in recorded.keys() | current.keys() if recorded.get(name) != current.get(name))
 
 
 def config_hash(config: dict[str, Any]) -> str:

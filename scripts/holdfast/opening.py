@@ -118,7 +118,8 @@ def agreement(block: dict[str, Any]) -> tuple[str, str]:
 
 def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list[str], task: str,
               reopen_reasons: list[str], level: float, draws: int, seed: int, verdict_path: str,
-              fingerprint: str = "", rule: str | None = None) -> dict[str, Any]:
+              fingerprint: str = "", rule: str | None = None,
+              fingerprint_parts: dict[str, str] | None = None) -> dict[str, Any]:
     """Open the sealed test set once, score the refit winner on it, write final/verdict.json."""
     exp = Path(exp_dir)
     ledger_path = exp / LEDGER
@@ -187,7 +188,7 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
             "opening": number, "winner": verdict["winner"]["candidate"], "model_sha256": model_sha,
             "test_sha256": test_sha, "rows": len(test), "verdict_sha256": sha256_file(archive),
             "reasons": reopen_reasons[: number - 1], "fingerprint": fingerprint,
-            "interval_seed": seed, "interval_draws": draws,
+            "interval_seed": seed, "interval_draws": draws, "fingerprint_parts": fingerprint_parts or {},
         }, rule=rule)
         write_json(target, verdict)
         return verdict

@@ -95,10 +95,12 @@ def job_script(folder: str = ".snakemake/holdfast") -> str:
     return str(target)
 
 
+UPSTREAM = ("assign_folds", "fit_family", "tally", "refit_winner", "open_test")
+
+
 def upstream_code() -> str:
     """Hash of the code of every stage up to and including the opening."""
-    upstream = ("assign_folds", "fit_family", "tally", "refit_winner", "open_test")
-    return sha256_text(canonical_json({s: code_hash(s) for s in upstream}))[:16]
+    return sha256_text(canonical_json({s: code_hash(s) for s in UPSTREAM}))[:16]
 
 
 @dataclass
@@ -155,6 +157,10 @@ class Plan:
         """What decides the winner: recorded at the opening, compared at every later parse."""
         return cfg.selection_fingerprint(self.config, upstream_code())
 
+    def fingerprint_parts(self) -> dict[str, str]:
+        """The fingerprint's ingredients, hashed one by one: recorded at the opening to name what changed."""
+        return cfg.selection_parts(self.config, {s: code_hash(s) for s in UPSTREAM})
+
     def upstream_outputs(self) -> list[str]:
         """Files that must be unchanged after the opening for it to stand."""
         names = [DEV, FOLDS, RANKING, CHOICE, MODEL, CARD]
@@ -210,7 +216,9 @@ def _opening_guard(plan: Plan) -> None:
 
     why = ""
     if openings[-1]["details"].get("fingerprint") != plan.fingerprint():
-        why = "the config or code that decides the winner changed since the opening"
+        changed = cfg.changed_parts(openings[-1]["details"].get("fingerprint_parts"), plan.fingerprint_parts())
+        why = (f"{', '.join(changed)} changed since the opening" if changed else
+               "the config or the holdfast code of the steps up to the opening changed since the opening")
     verdict = plan.exp / VERDICT
     if not why and verdict.exists():
         limit = verdict.stat().st_mtime_ns

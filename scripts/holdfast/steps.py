@@ -135,7 +135,8 @@ def open_test(smk: Any) -> None:
     verdict = run_open(exp, smk.params.experiment, json.loads(smk.params.spec),
                        json.loads(smk.params.metrics), smk.params.task, json.loads(smk.params.reasons),
                        opening["confidence"], opening["bootstrap"], opening["seed"], smk.output.verdict,
-                       fingerprint=smk.params.fingerprint, rule=smk.rule)
+                       fingerprint=smk.params.fingerprint,
+                       fingerprint_parts=json.loads(smk.params.fingerprint_parts), rule=smk.rule)
     print(json.dumps(verdict["metrics"], indent=2))
 
 

@@ -18,6 +18,7 @@ rule open_test:
         reasons=json.dumps(PLAN.config["test"]["reopen_reasons"]),
         opening=json.dumps(PLAN.config["opening"], sort_keys=True),
         fingerprint=PLAN.fingerprint(),
+        fingerprint_parts=json.dumps(PLAN.fingerprint_parts(), sort_keys=True),
         code=code_hash("open_test"),
     resources:
         mem_mb=4000,
