@@ -98,9 +98,14 @@ def job_script(folder: str = ".snakemake/holdfast") -> str:
 UPSTREAM = ("assign_folds", "fit_family", "tally", "refit_winner", "open_test")
 
 
+def upstream_codes() -> dict[str, str]:
+    """The code hash of every stage up to and including the opening."""
+    return {s: code_hash(s) for s in UPSTREAM}
+
+
 def upstream_code() -> str:
-    """Hash of the code of every stage up to and including the opening."""
-    return sha256_text(canonical_json({s: code_hash(s) for s in UPSTREAM}))[:16]
+    """One hash over :func:`upstream_codes` (part of the opening fingerprint)."""
+    return sha256_text(canonical_json(upstream_codes()))[:16]
 
 
 @dataclass
@@ -159,7 +164,7 @@ class Plan:
 
     def fingerprint_parts(self) -> dict[str, str]:
         """The fingerprint's ingredients, hashed one by one: recorded at the opening to name what changed."""
-        return cfg.selection_parts(self.config, {s: code_hash(s) for s in UPSTREAM})
+        return cfg.selection_parts(self.config, upstream_codes())
 
     def upstream_outputs(self) -> list[str]:
         """Files that must be unchanged after the opening for it to stand."""
