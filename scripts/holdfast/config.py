@@ -8,7 +8,9 @@ express. Nothing here imports scikit-learn: the Snakefile calls this at parse ti
 from __future__ import annotations
 
 import copy
+import json
 import os
+import re
 from pathlib import Path
 from typing import Any
 
@@ -28,17 +30,90 @@ DEFAULT_METRICS = {
 ALWAYS_ALLOWED = "sklearn"
 
 
-def read_yaml(path: str | os.PathLike[str]) -> Any:
-    """Read a YAML file with the safe loader; refuse anything that is not plain data."""
-    source = Path(path)
-    if not source.is_file():
-        raise ConfigError(f"config file '{source}' does not exist; pass an existing --configfile")
+MAX_ALIASES = 100
+TEMPLATE_MARKER = "__use_yte__"
+
+
+class _StrictLoader(yaml.SafeLoader):
+    """YAML as plain data only: no tags, no duplicate keys, few aliases.
+
+    The safe loader already refuses code-running tags; this one refuses every explicit tag (even harmless
+    ones such as ``!!str``), so a config reads the same to every YAML reader, and a key written twice is an
+    error instead of silently keeping the last value.
+    """
+
+    def __init__(self, stream: Any) -> None:
+        super().__init__(stream)
+        self._aliases = 0
+
+    def compose_node(self, parent: Any, index: Any) -> Any:
+        event = self.peek_event()
+        if isinstance(event, yaml.AliasEvent):
+            self._aliases += 1
+            if self._aliases > MAX_ALIASES:
+                raise yaml.YAMLError(f"more than {MAX_ALIASES} aliases (*name); write the values out plainly")
+        elif getattr(event, "tag", None) not in (None, "!"):
+            mark = event.start_mark
+            raise yaml.YAMLError(f"tag '{event.tag}' on line {mark.line + 1}; tags are not allowed, write plain "
+                                 "values")
+        return super().compose_node(parent, index)
+
+    def construct_mapping(self, node: Any, deep: bool = False) -> Any:
+        seen: dict[Any, int] = {}
+        for key_node, _ in node.value:
+            key = self.construct_object(key_node, deep=True)
+            try:
+                hash(key)
+            except TypeError:
+                continue  # the base class reports an unhashable key
+            if key in seen:
+                raise yaml.YAMLError(f"key '{key}' is written twice (lines {seen[key]} and "
+                                     f"{key_node.start_mark.line + 1}); keep one")
+            seen[key] = key_node.start_mark.line + 1
+        return super().construct_mapping(node, deep=deep)
+
+
+def parse_yaml(text: str, source: str) -> Any:
+    """Parse config text with the strict loader; raise ConfigError naming ``source`` and what is wrong."""
     try:
-        with open(source, encoding="utf-8") as handle:
-            return yaml.safe_load(handle)
+        data = yaml.load(text, Loader=_StrictLoader)  # a SafeLoader subclass: plain data only
     except yaml.YAMLError as exc:
         first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise ConfigError(f"config file '{source}' is not plain YAML ({first}); fix the syntax") from exc
+        raise ConfigError(f"config file '{source}' is not plain YAML ({first}); fix it") from exc
+    if isinstance(data, dict) and TEMPLATE_MARKER in data:
+        raise ConfigError(f"config file '{source}' carries the template marker '{TEMPLATE_MARKER}', which makes "
+                          "Snakemake run the expressions in it as code; remove it and write plain values")
+    return data
+
+
+def _json_pairs(source: str) -> Any:
+    def hook(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        for key, value in pairs:
+            if key in out:
+                raise ConfigError(f"config file '{source}' writes key '{key}' twice; keep one")
+            out[key] = value
+        return out
+
+    return hook
+
+
+def read_yaml(path: str | os.PathLike[str]) -> Any:
+    """Read a config file as plain data: JSON if it parses as JSON (as Snakemake tries first), else strict YAML."""
+    source = Path(path)
+    if not source.is_file():
+        raise ConfigError(f"config file '{source}' does not exist; pass an existing config file")
+    try:
+        text = source.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"config file '{source}' cannot be read as UTF-8 text ({exc}); save it as UTF-8") from exc
+    try:
+        data = json.loads(text, object_pairs_hook=_json_pairs(str(source)))
+    except ValueError:
+        return parse_yaml(text, str(source))
+    if isinstance(data, dict) and TEMPLATE_MARKER in data:
+        raise ConfigError(f"config file '{source}' carries the template marker '{TEMPLATE_MARKER}'; remove it")
+    return data
 
 
 def _schema() -> dict[str, Any]:
@@ -183,6 +258,7 @@ def _cross_checks(config: dict[str, Any]) -> None:
         raise ConfigError(f"config key 'selection.rule' is one_standard_error but folds.scheme {folds['scheme']} "
                           "with one repeat gives one score per candidate and no standard error; raise "
                           "folds.repeats or use best_mean")
+    _check_allowed_modules(config)
     allowed = allowed_prefixes(config)
     for family, spec in config["candidates"].items():
         module = spec["estimator"].rsplit(".", 1)[0]
@@ -229,6 +305,35 @@ def _check_selection(config: dict[str, Any]) -> None:
     if len(families) > 1 and sorted(selection["family_order"]) != sorted(families):
         raise ConfigError("config key 'selection.family_order' must list every family once, simplest first, for "
                           f"the one-standard-error rule; families: {', '.join(families)}")
+
+
+TRUSTED_MODULES_ENV = "HOLDFAST_TRUSTED_MODULES"
+_MODULE_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*(\.[A-Za-z_][A-Za-z0-9_]*)*")
+
+
+def operator_trusted_modules() -> list[str]:
+    """Module prefixes the operator allowed outside any config file (``HOLDFAST_TRUSTED_MODULES``, comma-separated).
+
+    A config may name extra estimator modules in ``allowed_modules``, but importing a module runs its top-level
+    code, so a config file alone must not be able to widen what is imported: each extra module needs this
+    consent from whoever runs the workflow (``holdfast run --trust-module NAME`` sets it).
+    """
+    raw = os.environ.get(TRUSTED_MODULES_ENV, "")
+    return [part.strip() for part in raw.split(",") if part.strip()]
+
+
+def _check_allowed_modules(config: dict[str, Any]) -> None:
+    trusted = operator_trusted_modules()
+    for position, name in enumerate(config["allowed_modules"]):
+        if not isinstance(name, str) or not _MODULE_NAME.fullmatch(name):
+            raise ConfigError(f"config key 'allowed_modules[{position}]': {name!r} is not a module name; write a "
+                              "dotted Python module name such as xgboost")
+        if name == ALWAYS_ALLOWED or name.startswith(ALWAYS_ALLOWED + "."):
+            continue
+        if not any(name == t or name.startswith(t + ".") for t in trusted):
+            raise ConfigError(f"config key 'allowed_modules[{position}]': module '{name}' is not trusted by whoever "
+                              "runs holdfast (a config file alone cannot allow an import); if you trust it, run "
+                              f"'holdfast run CONFIG --trust-module {name}' or set {TRUSTED_MODULES_ENV}={name}")
 
 
 def allowed_prefixes(config: dict[str, Any]) -> list[str]:
@@ -293,11 +398,17 @@ def fold_spec(config: dict[str, Any]) -> dict[str, Any]:
     return dict(config["folds"])
 
 
+RESOURCE_KEYS = ("threads", "mem_mb", "runtime", "cost")
+
+
 def _selection_part(config: dict[str, Any]) -> dict[str, Any]:
     # Every key that reaches a param of a rule upstream of (or at) the opening.
     keys = ("data", "task", "metrics", "test", "folds", "candidates", "selection", "allowed_modules", "leakage",
             "opening")
     part = {k: config.get(k) for k in keys}
+    # Resources decide where and how fast a fit runs, never what it computes: not part of the fingerprint.
+    part["candidates"] = {name: {k: v for k, v in spec.items() if k not in RESOURCE_KEYS}
+                          for name, spec in config["candidates"].items()}
     part["test"] = {k: v for k, v in config["test"].items() if k != "reopen_reasons"}
     part["data"] = {k: v for k, v in config["data"].items() if k not in ("path", "allow_outside_project")}
     return part
