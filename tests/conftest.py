@@ -29,6 +29,21 @@ def run_workflow(workdir: Path, *args: str, configfile: str | None = "config.yam
                           stdin=subprocess.DEVNULL)
 
 
+def run_cli(workdir: Path, *args: str, timeout: int = 1200, env: dict[str, str] | None = None,
+            stdin: str | None = None) -> subprocess.CompletedProcess[str]:
+    """Run the real ``holdfast`` command (``python -m holdfast ...``) inside ``workdir``, as a user would."""
+    full_env = {**os.environ, "PYTHONPATH": str(REPO / "scripts"), **(env or {})}
+    return subprocess.run([sys.executable, "-m", "holdfast", *args], capture_output=True, text=True, cwd=workdir,
+                          timeout=timeout, env=full_env, input=stdin,
+                          stdin=None if stdin is not None else subprocess.DEVNULL)
+
+
+def open_experiment(workdir: Path, experiment: str, configfile: str = "config.yaml",
+                    *extra: str) -> subprocess.CompletedProcess[str]:
+    """The deliberate opening, through the real CLI: ``holdfast open results/<experiment> --yes``."""
+    return run_cli(workdir, "open", f"results/{experiment}", "--yes", "--config", configfile, "--cores", "2", *extra)
+
+
 def planned_jobs(result: subprocess.CompletedProcess[str]) -> list[str]:
     """Rule names (with wildcards) of the jobs a dry run plans, e.g. 'fit_family[logistic,0,1]'."""
     jobs: list[str] = []
@@ -106,8 +121,10 @@ def bc_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
     write_config(workdir, small_classification_config())
     result = run_workflow(workdir)
     assert result.returncode == 0, result.stderr[-3000:]
+    opened = open_experiment(workdir, "bc")
+    assert opened.returncode == 0, opened.stdout[-3000:] + opened.stderr[-3000:]
     # Kept beside the work directory, not in it, so copies and digests of the experiment don't see it.
-    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)
+    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout + opened.stdout)
     return workdir
 
 
@@ -118,9 +135,12 @@ def demo_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
     (workdir / "data_demo").mkdir()
     shutil.copy(REPO / "data_demo" / "shipments.csv", workdir / "data_demo" / "shipments.csv")
     shutil.copy(REPO / "config" / "config.yaml", workdir / "config.yaml")
-    result = run_workflow(workdir)
-    assert result.returncode == 0, result.stderr[-3000:]
-    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)  # beside the work directory, not in it
+    # The README's way: `holdfast run CONFIG`, then the deliberate opening.
+    result = run_cli(workdir, "run", "config.yaml", "--cores", "2")
+    assert result.returncode == 0, result.stdout[-3000:] + result.stderr[-3000:]
+    opened = run_cli(workdir, "open", "results/cold-chain-spoilage", "--yes", "--cores", "2")
+    assert opened.returncode == 0, opened.stdout[-3000:] + opened.stderr[-3000:]
+    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout + opened.stdout)  # beside, not in it
     return workdir
 
 

@@ -13,6 +13,7 @@ import yaml
 from conftest import (
     REPO,
     diabetes_frame,
+    open_experiment,
     planned_jobs,
     run_workflow,
     tree_digest,
@@ -114,14 +115,23 @@ def test_second_opening_is_refused_and_final_is_untouched(bc_copy: Path) -> None
     assert tree_digest(exp / "final") == before
 
 
-def test_forced_rerun_of_opening_restores_verdict_without_reading(bc_copy: Path) -> None:
+def test_forced_rerun_of_opening_is_refused_and_a_deleted_verdict_comes_back_without_reading(bc_copy: Path) -> None:
     exp = bc_copy / "results" / "bc"
     verdict = (exp / "final/verdict.json").read_bytes()
-    result = run_workflow(bc_copy, "--forcerun", "open_test")
+    before = tree_digest(exp)
+    for extra in (["-n"], []):
+        forced = run_workflow(bc_copy, *extra, "--forcerun", "open_test")
+        assert forced.returncode == 4, forced.stderr[-3000:]
+        assert "--forcerun open_test: the test set of experiment 'bc' was opened" in forced.stderr
+    assert tree_digest(exp) == before
+    (exp / "final/verdict.json").unlink()
+    result = run_workflow(bc_copy)
     assert result.returncode == 0, result.stderr[-3000:]
+    assert "restore_verdict" in result.stderr and "open_test" not in planned_jobs(result)
     assert (exp / "final/verdict.json").read_bytes() == verdict
     openings = [json.loads(x) for x in (exp / "ledger.jsonl").read_text().splitlines()]
     assert sum(e["event"] == "open_test" for e in openings) == 1
+    assert sum(e["event"] == "opening_started" for e in openings) == 1
 
 
 def test_reopen_with_a_recorded_reason_marks_everything(bc_copy: Path) -> None:
@@ -131,6 +141,9 @@ def test_reopen_with_a_recorded_reason_marks_everything(bc_copy: Path) -> None:
     result = run_workflow(bc_copy)
     assert result.returncode == 0, result.stderr[-3000:]
     exp = bc_copy / "results" / "bc"
+    assert json.loads((exp / "final/verdict.json").read_text())["opening"] == 1  # a run never opens
+    reopened = open_experiment(bc_copy, "bc")
+    assert reopened.returncode == 0, reopened.stdout[-3000:] + reopened.stderr[-3000:]
     verdict = json.loads((exp / "final/verdict.json").read_text())
     assert verdict["opening"] == 2 and verdict["compromised"] is True
     assert verdict["test_set_opened"] == "test set opened 2 times"
@@ -170,6 +183,7 @@ def test_regression_twin_on_diabetes(tmp_path: Path) -> None:
     write_config(tmp_path, config)
     result = run_workflow(tmp_path)
     assert result.returncode == 0, result.stderr[-3000:]
+    assert open_experiment(tmp_path, "diabetes").returncode == 0
     exp = tmp_path / "results" / "diabetes"
     verdict = json.loads((exp / "final/verdict.json").read_text())
     assert set(verdict["metrics"]) == {"neg_mean_absolute_error", "r2"}
@@ -214,6 +228,7 @@ def test_outputs_are_byte_identical_with_one_core(bc_finished: Path, bc_workdir:
 
     result = run_workflow(bc_workdir, "--cores", "1")
     assert result.returncode == 0, result.stderr[-3000:]
+    assert open_experiment(bc_workdir, "bc", "config.yaml", "--cores", "1").returncode == 0
     for name in ("folds.parquet", "ranking.parquet", "choice.json", "final/verdict.json", "dev.parquet",
                  "sealed/test.parquet", "plots/ranking.png"):
         ours = hashlib.sha256((bc_workdir / "results/bc" / name).read_bytes()).hexdigest()
@@ -254,7 +269,8 @@ def test_a_second_invocation_on_the_same_experiment_stops_with_a_clear_message(b
     from conftest import REPO
 
     cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(bc_copy), "--cores", "1",
-           "--forcerun", "audit", "--configfile", str(bc_copy / "config.yaml")]
+           "--forcerun", "restore_verdict", "--configfile", str(bc_copy / "config.yaml")]
+    (bc_copy / "results/bc/final/verdict.json").unlink()  # gives the first run one job to hold the lock with
     env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
     first = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
                              stdin=subprocess.DEVNULL, start_new_session=True)

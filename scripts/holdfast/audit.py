@@ -16,7 +16,7 @@ import pandas as pd
 from . import ledger
 from ._io import read_json, sha256_file, write_json
 from .dataset import KEY, keys_digest
-from .layout import ARCHIVE, CHOICE, DEV, FOLDS, LEDGER, MANIFEST, MODEL, RANKING, TEST, VERDICT, fit_file
+from .layout import CHOICE, DEV, FOLDS, LEDGER, MANIFEST, MODEL, RANKING, TEST, VERDICT, fit_file
 from .ledger import Problem
 
 
@@ -159,26 +159,40 @@ def _check_choice(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) 
 
 def _check_openings(exp: Path, entries: list[dict[str, Any]], model_sha: str | None,
                     out: list[Problem]) -> int:
+    """Count openings in every independent record (holdfast.openings); fail when they disagree."""
+    from . import openings as records_of
+
     openings = ledger.events(entries, "open_test")
     verdict = exp / VERDICT
-    if len(openings) > 1:
+    found = records_of.records(exp)
+    count = found.count
+    sources = found.by_source()
+    registry_kept = records_of.registry_path(exp).exists()
+    if not registry_kept:
+        sources.pop("registry")  # a folder copied away from its results/ has no registry beside it
+    started = {k: v for k, v in sources.items() if k not in ("ledger (finished)", "archive", "verdict")}
+    finished = {k: sources[k] for k in ("ledger (finished)", "archive", "verdict")}
+    if len(set(started.values())) > 1 or len(set(finished.values())) > 1:
+        shown = ", ".join(f"{k} {v}" for k, v in sources.items())
+        out.append(Problem("opening-records-disagree", f"the records of openings disagree ({shown}): an opening "
+                           f"was removed from some of them; the test set counts as opened {count} time(s)"))
+    if count > 1:
         reasons = [r for e in openings for r in e["details"].get("reasons", [])]
-        out.append(Problem("opened-more-than-once", f"the sealed test set was opened {len(openings)} times; "
+        out.append(Problem("opened-more-than-once", f"the sealed test set was opened {count} times; "
                            f"the test estimate is compromised (recorded reasons: {reasons or 'none'})"))
-    archived = sorted((exp / ARCHIVE).glob("*.json")) if (exp / ARCHIVE).exists() else []
-    if len(archived) > len(openings):
-        out.append(Problem("opened-more-than-once", f"final/openings holds {len(archived)} verdicts but the ledger "
-                           f"records {len(openings)} opening(s): an opening is missing from the ledger"))
+    if max(finished.values()) < count:
+        out.append(Problem("opening-unfinished", f"opening {count} was recorded before the sealed rows were read but "
+                           "never wrote its verdict (a crash or a kill); it counts as an opening, and any later "
+                           "opening is a second look"))
     if openings:
         last = openings[-1]["details"]
-        shown = _load(verdict, read_json, "verdict-changed", out) if verdict.exists() else None
-        if isinstance(shown, dict) and shown.get("opening") != len(openings):
-            out.append(Problem("opened-more-than-once", f"final/verdict.json is opening {shown.get('opening')} but "
-                               f"the ledger records {len(openings)}: an opening is missing from the ledger"))
         if not verdict.exists():
             out.append(Problem("verdict-missing", "the ledger records an opening but final/verdict.json is missing"))
         elif sha256_file(verdict) != last.get("verdict_sha256"):
             out.append(Problem("verdict-changed", "final/verdict.json is not the verdict the ledger recorded"))
+        archived = records_of.archive_path(exp, int(last.get("opening", len(openings))))
+        if archived.exists() and sha256_file(archived) != last.get("verdict_sha256"):
+            out.append(Problem("archive-changed", f"'{archived}' is not the verdict the ledger recorded"))
         if model_sha is not None and last.get("model_sha256") != model_sha:
             out.append(Problem("opened-other-model", "the last opening evaluated a model file other than the current "
                                "model/model.skops"))
@@ -188,7 +202,7 @@ def _check_openings(exp: Path, entries: list[dict[str, Any]], model_sha: str | N
     elif verdict.exists():
         out.append(Problem("opening-unrecorded", "final/verdict.json exists but the ledger records no opening "
                            "(the ledger was truncated or the verdict was not made by open_test)"))
-    return len(openings)
+    return count
 
 
 def audit(exp_dir: str) -> dict[str, Any]:
@@ -208,6 +222,7 @@ def audit(exp_dir: str) -> dict[str, Any]:
         "problems": [{"code": p.code, "message": p.message} for p in problems],
         "ledger_entries": len(entries),
         "ledger_head": entries[-1]["hash"] if entries else None,
+        "ledger_head_seq": entries[-1].get("seq") if entries else None,
         "test_set_opened": openings,
         "checks": ["hash chain", "seal anchor", "sealed and development files", "dev/test overlap", "fold coverage",
                    "folds and fits against the ledger", "choice, ranking and model against the ledger",

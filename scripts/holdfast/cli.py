@@ -1,22 +1,42 @@
-"""The ``holdfast`` command: audit an experiment, or check a config before running it."""
+"""The ``holdfast`` command: run the development loop, open the sealed test set once, audit, check a config."""
 
 from __future__ import annotations
 
 import argparse
+import getpass
+import os
+import subprocess
 import sys
 from pathlib import Path
+from typing import Any
 
-from .errors import HoldfastError
+from . import __version__
+from .errors import ConfigError, HoldfastError, SealedAccessError
+
+REPO = Path(__file__).resolve().parents[2]
+SNAKEFILE = REPO / "Snakefile"
+# Snakemake options `holdfast run` sets itself: the checked config, the Snakefile and the working folder.
+OWN_OPTIONS = ("--configfile", "--configfiles", "--config", "-C", "--snakefile", "-s", "--directory", "-d")
+CORE_OPTIONS = ("--cores", "-c", "--jobs", "-j", "--executor", "-e", "--profile", "--workflow-profile")
+DRY_RUN = ("-n", "--dry-run", "--dryrun")
+
+
+def _say(line: str) -> None:
+    print(f"holdfast: {line}", flush=True)
+
+
+def _experiment_dir(value: str) -> Path:
+    exp = Path(value)
+    if not (exp / "ledger.jsonl").exists() and not (exp / "sealed").exists():
+        raise ConfigError(f"'{exp}' is not an experiment folder (no ledger.jsonl, no sealed/); pass "
+                          "results/<experiment>")
+    return exp
 
 
 def _audit(args: argparse.Namespace) -> int:
     from .audit import audit, report
 
-    exp = Path(args.experiment_dir)
-    if not (exp / "ledger.jsonl").exists() and not (exp / "sealed").exists():
-        sys.stderr.write(f"holdfast: error: '{exp}' is not an experiment directory (no ledger.jsonl, no sealed/); "
-                         "pass results/<experiment>\n")
-        return 2
+    exp = _experiment_dir(args.experiment_dir)
     result = audit(str(exp))
     print(report(result))
     if result["passed"]:  # what the passing record vouches for; a failing one vouches for nothing
@@ -33,32 +53,222 @@ def _check(args: argparse.Namespace) -> int:
 
     plan = prepare(read_yaml(args.configfile), main=True, results=args.results)
     n = sum(len(c) for c in plan.families.values())
-    state = "sealed" if plan.manifest else "not sealed yet"
+    state = ("opened" if plan.opened else "sealed") if plan.manifest else "not sealed yet"
     print(f"config OK: experiment '{plan.config['experiment']}' ({state}), task {plan.config['task']}, "
           f"{n} candidates in {len(plan.families)} families, {len(plan.fold_ids)} folds, "
           f"primary metric {plan.config['metrics'][0]}")
     return 0
 
 
+def _refuse_own_options(extra: list[str]) -> None:
+    for word in extra:
+        name = word.split("=", 1)[0]
+        if name in OWN_OPTIONS:
+            raise ConfigError(f"Snakemake option '{name}' is set by holdfast run itself (the checked config, the "
+                              "Snakefile and this folder); put every setting in the config file and run from the "
+                              "project folder")
+
+
+def _trust(modules: list[str]) -> None:
+    """Pass the operator's --trust-module consent on to Snakemake and its jobs (see config.operator_trusted_modules)."""
+    from .config import TRUSTED_MODULES_ENV
+
+    if modules:
+        current = [m for m in os.environ.get(TRUSTED_MODULES_ENV, "").split(",") if m]
+        os.environ[TRUSTED_MODULES_ENV] = ",".join(dict.fromkeys(current + modules))
+
+
+def _store_config(raw: dict[str, Any], exp: Path) -> Path:
+    """Write the checked config as canonical JSON into the experiment folder (only when it changed)."""
+    from ._io import canonical_json, write_atomic
+    from .layout import CONFIG_COPY
+
+    path = exp / CONFIG_COPY
+    text = canonical_json(raw) + "\n"
+    if not path.exists() or path.read_text(encoding="utf-8") != text:
+        write_atomic(path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
+    return path
+
+
+def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label: str,
+               targets: tuple[str, ...] = ()) -> int:
+    """Run Snakemake on the checked config; its own output goes to a log file unless ``show``."""
+    import datetime as dt
+
+    # Targets first and --configfile=PATH: Snakemake's list options would swallow a target written after them.
+    cmd = [sys.executable, "-m", "snakemake", *targets, "-s", str(SNAKEFILE), f"--configfile={configfile}"]
+    if not any(w.split("=", 1)[0] in CORE_OPTIONS or (w.startswith("-j") and w[2:].isdigit()) for w in extra):
+        cmd += ["--cores", "all"]
+    cmd += extra
+    env = {**os.environ, "HOLDFAST_CLOSING_BY_CLI": "1",
+           "PYTHONPATH": os.pathsep.join(filter(None, [str(REPO / "scripts"), os.environ.get("PYTHONPATH")]))}
+    if show:
+        return subprocess.run(cmd, env=env, stdin=subprocess.DEVNULL).returncode
+    stamp = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%SZ")
+    log = exp / "logs" / f"{label}-{stamp}.log"
+    log.parent.mkdir(parents=True, exist_ok=True)
+    _say(f"Snakemake's own output goes to {log}")
+    from .progress import follow
+
+    with open(log, "w", encoding="utf-8") as handle:
+        process = subprocess.Popen(cmd, env=env, stdin=subprocess.DEVNULL, stdout=handle, stderr=subprocess.STDOUT)
+        follow(exp, process, _say)
+    if process.returncode:
+        _show_failure(log)
+    return process.returncode
+
+
+def _show_failure(log: Path) -> None:
+    """On failure, the one-line holdfast messages from the log (or its tail) and where to read the rest."""
+    text = log.read_text(encoding="utf-8", errors="replace").splitlines()
+    ours = [line for line in text if line.startswith("holdfast: ") and "error" in line]
+    for line in dict.fromkeys(ours) or text[-15:]:
+        sys.stderr.write(line + "\n")
+    sys.stderr.write(f"holdfast: the run failed; Snakemake's full output is in {log}\n")
+
+
+def _finish(exp: Path) -> int:
+    from .closing import finish
+
+    result, lines = finish(exp)
+    for line in lines:
+        _say(line)
+    return 0 if result["passed"] else 1
+
+
+def _run(args: argparse.Namespace, extra: list[str]) -> int:
+    from .config import read_yaml
+    from .plan import _forced_guard, prepare, snakemake_flags
+
+    _refuse_own_options(extra)
+    _trust(args.trust_module)
+    raw = read_yaml(args.configfile)
+    plan = prepare(raw, main=True)
+    _forced_guard(plan, snakemake_flags(["snakemake", *extra]))
+    if plan.exp.is_symlink():
+        raise ConfigError(f"results folder '{plan.exp}' is a symbolic link; holdfast writes only into real folders "
+                          "inside the project")
+    config_copy = _store_config(raw, plan.exp)
+    if plan.closed:
+        _say(f"experiment '{plan.config['experiment']}' was opened: nothing up to the opening runs again")
+    dry = any(w in DRY_RUN for w in extra)
+    code = _snakemake(config_copy, extra, plan.exp, args.show_snakemake or dry, "run")
+    if code or dry:
+        return code
+    return _finish(plan.exp)
+
+
+def _open(args: argparse.Namespace, extra: list[str]) -> int:
+    from ._io import read_json, sha256_file, write_json
+    from .config import read_yaml
+    from .layout import CHOICE, CONFIG_COPY, MODEL, REQUEST
+    from .plan import prepare
+
+    _refuse_own_options(extra)
+    _trust(args.trust_module)
+    exp = _experiment_dir(args.experiment_dir)
+    config_path = Path(args.config) if args.config else exp / CONFIG_COPY
+    if not config_path.exists():
+        raise ConfigError(f"'{config_path}' is missing (the experiment was not run with 'holdfast run'); pass the "
+                          "experiment's config with --config CONFIG")
+    raw = read_yaml(config_path)
+    plan = prepare(raw, main=True, results=str(exp.parent))
+    if plan.exp.resolve() != exp.resolve():
+        raise ConfigError(f"config '{config_path}' names experiment '{plan.config['experiment']}', not the folder "
+                          f"'{exp}'; pass the experiment's own config")
+    if not plan.sealed:
+        raise SealedAccessError(f"experiment '{exp}' is not sealed yet; run 'holdfast run CONFIG' first")
+    if plan.closed:
+        from . import ledger
+        from .opening import last_opening, refusal
+
+        entries = ledger.verify_chain(exp / "ledger.jsonl")[0]
+        raise SealedAccessError(refusal(plan.config["experiment"], plan.opened, last_opening(exp, entries),
+                                        plan.allowed_openings))
+    if not (exp / MODEL).exists() or not (exp / CHOICE).exists():
+        raise SealedAccessError(f"experiment '{exp}' has no refit winner yet; run 'holdfast run {config_path}' "
+                                "first")
+    from .audit import audit
+
+    before = audit(str(exp))
+    if not before["passed"]:
+        problems = "; ".join(f"[{p['code']}] {p['message']}" for p in before["problems"])
+        raise SealedAccessError(f"experiment '{exp}' does not pass its audit, so its test set is not opened: "
+                                f"{problems}")
+    from .showing import opening_preview
+
+    for line in opening_preview(exp, plan):
+        _say(line)
+    if not args.yes:
+        if not sys.stdin.isatty():
+            raise SealedAccessError("no terminal to confirm the opening on; run 'holdfast open' in a terminal, or "
+                                    "pass --yes in a script")
+        answer = input(f"Type 'open' to open the sealed test set of '{plan.config['experiment']}' now "
+                       "(this is the one look): ")
+        if answer.strip() != "open":
+            _say("not opened")
+            return 1
+    import datetime as dt
+
+    request = {"experiment": plan.config["experiment"], "opening": plan.opened + 1,
+               "model_sha256": sha256_file(exp / MODEL), "choice_sha256": sha256_file(exp / CHOICE),
+               "winner": read_json(exp / CHOICE)["winner"]["candidate"],
+               "requested": dt.datetime.now(dt.UTC).isoformat(timespec="seconds").replace("+00:00", "Z"),
+               "by": getpass.getuser(), "confirmed": "--yes" if args.yes else "typed at a terminal"}
+    write_json(exp / REQUEST, request)
+    config_copy = _store_config(raw, exp)
+    target = str(exp / "final" / "verdict.json")
+    code = _snakemake(config_copy, ["--allowed-rules=open_test", *extra], exp, args.show_snakemake, "open",
+                      targets=(target,))
+    if code:
+        return code
+    return _finish(exp)
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser (exposed for tests and documentation)."""
     parser = argparse.ArgumentParser(prog="holdfast", description=__doc__)
-    sub = parser.add_subparsers(dest="command", required=True)
+    parser.add_argument("--version", action="version", version=f"holdfast {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    p_run = sub.add_parser("run", help="seal (first time), folds, fits, tally, refit; stops before the test set",
+                           description="Run the development loop on CONFIG: the seal (first time only), folds, fit "
+                           "jobs, tally and refit. Re-runs only what a change touches. Never opens the test set. "
+                           "Any further options are handed to Snakemake (e.g. --cores 2, --profile DIR, -n).")
+    p_run.add_argument("configfile", help="the experiment's config (YAML or JSON)")
+    p_run.add_argument("--trust-module", action="append", default=[], metavar="MODULE",
+                       help="allow estimators from MODULE (listed in the config's allowed_modules); repeatable")
+    p_run.add_argument("--show-snakemake", action="store_true", help="show Snakemake's job output on the screen")
+    p_run.set_defaults(func=_run, takes_extra=True)
+    p_open = sub.add_parser("open", help="open the sealed test set once, deliberately, and write the verdict",
+                            description="Show what will be opened, ask for confirmation, record the opening before "
+                            "reading a sealed row, score the refit winner on the test set and print the verdict.")
+    p_open.add_argument("experiment_dir", help="results/<experiment>")
+    p_open.add_argument("--yes", action="store_true", help="confirm without asking (for scripts)")
+    p_open.add_argument("--config", help="the experiment's config, when it was not run with 'holdfast run'")
+    p_open.add_argument("--trust-module", action="append", default=[], metavar="MODULE", help=argparse.SUPPRESS)
+    p_open.add_argument("--show-snakemake", action="store_true", help="show Snakemake's job output on the screen")
+    p_open.set_defaults(func=_open, takes_extra=True)
     p_audit = sub.add_parser("audit", help="check an experiment's ledger and files; exit 0 on pass, 1 on fail")
     p_audit.add_argument("experiment_dir", help="results/<experiment>")
-    p_audit.set_defaults(func=_audit)
+    p_audit.set_defaults(func=_audit, takes_extra=False)
     p_check = sub.add_parser("check", help="validate a config and its data without running anything")
     p_check.add_argument("configfile", nargs="?", default="config/config.yaml")
     p_check.add_argument("--results", default="results", help="results folder (default: results)")
-    p_check.set_defaults(func=_check)
+    p_check.set_defaults(func=_check, takes_extra=False)
     return parser
 
 
 def main(argv: list[str] | None = None) -> int:
     """Entry point; returns the exit code."""
-    args = build_parser().parse_args(argv)
+    parser = build_parser()
+    args, extra = parser.parse_known_args(argv)
+    if extra and not getattr(args, "takes_extra", False):
+        parser.error(f"unrecognized arguments: {' '.join(extra)}")
     try:
-        return int(args.func(args))
+        return int(args.func(args, extra) if args.takes_extra else args.func(args))
     except HoldfastError as exc:
         sys.stderr.write(exc.format_message() + "\n")
         return exc.exit_code
+    except KeyboardInterrupt:
+        sys.stderr.write("holdfast: interrupted\n")
+        return 130

@@ -17,15 +17,15 @@ from typing import Any
 
 from . import config as cfg
 from . import ledger
-from ._io import canonical_json, sha256_file, sha256_text
+from ._io import canonical_json, read_json, sha256_file, sha256_text
 from .candidates import expand, family_payload
 from .errors import ConfigError, DataError, HoldfastError, SealedAccessError
-from .layout import CARD, CHOICE, DEV, FOLDS, LEDGER, MANIFEST, MODEL, RANKING, TEST, VERDICT, fit_file, read_manifest
+from .layout import DEV, LEDGER, MANIFEST, REQUEST, TEST, fit_file, read_manifest
 
 PACKAGE = Path(__file__).resolve().parent
 STAGE_MODULES = {
-    "assign_folds": "folds", "fit_family": "fit", "tally": "tally", "refit_winner": "refit",
-    "open_test": "opening", "audit": "audit", "score_outer": "nested", "nested_summary": "nested",
+    "assign_folds": "folds", "fit_family": "fit", "record_round": "rounds", "tally": "tally", "refit_winner": "refit",
+    "open_test": "opening", "score_outer": "nested", "nested_summary": "nested",
 }
 
 
@@ -117,6 +117,51 @@ class Plan:
     families: dict[str, list[dict[str, Any]]]
     manifest: dict[str, Any] | None
     fold_ids: list[tuple[int, int]] = field(default_factory=list)
+    opened: int = 0
+    main: bool = True
+
+    @property
+    def sealed(self) -> bool:
+        """True once the seal's manifest exists: from then on the seal rule is not part of the workflow."""
+        return self.manifest is not None
+
+    @property
+    def allowed_openings(self) -> int:
+        """One opening, plus one per written reason in test.reopen_reasons."""
+        return 1 + len(self.config["test"]["reopen_reasons"])
+
+    @property
+    def closed(self) -> bool:
+        """True when every allowed opening happened: the steps up to the opening leave the workflow.
+
+        Decided in the main process only (job processes define every rule, as they run one job each).
+        """
+        return self.main and self.opened >= self.allowed_openings
+
+    def verdict_to_restore(self) -> str:
+        """The archived verdict to copy back when a closed experiment's verdict was deleted ('' otherwise).
+
+        Only the archive copy whose hash the ledger's last opening recorded qualifies.
+        """
+        from .layout import VERDICT
+
+        if not self.closed or (self.exp / VERDICT).exists() or not (self.exp / LEDGER).exists():
+            return ""
+        entries, problems = ledger.verify_chain(self.exp / LEDGER)
+        finished = ledger.events(entries, "open_test")
+        if problems or not finished:
+            return ""
+        from . import openings
+
+        archive = openings.archive_path(self.exp, int(finished[-1]["details"]["opening"]))
+        ok = archive.exists() and sha256_file(archive) == finished[-1]["details"].get("verdict_sha256")
+        return str(archive) if ok else ""
+
+    @property
+    def request(self) -> str | None:
+        """The confirmation ``holdfast open`` wrote for the next opening, if it exists and an opening is allowed."""
+        path = self.exp / REQUEST
+        return str(path) if path.exists() and not self.closed else None
 
     @property
     def spec(self) -> dict[str, Any]:
@@ -149,6 +194,12 @@ class Plan:
         """Every candidate spec keyed by id."""
         return {c["id"]: c for cands in self.families.values() for c in cands}
 
+    def round_setup(self) -> str:
+        """The selection set-up of this run as canonical JSON (a param of record_round: a change is a new round)."""
+        from .rounds import selection_setup
+
+        return canonical_json(selection_setup(self.config, self.families))
+
     def simplicity(self) -> dict[str, dict[str, str]]:
         """Each family's declared simplicity parameter and direction (for the one-standard-error rule)."""
         return {name: spec["simplicity"] for name, spec in self.config["candidates"].items()
@@ -165,11 +216,6 @@ class Plan:
     def fingerprint_parts(self) -> dict[str, str]:
         """The fingerprint's ingredients, hashed one by one: recorded at the opening to name what changed."""
         return cfg.selection_parts(self.config, upstream_codes())
-
-    def upstream_outputs(self) -> list[str]:
-        """Files that must be unchanged after the opening for it to stand."""
-        names = [DEV, FOLDS, RANKING, CHOICE, MODEL, CARD]
-        return [self.path(n) for n in names] + self.fit_files("fits") + self.fit_files("oof")
 
 
 def _data_unchanged(config: dict[str, Any], manifest: dict[str, Any]) -> None:
@@ -208,35 +254,91 @@ def _seal_unchanged(config: dict[str, Any], manifest: dict[str, Any], exp: Path)
                                     "seal never re-runs: restore the file or set a new 'experiment' name")
 
 
-def _opening_guard(plan: Plan) -> None:
+def _last_fingerprint_parts(plan: Plan) -> tuple[str | None, dict[str, str] | None]:
+    """The fingerprint (and its named parts) recorded by the latest opening: ledger first, else its marker."""
     path = plan.exp / LEDGER
-    if not path.exists():
-        return
-    entries = ledger.read(path)
-    openings = ledger.events(entries, "open_test")
-    allowed = 1 + len(plan.config["test"]["reopen_reasons"])
-    if not openings or len(openings) < allowed:
-        return
-    from .opening import refusal
+    if path.exists():
+        entries, _ = ledger.verify_chain(path)
+        for name in ("open_test", "opening_started"):
+            found = ledger.events(entries, name)
+            if found:
+                details = found[-1]["details"]
+                return details.get("fingerprint"), details.get("fingerprint_parts")
+    from . import openings
 
-    why = ""
-    if openings[-1]["details"].get("fingerprint") != plan.fingerprint():
-        changed = cfg.changed_parts(openings[-1]["details"].get("fingerprint_parts"), plan.fingerprint_parts())
-        why = (f"{', '.join(changed)} changed since the opening" if changed else
-               "the config or the holdfast code of the steps up to the opening changed since the opening")
-    verdict = plan.exp / VERDICT
-    if not why and verdict.exists():
-        limit = verdict.stat().st_mtime_ns
-        for name in plan.upstream_outputs():
-            if not os.path.exists(name):
-                why = f"'{name}' is missing and would be rebuilt"
-                break
-            if os.stat(name).st_mtime_ns > limit:
-                why = f"'{name}' is newer than the verdict and would trigger a rebuild"
-                break
-    if why:
-        raise SealedAccessError(f"{why}, so the workflow would open the test set again; nothing was run. "
-                                + refusal(plan.config["experiment"], openings, allowed))
+    numbers = openings.records(plan.exp).markers
+    if numbers:
+        try:
+            marker = read_json(openings.marker_path(plan.exp, numbers[-1]))
+            return marker.get("fingerprint"), marker.get("fingerprint_parts")
+        except (OSError, ValueError):
+            pass
+    return None, None
+
+
+def _opening_guard(plan: Plan) -> None:
+    """Closed experiments: refuse any change to what was opened; say how to go on honestly."""
+    if not plan.closed:
+        return
+    from .opening import last_opening, refusal
+
+    recorded, parts = _last_fingerprint_parts(plan)
+    if parts:  # only the config decides what was opened; a closed experiment runs none of the steps' code
+        changed = [name for name in cfg.changed_parts(parts, plan.fingerprint_parts()) if name.startswith("config ")]
+    else:
+        changed = [] if recorded in (None, plan.fingerprint()) else ["the config or the code of the steps"]
+    if changed:
+        entries = ledger.verify_chain(plan.exp / LEDGER)[0] if (plan.exp / LEDGER).exists() else []
+        raise SealedAccessError(f"{', '.join(changed)} changed since the opening, so the workflow would open the "
+                                "test set again; nothing was run. "
+                                + refusal(plan.config["experiment"], plan.opened,
+                                          last_opening(plan.exp, entries), plan.allowed_openings))
+
+
+CLOSED_RULES = ("seal", "assign_folds", "fit_family", "record_round", "tally", "refit_winner", "open_test")
+
+
+def snakemake_flags(argv: list[str] | None = None) -> dict[str, Any]:
+    """The forcing and deleting flags of the Snakemake command line that started this process ({} if unknown).
+
+    Snakemake hands the Snakefile no record of them at parse time, so they are read from ``sys.argv`` with
+    Snakemake's own argument parser; a process that is not Snakemake's command line gives {}.
+    """
+    args = sys.argv if argv is None else argv
+    program = Path(args[0]).name if args else ""
+    if program != "snakemake" and not (program == "__main__.py" and "snakemake" in args[0]):
+        return {}
+    try:
+        from snakemake.cli import get_argument_parser
+
+        known, _ = get_argument_parser().parse_known_args(args[1:])
+    except (ImportError, SystemExit):
+        return {}
+    names = ("forceall", "forcerun", "forcetargets", "delete_all_output", "touch", "until", "omit_from")
+    return {name: getattr(known, name, None) for name in names}
+
+
+def _forced_guard(plan: Plan, flags: dict[str, Any]) -> None:
+    """Name, before anything runs, the forcing flags that would touch the seal or what was opened."""
+    forced = set(flags.get("forcerun") or [])
+    experiment = plan.config["experiment"]
+    if plan.sealed and "seal" in forced:
+        raise SealedAccessError(f"--forcerun seal: experiment '{experiment}' is sealed and the seal never re-runs; "
+                                "nothing was run. Set a new 'experiment' name to draw a new test set")
+    if plan.closed:
+        named = sorted(forced & set(CLOSED_RULES))
+        if named:
+            raise SealedAccessError(
+                f"--forcerun {' '.join(named)}: the test set of experiment '{experiment}' was opened, so every step "
+                "up to the opening is closed and cannot re-run or replace what was opened; nothing was run. Honest "
+                "ways on: a new experiment (new name and test.salt), or a written reason in test.reopen_reasons "
+                "(every output then says the test estimate is compromised)")
+        if flags.get("forceall") or flags.get("delete_all_output") or flags.get("touch"):
+            flag = ("--forceall" if flags.get("forceall") else
+                    "--delete-all-output" if flags.get("delete_all_output") else "--touch")
+            sys.stderr.write(f"holdfast: experiment '{experiment}' was opened: the steps up to the opening are closed "
+                             f"and not part of this workflow any more, so {flag} cannot reach the seal, the model or "
+                             "the verdict\n")
 
 
 def _check_encoders(config: dict[str, Any], text_columns: list[str]) -> None:
@@ -305,7 +407,11 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
     from .foldspec import MAX_FIT_JOBS, fold_ids
 
     plan = Plan(config=config, exp=exp, families=families, manifest=manifest,
-                fold_ids=fold_ids(config["folds"], n_dev, n_groups))
+                fold_ids=fold_ids(config["folds"], n_dev, n_groups), main=main)
+    if main and manifest is not None:
+        from . import openings
+
+        plan.opened = openings.records(exp).count
     jobs = len(plan.fold_ids) * len(families) * (1 + int(config["nested"]["k"]))
     if jobs > MAX_FIT_JOBS:
         raise ConfigError(f"config key 'folds' gives {jobs} fit jobs ({len(plan.fold_ids)} folds x {len(families)} "
@@ -325,7 +431,46 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             check_feasible(config["folds"], len(dev_target), dev_target if scheme in STRATIFIED else None,
                            dev_groups if scheme in GROUPED else None)
         _opening_guard(plan)
+        _forced_guard(plan, snakemake_flags())
     return plan
+
+
+def checked_config(config: dict[str, Any], configfiles: list[str], overrides: dict[str, Any] | None,
+                   default: str) -> None:
+    """Make Snakemake's ``config`` what holdfast's strict reader gives, or refuse.
+
+    Without --configfile, ``config`` is filled from ``default`` read by the strict reader (Snakemake's own
+    reader would run template expressions). With --configfile, Snakemake has already read the files (any
+    template expressions in them have run by now: see the README); each is read again here, and a file that
+    the strict reader refuses, or that gives other values than Snakemake loaded, stops the workflow.
+    """
+    from snakemake.utils import update_config
+
+    files = configfiles or [default]
+    merged: dict[str, Any] = {}
+    for path in files:
+        loaded = cfg.read_yaml(path)
+        if not isinstance(loaded, dict):
+            raise ConfigError(f"config file '{path}' does not hold a mapping of keys to values; see config/config.yaml")
+        update_config(merged, loaded)
+    update_config(merged, dict(overrides or {}))
+    if not configfiles:
+        config.clear()
+        config.update(merged)
+    elif canonical_json(merged) != canonical_json(dict(config)):
+        raise ConfigError(f"config file(s) {', '.join(repr(f) for f in files)} gave Snakemake other values than a "
+                          "plain reading gives (template expressions?); nothing was run. Write plain values, or "
+                          "run 'holdfast run CONFIG', which never lets Snakemake read the file")
+
+
+def checked_config_or_exit(config: dict[str, Any], configfiles: list[str], overrides: dict[str, Any] | None,
+                           default: str) -> None:
+    """:func:`checked_config`, turning a holdfast error into one line on stderr and its exit code."""
+    try:
+        checked_config(config, configfiles, overrides, default)
+    except HoldfastError as exc:
+        sys.stderr.write(exc.format_message() + "\n")
+        raise SystemExit(exc.exit_code) from None
 
 
 def prepare_or_exit(raw: dict[str, Any], main: bool = True, results: str = "results") -> Plan:
@@ -337,4 +482,4 @@ def prepare_or_exit(raw: dict[str, Any], main: bool = True, results: str = "resu
         raise SystemExit(exc.exit_code) from None
 
 
-__all__ = ["Plan", "code_hash", "job_script", "prepare", "prepare_or_exit"]
+__all__ = ["Plan", "checked_config", "code_hash", "job_script", "prepare", "prepare_or_exit"]

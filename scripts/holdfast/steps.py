@@ -76,7 +76,7 @@ def assign_folds(smk: Any) -> None:
     test_keys = set(pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"])
     check(table, dev["row_key"], test_keys, fold_spec, groups, times)
     report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
-                            read_json(smk.input.manifest), smk.output.summary, fold_spec)
+                            read_json(smk.params.manifest), smk.output.summary, fold_spec)
     write_parquet(smk.output.folds, table)
     write_json(smk.output.leakage, report)
     n_folds, n_repeats = int(table["fold"].max()) + 1, int(table["repeat"].max()) + 1
@@ -112,8 +112,17 @@ def tally(smk: Any) -> None:
                        json.loads(smk.params.metrics), json.loads(smk.params.selection),
                        json.loads(smk.params.simplicity), spec["target"], smk.params.task, int(smk.params.folds),
                        smk.output.ranking, smk.output.choice, smk.output.plot, smk.params.ledger, smk.input.folds,
-                       rule_name=smk.rule, scope=_scope(smk))
+                       rule_name=smk.rule, scope=_scope(smk), round_path=getattr(smk.input, "round", None))
     print(choice["why"])
+
+
+def record_round(smk: Any) -> None:
+    """Rule record_round -> holdfast.rounds.record_round."""
+    from .rounds import record_round as run_record
+
+    exp = str(Path(smk.output.round).parents[1])
+    record = run_record(exp, json.loads(smk.params.setup), smk.output.round, smk.params.ledger, rule=smk.rule)
+    print(f"selection round {record['round']}")
 
 
 def refit_winner(smk: Any) -> None:
@@ -136,16 +145,17 @@ def open_test(smk: Any) -> None:
                        json.loads(smk.params.metrics), smk.params.task, json.loads(smk.params.reasons),
                        opening["confidence"], opening["bootstrap"], opening["seed"], smk.output.verdict,
                        fingerprint=smk.params.fingerprint,
-                       fingerprint_parts=json.loads(smk.params.fingerprint_parts), rule=smk.rule)
+                       fingerprint_parts=json.loads(smk.params.fingerprint_parts), rule=smk.rule,
+                       request_path=smk.input.request)
     print(json.dumps(verdict["metrics"], indent=2))
 
 
-def audit(smk: Any) -> None:
-    """Rule audit -> holdfast.audit.audit_to_file."""
-    from .audit import audit_to_file, report
+def restore_verdict(smk: Any) -> None:
+    """Rule restore_verdict: copy the opening's archived verdict back (the guard checked it against the ledger)."""
+    import shutil
 
-    result = audit_to_file(str(Path(smk.output.audit).parent), smk.output.audit)
-    print(report(result))
+    shutil.copyfile(smk.input.archive, smk.output.verdict)
+    print(f"restored {smk.output.verdict} from {smk.input.archive}")
 
 
 def score_outer(smk: Any) -> None:
@@ -167,7 +177,8 @@ def nested_summary(smk: Any) -> None:
     print(json.dumps(summary, indent=2))
 
 
-STEPS = {f.__name__: f for f in (seal, assign_folds, fit_family, tally, refit_winner, open_test, audit,
+STEPS = {f.__name__: f for f in (seal, assign_folds, fit_family, record_round, tally, refit_winner, open_test,
+                                 restore_verdict,
                                  score_outer, nested_summary)}
 # Nested copies of the stages run the same adapters (Snakemake's `use rule ... as nested_<rule>`).
 STEPS.update({f"nested_{name}": STEPS[name] for name in ("assign_folds", "fit_family", "tally", "refit_winner")})

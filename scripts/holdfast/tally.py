@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from . import ledger, stats
-from ._io import sha256_file, write_atomic, write_json, write_parquet
+from ._io import read_json, sha256_file, write_atomic, write_json, write_parquet
 from .dataset import KEY
 from .errors import FitError
 
@@ -228,11 +228,74 @@ def optimism(oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, ta
     return summary
 
 
+def rounds_summary(index: dict[str, Any], round_number: int, folds_sha256: str) -> dict[str, Any]:
+    """How many rounds and candidates the choice rests on, and which candidates were scored on which folds."""
+    by_table: dict[str, list[str]] = {}
+    for cid, entry in sorted(index["candidates"].items()):
+        by_table.setdefault(entry["fold_table"], []).append(cid)
+    tried = len(index["candidates"])
+    return {
+        "count": round_number, "candidates_tried": tried,
+        "scored_on": {index["fold_tables"].get(t, t): ids for t, ids in sorted(by_table.items())},
+        "current_folds_sha256": folds_sha256,
+        "text": f"chosen after {round_number} round{'s' if round_number != 1 else ''}, {tried} candidate"
+                f"{'s' if tried != 1 else ''} tried in all",
+    }
+
+
+def optimism_over_history(exp: Path, index: dict[str, Any], dev: pd.DataFrame, positions: pd.Series, target: str,
+                          primary: str, task: str, winner: str, raw: float, folds_sha256: str, draws: int,
+                          seed: int) -> dict[str, Any]:
+    """The winner's optimism counting every candidate ever tallied (history/), not only the current set.
+
+    BBC-CV draws over every complete candidate of every round; Tibshirani–Tibshirani compares the winner's
+    fold scores with the best of every candidate scored on the current fold table.
+    """
+    from .history import candidates_on, fits_of, oof_by_repeat
+
+    same_folds = candidates_on(index, folds_sha256)
+    matrix = stats.fold_score_matrix(fits_of(exp, index, same_folds), primary).dropna(axis=1)
+    tt = stats.tibshirani_bias(matrix, winner) if winner in matrix.columns else None
+    classes = sorted(pd.unique(dev[target]).tolist()) if task == "classification" else None
+    complete = sorted(c for c, e in index["candidates"].items() if e["complete"])
+    bbc, left_out = None, []
+    if len(dev) >= 2:
+        rows = positions.reindex(dev[KEY]).to_numpy()
+        arrays, left_out = oof_by_repeat(exp, index, complete, rows, classes)
+        if arrays and arrays[0]:
+            scorer = stats.sklearn_scorer(primary, task, classes)
+            bbc = stats.bbc_cv(arrays, dev[target].to_numpy(), scorer, draws=draws, seed=seed)
+    summary = stats.optimism_summary(raw, tt, bbc)
+    summary.update({
+        "metric": primary, "winner": winner, "scope": "every candidate tried in every selection round",
+        "tibshirani_candidates": len(matrix.columns), "bbc_candidates": len(complete) - len(left_out),
+        "left_out": left_out,
+        "note": ("optimism = raw CV mean - corrected estimate (score units; positive = the raw mean flatters the "
+                 "winner), counting every candidate tried in every round: BBC-CV (Tsamardinos, Greasidou & "
+                 "Borboudakis, Machine Learning 107, 2018) over the stored out-of-fold predictions of all of them; "
+                 "Tibshirani & Tibshirani (Ann. Appl. Stat. 3(2), 2009) over those scored on the current folds."),
+    })
+    if summary["tibshirani"] is not None:
+        folds_per_repeat = int(matrix.index.get_level_values("fold").nunique())
+        summary["tibshirani"]["folds_per_repeat"] = folds_per_repeat
+        caution = stats.tibshirani_caution(folds_per_repeat)
+        if caution:
+            summary["tibshirani"]["caution"] = caution
+    if summary["bbc"] is not None:
+        summary["bbc"]["seed"] = seed
+    return summary
+
+
 def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates: dict[str, dict[str, Any]],
           metrics: list[str], selection: dict[str, Any], simplicity: dict[str, dict[str, str]], target: str,
           task: str, expected_folds: int, ranking_path: str, choice_path: str, plot_path: str, ledger_path: str,
-          folds_path: str, rule_name: str | None = None, scope: str = "main") -> dict[str, Any]:
-    """Write ranking.parquet, choice.json and the ranking plot; return the choice."""
+          folds_path: str, rule_name: str | None = None, scope: str = "main",
+          round_path: str | None = None) -> dict[str, Any]:
+    """Write ranking.parquet, choice.json and the ranking plot; return the choice.
+
+    With ``round_path`` (the experiment's own tally, not a nested one) the candidates are also archived in
+    history/ and the optimism estimates count every candidate tried in every selection round.
+    """
     fits = collect(fit_paths)
     ranking = summarise(fits, metrics, expected_folds)
     primary = metrics[0]
@@ -247,17 +310,35 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
         ranking = add_comparison(ranking, matrix, winner["candidate"], primary, n_train, n_val)
     else:
         ranking = ranking.assign(diff_vs_winner=np.nan, diff_se=np.nan, t=np.nan, p=np.nan)
-    dev = pd.read_parquet(dev_path, columns=[KEY, target])
+    dev_all = pd.read_parquet(dev_path, columns=[KEY, target])
     # Rows validated in every repeat (all inner rows for complete schemes; holdout and forward folds
     # validate some rows only). Nested: the fold table lists the inner rows only.
     folds_table = pd.read_parquet(folds_path, columns=[KEY, "repeat", "fold"])
     per_repeat = [frozenset(part.loc[part["fold"].notna(), KEY]) for _, part in folds_table.groupby("repeat")]
     every = set(per_repeat[0]) if len(set(per_repeat)) == 1 else set()  # BBC: the same rows in every repeat
-    dev = dev[dev[KEY].isin(every)]
-    oof = pd.concat([pd.read_parquet(p) for p in sorted(oof_paths)], ignore_index=True)
-    oof = oof[oof[KEY].isin(every)]
+    dev = dev_all[dev_all[KEY].isin(every)]
+    oof_all = pd.concat([pd.read_parquet(p) for p in sorted(oof_paths)], ignore_index=True)
+    oof = oof_all[oof_all[KEY].isin(every)]
     optimistic = optimism(oof, dev, target, primary, task, matrix, winner["candidate"],
                           int(selection["bootstrap"]), int(selection["seed"]))
+    rounds_info: dict[str, Any] | None = None
+    if round_path is not None:
+        from .history import archive
+
+        round_number = int(read_json(round_path)["round"])
+        positions = pd.Series(np.arange(len(dev_all)), index=dev_all[KEY].to_numpy())
+        index = archive(Path(ranking_path).parent, fits, oof_all, positions, sha256_file(folds_path), round_number,
+                        candidates)
+        current = set(ranking["candidate"])
+        rounds_info = rounds_summary(index, round_number, sha256_file(folds_path))
+        if set(index["candidates"]) - current:  # earlier rounds tried more: count them too
+            this_round = optimistic
+            optimistic = optimism_over_history(Path(ranking_path).parent, index, dev, positions, target, primary,
+                                               task, winner["candidate"], float(matrix[winner["candidate"]].mean()),
+                                               sha256_file(folds_path), int(selection["bootstrap"]),
+                                               int(selection["seed"]))
+            optimistic["this_round_only"] = {k: this_round.get(k) for k in ("tibshirani", "bbc")}
+        optimistic["candidates_counted"] = rounds_info["candidates_tried"]
     n_candidates = int(ranking["candidate"].nunique())
     failed = sorted(set(ranking.loc[~ranking["complete"], "candidate"]))
     primary_rows = ranking[ranking["metric"] == primary].set_index("candidate")
@@ -283,6 +364,7 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
                             "corrected resampled t-test (Nadeau & Bengio 2003), two-sided, folds - 1 degrees of "
                             "freedom. Folds overlap, so p-values are approximate; many comparisons are made."),
         "optimism": optimistic,
+        **({"rounds": rounds_info} if rounds_info is not None else {}),
         "uncertainty_note": SE_NOTE,
         "candidates": n_candidates,
         "failed_candidates": failed,
@@ -302,5 +384,8 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
         "failed": len(failed), "fit_files": len(fit_paths), "ranking_sha256": sha256_file(ranking_path),
         "choice_sha256": sha256_file(choice_path), "plot": str(Path(plot_path).name),
         "bbc_seed": int(selection["seed"]), "bbc_draws": int(selection["bootstrap"]),
+        **({"round": rounds_info["count"], "candidates_tried": rounds_info["candidates_tried"],
+            "history_index_sha256": sha256_file(Path(ranking_path).parent / "history" / "index.json")}
+           if rounds_info is not None else {}),
     }, rule=rule_name)
     return choice

@@ -1,16 +1,18 @@
 # Config loading, parse-time guards, wildcard constraints and input functions.
 import json
+import os
 import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(workflow.basedir) / "scripts"))
 
-from holdfast.plan import code_hash, job_script, prepare_or_exit  # noqa: E402
+from holdfast.plan import checked_config_or_exit, code_hash, job_script, prepare_or_exit  # noqa: E402
 
-if not workflow.overwrite_configfiles:
-    # The demo experiment; --configfile replaces it entirely (no merging of two experiments).
-    workflow.configfile("config/config.yaml")
-
+# The config is read as plain data by holdfast's strict reader (no tags, no template marker, no repeated keys):
+# the demo's config/config.yaml when no --configfile is given, and every --configfile is read again and must
+# give what Snakemake loaded (`holdfast run` hands Snakemake such a checked copy; see README).
+checked_config_or_exit(config, [str(f) for f in workflow.overwrite_configfiles], workflow.config_settings.config,
+                       "config/config.yaml")
 PLAN = prepare_or_exit(config, main=workflow.is_main_process)
 # Every rule's body: one generated script that hands the job to holdfast.steps.run (see plan.job_script).
 JOB_SCRIPT = job_script()
@@ -62,27 +64,31 @@ def max_threads():
 
 
 def all_targets():
+    """The development loop's outputs; the verdict only once an opening made it (holdfast open)."""
+    if PLAN.closed:  # only what exists or can be restored: nothing up to the opening can run
+        verdict = PLAN.path("final/verdict.json")
+        return [verdict] if Path(verdict).exists() or verdict_to_restore() else []
     targets = [
         PLAN.path("ranking.parquet"),
         PLAN.path("choice.json"),
-        PLAN.path("final/verdict.json"),
-        PLAN.path("audit.json"),
+        PLAN.path("model/model.skops"),
+        PLAN.path("model/card.json"),
     ]
     if PLAN.config["nested"]["k"]:
         targets.append(PLAN.path("nested/summary.json"))
     return targets
 
 
-onsuccess:
-    # Closing lines: where the audit stands (the audit rule writes it; the run never hides a failure)
-    # and, only when it passed, the headline numbers that record vouches for (as `holdfast audit`).
-    audit_path = Path(PLAN.path("audit.json"))
-    if audit_path.exists():
-        from holdfast.headline import lines
+def verdict_to_restore():
+    """The archive copy to put back when the verdict of a closed experiment was deleted ('' otherwise)."""
+    return PLAN.verdict_to_restore()
 
-        result = json.loads(audit_path.read_text())
-        state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
-        for line in lines(PLAN.exp) if result["passed"] else []:
+
+onsuccess:
+    # Closing lines from an audit made now (never a stale audit.json), the receipt with the ledger head, and the
+    # headline numbers only when the audit passed. `holdfast run` and `holdfast open` do this themselves.
+    if not os.environ.get("HOLDFAST_CLOSING_BY_CLI"):
+        from holdfast.closing import finish
+
+        for line in finish(PLAN.exp)[1]:
             print(f"holdfast: {line}")
-        print(f"holdfast: experiment '{PLAN.config['experiment']}': audit {state} "
-              f"(test set opened {result['test_set_opened']} time(s)); details: holdfast audit {PLAN.exp}")

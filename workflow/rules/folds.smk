@@ -2,7 +2,6 @@
 rule assign_folds:
     input:
         dev=PLAN.path("dev.parquet"),
-        manifest=PLAN.path("sealed/manifest.json"),
     output:
         folds=PLAN.path("folds.parquet"),
         summary=PLAN.path("folds_summary.parquet"),
@@ -13,6 +12,7 @@ rule assign_folds:
         spec=SPEC,
         folds=json.dumps(PLAN.config["folds"], sort_keys=True),
         test=PLAN.path("sealed/test.parquet"),
+        manifest=PLAN.path("sealed/manifest.json"),
         task=PLAN.config["task"],
         leakage=json.dumps(PLAN.config["leakage"], sort_keys=True),
         ledger=LEDGER,

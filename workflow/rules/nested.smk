@@ -11,6 +11,7 @@ use rule assign_folds as assign_outer_folds with:
         spec=SPEC,
         folds=json.dumps(PLAN.outer_fold_spec(), sort_keys=True),
         test=PLAN.path("sealed/test.parquet"),
+        manifest=PLAN.path("sealed/manifest.json"),
         task=PLAN.config["task"],
         leakage=json.dumps(PLAN.config["leakage"], sort_keys=True),
         ledger=LEDGER,
@@ -21,7 +22,6 @@ use rule assign_folds as assign_outer_folds with:
 use rule assign_folds as nested_assign_folds with:
     input:
         dev=PLAN.path("dev.parquet"),
-        manifest=PLAN.path("sealed/manifest.json"),
         outer=PLAN.path("nested/outer_folds.parquet"),
     output:
         folds=PLAN.path("nested/o{outer}/folds.parquet"),

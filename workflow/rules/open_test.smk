@@ -1,11 +1,12 @@
-# open_test: the one read of the sealed test set (refused a second time; see holdfast.opening).
+# open_test: the one read of the sealed test set (refused a second time; see holdfast.opening). It runs only on
+# the confirmation `holdfast open` writes (final/request.json), which no rule makes.
 rule open_test:
     input:
+        request=PLAN.path("final/request.json"),
         model=PLAN.path("model/model.skops"),
         card=PLAN.path("model/card.json"),
         choice=PLAN.path("choice.json"),
         ranking=PLAN.path("ranking.parquet"),
-        manifest=PLAN.path("sealed/manifest.json"),
     output:
         verdict=PLAN.path("final/verdict.json"),
     log:

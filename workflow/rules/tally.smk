@@ -1,6 +1,26 @@
+# record_round: the selection set-up about to be tallied; a change after a ranking existed is a new round.
+rule record_round:
+    input:
+        dev=PLAN.path("dev.parquet"),
+    output:
+        round=PLAN.path("rounds/current.json"),
+    log:
+        PLAN.path("logs/record_round.log"),
+    params:
+        setup=PLAN.round_setup(),
+        ledger=LEDGER,
+        code=code_hash("record_round"),
+    resources:
+        mem_mb=1000,
+        runtime=10,
+    script:
+        JOB_SCRIPT
+
+
 # tally: per-candidate summaries over folds, the ranking and the choice of winner.
 rule tally:
     input:
+        round=PLAN.path("rounds/current.json"),
         fits=fits_of("fits"),
         oof=fits_of("oof"),
         folds=PLAN.path("folds.parquet"),

@@ -1,0 +1,122 @@
+"""Every candidate ever tallied, kept for the optimism estimates of later rounds.
+
+A family edited between rounds rewrites its ``fits/`` and ``oof/`` files, so the tally copies what it saw of
+each candidate into ``history/`` first: its fit records and its out-of-fold predictions, keyed by candidate and
+by the fold table they were scored on. The optimism estimates then count every candidate ever tried, not only
+the current set: BBC-CV draws over all of them (out-of-fold predictions are comparable across fold tables),
+and the Tibshirani–Tibshirani estimate uses every candidate scored on the current fold table (it needs the
+same folds). Predictions are stored by row position in ``dev.parquet`` (fixed at the seal), not by row key,
+so hundreds of candidates stay small in memory.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from ._io import read_json, sha256_file, write_json, write_parquet
+from .dataset import KEY
+
+HISTORY = "history"
+INDEX = "history/index.json"
+
+
+def table_id(folds_sha256: str) -> str:
+    """Short name of a fold table inside history/."""
+    return folds_sha256[:16]
+
+
+def read_index(exp: Path) -> dict[str, Any]:
+    """The history index: candidate id → family, fold table, first round and files (empty before any tally)."""
+    path = exp / INDEX
+    return read_json(path) if path.exists() else {"candidates": {}, "fold_tables": {}}
+
+
+def archive(exp: Path, fits: pd.DataFrame, oof: pd.DataFrame, positions: pd.Series, folds_sha256: str,
+            round_number: int, candidates: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Copy each current candidate's fit records and out-of-fold outputs into history/ (once per fold table).
+
+    ``positions`` maps row key → position in dev.parquet. Returns the updated index, which is written too.
+    """
+    index = read_index(exp)
+    table = table_id(folds_sha256)
+    index["fold_tables"][table] = folds_sha256
+    for cid, part in fits.groupby("candidate", sort=True):
+        entry = index["candidates"].get(cid)
+        if entry is not None and entry["fold_table"] == table:
+            continue
+        complete = bool((part["status"] == "ok").all())
+        fit_file = f"{HISTORY}/{table}/fits/{cid}.parquet"
+        write_parquet(exp / fit_file, part.reset_index(drop=True))
+        files = {"fits": fit_file, "fits_sha256": sha256_file(exp / fit_file)}
+        mine = oof[oof["candidate"] == cid]
+        if complete and len(mine):
+            stored = pd.DataFrame({"pos": positions.reindex(mine[KEY]).to_numpy(dtype="int64").astype("int32"),
+                                   "repeat": mine["repeat"].to_numpy(dtype="int16")})
+            for column in [c for c in mine.columns if c == "prediction" or str(c).startswith(("proba_", "decision"))]:
+                stored[column] = mine[column].to_numpy()
+            stored = stored.sort_values(["repeat", "pos"], kind="stable").reset_index(drop=True)
+            oof_file = f"{HISTORY}/{table}/oof/{cid}.parquet"
+            write_parquet(exp / oof_file, stored)
+            files.update({"oof": oof_file, "oof_sha256": sha256_file(exp / oof_file)})
+        index["candidates"][cid] = {
+            "family": candidates.get(cid, {}).get("family", str(part["family"].iloc[0])),
+            "fold_table": table, "first_round": int(entry["first_round"]) if entry else round_number,
+            "complete": complete, **files}
+    write_json(exp / INDEX, index)
+    return index
+
+
+def candidates_on(index: dict[str, Any], folds_sha256: str) -> list[str]:
+    """Complete candidates scored on this fold table."""
+    table = table_id(folds_sha256)
+    return sorted(c for c, e in index["candidates"].items() if e["fold_table"] == table and e["complete"])
+
+
+def fits_of(exp: Path, index: dict[str, Any], ids: list[str]) -> pd.DataFrame:
+    """The archived fit records of these candidates, concatenated."""
+    return pd.concat([pd.read_parquet(exp / index["candidates"][c]["fits"]) for c in ids], ignore_index=True)
+
+
+def oof_by_repeat(exp: Path, index: dict[str, Any], ids: list[str], rows: np.ndarray,
+                  classes: list[Any] | None) -> tuple[list[dict[str, dict[str, np.ndarray]]], list[str]]:
+    """Out-of-fold outputs of these candidates on ``rows`` (dev positions), one mapping per shared repeat.
+
+    A candidate without a prediction for every row in each shared repeat is left out and named in the
+    second return value (it cannot be compared row by row with the others).
+    """
+    loaded: dict[str, pd.DataFrame] = {}
+    left_out: list[str] = []
+    for cid in ids:
+        entry = index["candidates"][cid]
+        if "oof" not in entry:
+            left_out.append(cid)
+            continue
+        loaded[cid] = pd.read_parquet(exp / entry["oof"])
+    if not loaded:
+        return [], left_out
+    shared = sorted(set.intersection(*(set(frame["repeat"].unique()) for frame in loaded.values())))
+    proba = [f"proba_{c}" for c in classes] if classes is not None else None
+    out: list[dict[str, dict[str, np.ndarray]]] = [{} for _ in shared]
+    for cid, frame in loaded.items():
+        per_repeat = []
+        for repeat in shared:
+            part = frame[frame["repeat"] == repeat].set_index("pos")
+            if not pd.Index(rows).isin(part.index).all():
+                break
+            part = part.loc[rows]
+            outputs = {"predict": part["prediction"].to_numpy()}
+            if proba and all(c in part.columns for c in proba) and part[proba].notna().all().all():
+                outputs["predict_proba"] = part[proba].to_numpy(dtype=float)
+            if "decision" in part.columns and part["decision"].notna().all():
+                outputs["decision_function"] = part["decision"].to_numpy(dtype=float)
+            per_repeat.append(outputs)
+        if len(per_repeat) != len(shared):
+            left_out.append(cid)
+            continue
+        for r, outputs in enumerate(per_repeat):
+            out[r][cid] = outputs
+    return out, sorted(left_out)
