@@ -205,10 +205,60 @@ def _check_openings(exp: Path, entries: list[dict[str, Any]], model_sha: str | N
     return count
 
 
-def audit(exp_dir: str) -> dict[str, Any]:
-    """Check one experiment directory; return {'passed': bool, 'problems': [...], ...}."""
+def parse_head(text: str) -> tuple[int, str]:
+    """'SEQ:HASH' (as a receipt prints it) into its parts; ValueError when it is not of that form."""
+    seq, _, digest = text.strip().partition(":")
+    if not seq.isdigit() or len(digest) != 64 or any(c not in "0123456789abcdef" for c in digest):
+        raise ValueError(f"expected head 'SEQ:HASH' (a sequence number, a colon and a 64-character hash); got {text!r}")
+    return int(seq), digest
+
+
+def _check_anchor(entries: list[dict[str, Any]], expect_head: tuple[int, str] | None, out: list[Problem]) -> None:
+    """The entry a receipt anchored must still be in the ledger, unchanged, at its position."""
+    if expect_head is None:
+        return
+    seq, digest = expect_head
+    if seq >= len(entries):
+        out.append(Problem("head-missing", f"the receipt's head is entry {seq}, but the ledger has only "
+                           f"{len(entries)} entries: lines were cut off the end since the receipt was written"))
+    elif entries[seq].get("hash") != digest:
+        out.append(Problem("head-changed", f"ledger entry {seq} has hash {str(entries[seq].get('hash'))[:16]}…, not "
+                           f"the {digest[:16]}… the receipt recorded: the ledger was rewritten up to that entry"))
+
+
+def _check_signatures(entries: list[dict[str, Any]], public_key: str | None, out: list[Problem]) -> str | None:
+    """Every line signed by the key (the auditor's, else the one recorded at the seal); names bad lines by seq."""
+    seals = ledger.events(entries, "seal")
+    recorded = seals[0]["details"].get("public_key") if seals else None
+    if public_key is not None and recorded is not None and public_key != recorded:
+        out.append(Problem("public-key-mismatch", "the seal recorded another public key than the one given: the "
+                           "ledger was re-signed with another key"))
+    key = public_key or recorded
+    if key is None:
+        return None
+    from .signing import verify
+
+    unsigned = [e.get("seq") for e in entries if not e.get("sig")]
+    wrong = [e.get("seq") for e in entries if e.get("sig") and not verify(key, str(e.get("hash")), str(e["sig"]))]
+    if unsigned:
+        out.append(Problem("unsigned-line", f"ledger line(s) with seq {', '.join(map(str, unsigned[:10]))} carry no "
+                           "signature although the experiment is signed"))
+    if wrong:
+        out.append(Problem("bad-signature", f"ledger line(s) with seq {', '.join(map(str, wrong[:10]))} are not "
+                           "signed by the experiment's key: they were written or rewritten without it"))
+    return key
+
+
+def audit(exp_dir: str, expect_head: tuple[int, str] | None = None, public_key: str | None = None) -> dict[str, Any]:
+    """Check one experiment directory; return {'passed': bool, 'problems': [...], ...}.
+
+    ``expect_head`` (from a receipt) must still be in the ledger at its position; ``public_key`` (raw base64)
+    pins the key every line must be signed with (default: the key recorded at the seal, if any).
+    """
     exp = Path(exp_dir)
     entries, problems = ledger.verify_chain(exp / LEDGER)
+    _check_anchor(entries, expect_head, problems)
+    signed_with = _check_signatures(entries, public_key, problems)
     manifest = _check_seal(exp, entries, problems)
     openings = 0
     if manifest is not None:
@@ -224,6 +274,9 @@ def audit(exp_dir: str) -> dict[str, Any]:
         "ledger_head": entries[-1]["hash"] if entries else None,
         "ledger_head_seq": entries[-1].get("seq") if entries else None,
         "test_set_opened": openings,
+        "signed_with": signed_with,
+        "head_checked": f"{expect_head[0]}:{expect_head[1]}" if expect_head else None,
+        "seen_before": (manifest or {}).get("seen_before") if isinstance(manifest, dict) else None,
         "checks": ["hash chain", "seal anchor", "sealed and development files", "dev/test overlap", "fold coverage",
                    "folds and fits against the ledger", "choice, ranking and model against the ledger",
                    "openings and verdict"],
@@ -243,4 +296,14 @@ def report(result: dict[str, Any]) -> str:
     lines = [f"{head}: experiment '{result['experiment']}', {result['ledger_entries']} ledger entries, "
              f"test set opened {result['test_set_opened']} time(s)"]
     lines += [f"  - [{p['code']}] {p['message']}" for p in result["problems"]]
+    if result.get("head_checked"):
+        lines.append(f"  anchored head {result['head_checked'][:24]}…: "
+                     + ("found unchanged" if not any(p["code"].startswith("head-") for p in result["problems"])
+                        else "NOT found unchanged"))
+    if result.get("signed_with"):
+        lines.append(f"  signatures checked against public key {result['signed_with'][:16]}…")
+    if result.get("seen_before"):
+        listed = ", ".join(o["experiment"] for o in result["seen_before"].get("overlaps", []))
+        lines.append(f"  note: test rows seen before (opened by {listed}); reason given: "
+                     f"{result['seen_before'].get('reason')}")
     return "\n".join(lines)

@@ -59,8 +59,11 @@ def closing_lines(exp: Path, result: dict[str, Any], receipt: Path) -> list[str]
     out: list[str] = []
     name = result["experiment"]
     if result["passed"]:
+        opened = (exp / VERDICT).exists()
+        if not opened and (exp / CHOICE).exists():
+            out += ranking_lines(exp) + choice_lines(exp)
         out += headline(exp)
-        if not (exp / VERDICT).exists() and (exp / CHOICE).exists():
+        if not opened and (exp / CHOICE).exists():
             out.append(f"test set sealed, not opened: open it once, when you have decided, with "
                        f"'holdfast open {exp}'")
     state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
@@ -69,6 +72,40 @@ def closing_lines(exp: Path, result: dict[str, Any], receipt: Path) -> list[str]
     out.append(f"ledger head {result.get('ledger_head_seq')}:{str(result.get('ledger_head'))[:16]}… written to "
                f"{receipt}: keep it where the experiment's owner cannot write (a review, a commit)")
     return out
+
+
+CORRECTION_LABELS = (("bbc", "BBC-CV"), ("tibshirani", "Tibshirani–Tibshirani"))
+
+
+def ranking_lines(exp: Path, top: int = 5) -> list[str]:
+    """The top of the ranking on the primary metric: rank, candidate, mean and corrected standard error."""
+    import pyarrow.parquet as pq
+
+    choice = read_json(exp / CHOICE)
+    metric = choice["metric"]
+    rows = [r for r in pq.read_table(exp / "ranking.parquet", columns=[
+        "candidate", "family", "params", "metric", "mean", "se_corrected", "rank", "complete"]).to_pylist()
+        if r["metric"] == metric]
+    rows.sort(key=lambda r: r["rank"])
+    out = [f"ranking by {metric} (greater is better), top {min(top, len(rows))} of {len(rows)}:"]
+    for r in rows[:top]:
+        mark = "  <- winner" if r["candidate"] == choice["winner"]["candidate"] else ""
+        out.append(f"  {r['rank']:>3}. {r['family']} {r['candidate']} {r['params']}: {r['mean']:.4f} "
+                   f"(corrected se {r['se_corrected']:.4f}){mark}")
+    return out
+
+
+def choice_lines(exp: Path) -> list[str]:
+    """The choice in one line: winner, rule, raw and corrected CV estimates, rounds and candidates tried."""
+    choice = read_json(exp / CHOICE)
+    winner, metric = choice["winner"], choice["metric"]
+    optimism = choice.get("optimism") or {}
+    corrected = [f"{label} {optimism[key]['corrected']:.4f}" for key, label in CORRECTION_LABELS
+                 if (optimism.get(key) or {}).get("corrected") is not None]
+    rounds = (choice.get("rounds") or {}).get("text", "")
+    return [f"winner {winner['family']} {winner['candidate']} by {choice['rule']}: CV {metric} {winner['mean']:.4f}"
+            + (f" (corrected for selection: {', '.join(corrected)})" if corrected else "")
+            + (f"; {rounds}" if rounds else "")]
 
 
 def verdict_hash(exp: Path) -> str | None:

@@ -409,7 +409,7 @@ def _selection_part(config: dict[str, Any]) -> dict[str, Any]:
     # Resources decide where and how fast a fit runs, never what it computes: not part of the fingerprint.
     part["candidates"] = {name: {k: v for k, v in spec.items() if k not in RESOURCE_KEYS}
                           for name, spec in config["candidates"].items()}
-    part["test"] = {k: v for k, v in config["test"].items() if k != "reopen_reasons"}
+    part["test"] = {k: v for k, v in config["test"].items() if k not in ("reopen_reasons", "seen_rows_reason")}
     part["data"] = {k: v for k, v in config["data"].items() if k not in ("path", "allow_outside_project")}
     return part
 

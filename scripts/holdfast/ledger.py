@@ -25,6 +25,7 @@ from .errors import LedgerError
 
 GENESIS = "0" * 64
 LEDGER_NAME = "ledger.jsonl"
+SIGNING = "signing.json"  # beside the ledger: where the private key is and its public half (written at the seal)
 
 
 def _utc_now() -> str:
@@ -44,9 +45,20 @@ def actor(rule: str | None = None) -> dict[str, Any]:
 
 
 def line_hash(entry: dict[str, Any]) -> str:
-    """The hash a ledger line must carry: SHA-256 of its canonical JSON without 'hash'."""
-    body = {k: v for k, v in entry.items() if k != "hash"}
+    """The hash a ledger line must carry: SHA-256 of its canonical JSON without 'hash' (and without 'sig')."""
+    body = {k: v for k, v in entry.items() if k not in ("hash", "sig")}
     return sha256_text(canonical_json(body))
+
+
+def _signer(ledger: Path) -> Any | None:
+    """The Ed25519 private key this experiment's lines are signed with, or None when signing is off."""
+    settings = ledger.parent / SIGNING
+    if not settings.exists():
+        return None
+    from .signing import load_private_key
+
+    with open(settings, encoding="utf-8") as handle:
+        return load_private_key(json.load(handle)["private_key"])
 
 
 @contextmanager
@@ -93,6 +105,11 @@ def append(path: str | os.PathLike[str], event: str, details: dict[str, Any],
             "prev": GENESIS if last is None else str(last["hash"]),
         }
         entry["hash"] = line_hash(entry)
+        key = _signer(ledger)
+        if key is not None:
+            from .signing import sign
+
+            entry["sig"] = sign(key, entry["hash"])
         line = (canonical_json(entry) + "\n").encode("utf-8")
         fd = os.open(ledger, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
         try:

@@ -304,6 +304,12 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
                              "agreement: where those CV estimates sit against the test interval, in plain words."),
             "caution": CAUTION,
         }
+        if choice.get("rounds"):
+            verdict["selection"] = {"rounds": choice["rounds"]["count"],
+                                    "candidates_tried": choice["rounds"]["candidates_tried"],
+                                    "text": choice["rounds"]["text"]}
+        if manifest.get("seen_before"):
+            verdict["test_rows_seen_before"] = manifest["seen_before"]
         if number > 1:
             verdict["reopen_reasons"] = reopen_reasons[: number - 1]
             verdict["warning"] = (f"the test set was opened {number} times; the test estimate is compromised "

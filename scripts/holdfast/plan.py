@@ -341,6 +341,22 @@ def _forced_guard(plan: Plan, flags: dict[str, Any]) -> None:
                              "the verdict\n")
 
 
+def _signing_unchanged(config: dict[str, Any], manifest: dict[str, Any]) -> None:
+    """Signing is fixed at the seal: a key named later, or another key, is refused (lines would not verify)."""
+    path = config["ledger"]["signing_key"]
+    recorded = manifest.get("public_key")
+    if path is None:
+        return
+    from .signing import load_private_key, public_key_text
+
+    if recorded is None:
+        raise ConfigError(f"config key 'ledger.signing_key' is set but experiment '{config['experiment']}' was sealed "
+                          "without signing; signing is fixed at the seal: remove the key or name a new experiment")
+    if public_key_text(load_private_key(path)) != recorded:
+        raise ConfigError(f"config key 'ledger.signing_key': '{path}' is not the key experiment "
+                          f"'{config['experiment']}' was sealed with; restore that key")
+
+
 def _check_encoders(config: dict[str, Any], text_columns: list[str]) -> None:
     """A family that declares no categorical encoder cannot take text features: say so before any fit."""
     if not text_columns:
@@ -372,6 +388,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         _seal_unchanged(config, manifest, exp)
         if main:
             _data_unchanged(config, manifest)
+            _signing_unchanged(config, manifest)
         task = manifest["spec"]["task"]
         if main and config["folds"]["scheme"] not in ("kfold", "loo"):
             import pandas as pd
@@ -402,6 +419,13 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             if task == "classification":
                 check_development_classes(dev[spec["target"]], config["data"]["path"])
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
+            from .overlap import check as check_overlap
+
+            check_overlap(keys[test_rows], exp.parent, config["experiment"], config["test"]["seen_rows_reason"])
+            if config["ledger"]["signing_key"]:
+                from .signing import check_key_location
+
+                check_key_location(config["ledger"]["signing_key"], exp.parent)
     config = cfg.with_task(config, task)
     families = expand(config)
     from .foldspec import MAX_FIT_JOBS, fold_ids

@@ -184,8 +184,18 @@ def _interrupted_seal(out: Path, test: pd.DataFrame, data_sha256: str, sealed_sp
     return None
 
 
+def _start_signing(out: Path, signing_key: str) -> str:
+    """Write signing.json beside the ledger (from now on every line is signed); return the public key."""
+    from .signing import load_private_key, public_key_text
+
+    public = public_key_text(load_private_key(signing_key))
+    write_json(out / ledger.SIGNING, {"private_key": str(Path(signing_key).resolve()), "public_key": public})
+    return public
+
+
 def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str | os.PathLike[str],
-         experiment: str, rule: str | None = None, leakage: dict[str, Any] | None = None) -> dict[str, Any]:
+         experiment: str, rule: str | None = None, leakage: dict[str, Any] | None = None,
+         seen_rows_reason: str | None = None, signing_key: str | None = None) -> dict[str, Any]:
     """Seal the test partition of an experiment and return its manifest.
 
     Refuses to run when the experiment already has a manifest: the seal happens once per
@@ -214,6 +224,9 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         raise DataError(f"{duplicates} sealed test row(s) of '{data_path}' repeat the features of a development row "
                         "(exact duplicates); remove them or set leakage.duplicates: warn")
     alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
+    from .overlap import check as check_overlap
+
+    seen_before = check_overlap(test[KEY], out.parent, experiment, seen_rows_reason)
     time_check = time_order_at_seal(dev, test, spec, guards.get("time_order", "note"), str(data_path))
 
     with ledger.locked(out / "seal"):  # the checks above wrote nothing; from here on, one seal at a time
@@ -223,6 +236,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                                     "test set")
         fingerprint = data_fingerprint(data_path)
         sealed_spec = {**spec, "task": task}
+        public_key = _start_signing(out, signing_key) if signing_key else None
         earlier = _interrupted_seal(out, test, fingerprint["sha256"], sealed_spec, experiment)
         if not (out / TEST).exists():
             write_parquet(out / TEST, test, mode=0o444)
@@ -241,6 +255,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
             "leakage": {"duplicate_feature_rows_dev_test": duplicates, "single_feature": alarms,
                         "single_feature_threshold": float(guards["single_feature_threshold"]),
                         **({"time_order": time_check} if time_check else {})},
+            **({"seen_before": seen_before} if seen_before else {}),
+            **({"public_key": public_key} if public_key else {}),
         }
         if task == "classification":
             manifest["counts"]["classes"] = {
@@ -250,7 +266,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         entry = earlier or ledger.append(out / LEDGER, "seal", {
             "experiment": experiment, "data_sha256": fingerprint["sha256"], "spec": sealed_spec,
             "counts": manifest["counts"], "keys": manifest["keys"], "files": manifest["files"],
-            "leakage": manifest["leakage"],
+            "leakage": manifest["leakage"], **({"seen_before": seen_before} if seen_before else {}),
+            **({"public_key": public_key} if public_key else {}),
         }, rule=rule)
         if earlier and earlier["details"].get("files") != manifest["files"]:
             raise SealedAccessError(f"experiment '{experiment}': the interrupted seal recorded other file hashes than "

@@ -39,7 +39,9 @@ def seal(smk: Any) -> None:
     exp = str(Path(smk.output.manifest).parents[1])
     # Leakage settings come from the config too: a changed param would make Snakemake re-run the seal.
     manifest = run_seal(smk.config["data"]["path"], json.loads(smk.params.spec), exp, smk.params.experiment,
-                        rule=smk.rule, leakage=smk.config.get("leakage"))
+                        rule=smk.rule, leakage=smk.config.get("leakage"),
+                        seen_rows_reason=(smk.config.get("test") or {}).get("seen_rows_reason"),
+                        signing_key=(smk.config.get("ledger") or {}).get("signing_key"))
     print(f"sealed {manifest['counts']['test']} test rows; {manifest['counts']['dev']} development rows")
     leaks = manifest["leakage"]
     if leaks["duplicate_feature_rows_dev_test"]:

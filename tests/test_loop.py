@@ -1,0 +1,381 @@
+"""The development loop through the real CLI: run, change, run, open once; rounds, receipts, signing, overlaps.
+
+Every test drives `holdfast run` / `holdfast open` / `holdfast audit` (or plain Snakemake where that is the
+point) on scikit-learn's bundled breast cancer data (Wolberg, Street & Mangasarian, UCI, 1995; loaded by
+sklearn.datasets.load_breast_cancer) in a temporary folder.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import pytest
+import yaml
+from conftest import (
+    REPO,
+    breast_cancer_frame,
+    planned_jobs,
+    run_cli,
+    run_workflow,
+    small_classification_config,
+    tree_digest,
+    write_config,
+)
+from holdfast import ledger
+
+pytestmark = pytest.mark.slow
+
+
+def entries(exp: Path) -> list[dict[str, Any]]:
+    """The ledger's entries, parsed."""
+    return [json.loads(line) for line in (exp / "ledger.jsonl").read_text().splitlines()]
+
+
+def fit_families_since(exp: Path, seq: int) -> list[str]:
+    """Family of every fit job the ledger recorded after entry ``seq`` (one item per fit job)."""
+    return sorted(e["details"]["family"] for e in entries(exp) if e["event"] == "fit" and e["seq"] > seq)
+
+
+def edit(workdir: Path, change: Any, name: str = "config.yaml") -> None:
+    """Change the config file in place with ``change(config)``."""
+    config = yaml.safe_load((workdir / name).read_text())
+    change(config)
+    write_config(workdir, config, name)
+
+
+def ok(result: subprocess.CompletedProcess[str]) -> subprocess.CompletedProcess[str]:
+    """Assert a CLI call succeeded and return it."""
+    assert result.returncode == 0, result.stdout[-3000:] + result.stderr[-3000:]
+    return result
+
+
+@pytest.fixture
+def work(tmp_path: Path) -> Path:
+    """A project folder with the breast cancer data and conftest's small two-family config."""
+    breast_cancer_frame().to_csv(tmp_path / "data.csv", index=False)
+    write_config(tmp_path, small_classification_config())
+    return tmp_path
+
+
+# --- the loop: three rounds, only what changed re-runs, one opening --------------------------------------------------
+
+def test_run_change_run_add_run_open_counts_three_rounds_and_reruns_only_what_changed(work: Path) -> None:
+    exp = work / "results" / "bc"
+    first = ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    assert "test set sealed, not opened" in first.stdout
+    assert not (exp / "final" / "verdict.json").exists(), "a run must never open the test set"
+    assert fit_families_since(exp, -1) == ["logistic"] * 3 + ["tree"] * 3
+
+    edit(work, lambda c: c["candidates"]["tree"]["grid"].update(max_depth=[2, 4, 6]))
+    plan = run_workflow(work, "-n")
+    assert plan.returncode == 0, plan.stderr[-3000:]
+    jobs = planned_jobs(plan)
+    assert sorted(j for j in jobs if j.startswith("fit_family")) == [f"fit_family[tree,0,{f}]" for f in range(3)]
+    assert "seal" not in jobs and "assign_folds" not in jobs and "open_test" not in jobs
+    head = entries(exp)[-1]["seq"]
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    assert fit_families_since(exp, head) == ["tree"] * 3
+
+    edit(work, lambda c: c["candidates"].update(knn={
+        "estimator": "sklearn.neighbors.KNeighborsClassifier", "preprocess": {"scale": "standard"},
+        "grid": {"n_neighbors": [5, 15]}}))
+    plan = run_workflow(work, "-n")
+    assert sorted(j for j in planned_jobs(plan) if j.startswith("fit_family")) == [
+        f"fit_family[knn,0,{f}]" for f in range(3)]
+    head = entries(exp)[-1]["seq"]
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    assert fit_families_since(exp, head) == ["knn"] * 3
+
+    opened = ok(run_cli(work, "open", "results/bc", "--yes", "--cores", "2"))
+    assert "chosen after 3 selection round(s), 9 candidate(s) tried in all" in opened.stdout
+    rounds = [e["details"] for e in entries(exp) if e["event"] == "round"]
+    assert [r["round"] for r in rounds] == [1, 2, 3]
+    assert rounds[0]["changes"] is None and rounds[0]["ranking_seen_sha256"] is None
+    second, third = rounds[1]["changes"], rounds[2]["changes"]
+    assert list(second["families_altered"]) == ["tree"] and len(second["families_altered"]["tree"]
+                                                                 ["candidates_added"]) == 1
+    assert second["families_added"] == [] and second["families_removed"] == []
+    assert third["families_added"] == ["knn"] and third["families_altered"] == {}
+    assert all(r["ranking_seen_sha256"] for r in rounds[1:]), "a later round names the ranking that was seen"
+    verdict = json.loads((exp / "final" / "verdict.json").read_text())
+    assert verdict["selection"] == {"rounds": 3, "candidates_tried": 9,
+                                    "text": "chosen after 3 rounds, 9 candidates tried in all"}
+    choice = json.loads((exp / "choice.json").read_text())
+    assert choice["optimism"]["candidates_counted"] == 9 and choice["candidates"] == 9
+
+
+def test_optimism_counts_candidates_of_earlier_rounds(work: Path) -> None:
+    """Eight trees that differ only by their seed, then only the best of them kept: the optimism over both rounds
+    must exceed the last round's alone (selection among noise is optimistic; one candidate has nothing to pick)."""
+    exp = work / "results" / "bc"
+    edit(work, lambda c: c.update(candidates={"tree": {
+        "estimator": "sklearn.tree.DecisionTreeClassifier", "params": {"max_features": 0.3},
+        "grid": {"random_state": list(range(8))}}}, metrics=["accuracy"]))
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    winner = json.loads((exp / "choice.json").read_text())["winner"]["spec"]["params"]["random_state"]
+    edit(work, lambda c: c["candidates"]["tree"]["grid"].update(random_state=[winner]))
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    choice = json.loads((exp / "choice.json").read_text())
+    assert choice["rounds"]["count"] == 2 and choice["rounds"]["candidates_tried"] == 8
+    assert choice["candidates"] == 1
+    everything, last_round = choice["optimism"], choice["optimism"]["this_round_only"]
+    assert everything["bbc"]["optimism"] > last_round["bbc"]["optimism"]
+    assert everything["tibshirani"]["optimism"] > last_round["tibshirani"]["optimism"] == 0.0
+    assert everything["bbc_candidates"] == 8 and everything["tibshirani_candidates"] == 8
+
+
+# --- the opening: once, deliberately ---------------------------------------------------------------------------------
+
+def test_open_asks_on_a_terminal_refuses_without_one_and_refuses_a_second_time(work: Path) -> None:
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    no_tty = run_cli(work, "open", "results/bc")
+    assert no_tty.returncode == 4 and "pass --yes" in no_tty.stderr
+    assert not (work / "results/bc/final/verdict.json").exists()
+    assert "winner: " in no_tty.stdout and "about to open the sealed test set" in no_tty.stdout
+    ok(run_cli(work, "open", "results/bc", "--yes", "--cores", "2"))
+    before = tree_digest(work / "results")
+    again = run_cli(work, "open", "results/bc", "--yes", "--cores", "2")
+    assert again.returncode == 4, again.stdout + again.stderr
+    assert "already opened 1 time(s)" in again.stderr and "reopen_reasons" in again.stderr
+    assert tree_digest(work / "results") == before
+    assert sum(e["event"] == "open_test" for e in entries(work / "results/bc")) == 1
+
+
+def test_a_plain_snakemake_target_cannot_open_without_the_request(work: Path) -> None:
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    result = run_workflow(work, "results/bc/final/verdict.json")
+    assert result.returncode != 0
+    assert "final/request.json" in result.stderr
+    assert not (work / "results/bc/final/verdict.json").exists()
+    assert not any(e["event"].startswith("open") for e in entries(work / "results/bc"))
+
+
+def test_a_killed_opening_counts_and_is_named_by_the_audit(work: Path) -> None:
+    """SIGKILL after the write-ahead marker and before the verdict: the opening counts everywhere."""
+    edit(work, lambda c: c.update(opening={"bootstrap": 20000, "seed": 1}))  # a long read: seconds to kill in
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    exp = work / "results" / "bc"
+    marker = exp / "final" / "openings" / "started-1.json"
+    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+    proc = subprocess.Popen([sys.executable, "-m", "holdfast", "open", "results/bc", "--yes", "--cores", "2"],
+                            cwd=work, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            stdin=subprocess.DEVNULL, start_new_session=True)
+    deadline = time.monotonic() + 600
+    while not marker.exists():
+        assert proc.poll() is None and time.monotonic() < deadline, "the opening ended before its marker was seen"
+        time.sleep(0.005)
+    os.killpg(proc.pid, signal.SIGKILL)
+    proc.wait(timeout=30)
+    assert not (exp / "final" / "verdict.json").exists(), "the verdict was written before the kill"
+    audit = run_cli(work, "audit", "results/bc")
+    assert audit.returncode == 1
+    assert "test set opened 1 time(s)" in audit.stdout and "[opening-unfinished]" in audit.stdout
+    shutil.rmtree(work / ".snakemake" / "locks", ignore_errors=True)
+    again = run_cli(work, "open", "results/bc", "--yes", "--cores", "2")
+    assert again.returncode == 4 and "already opened 1 time(s)" in again.stderr
+    plain = run_workflow(work, "-n")
+    assert plain.returncode == 0 and planned_jobs(plain) == []
+
+
+# --- flags that used to break an opened experiment -------------------------------------------------------------------
+
+@pytest.fixture
+def opened(work: Path) -> Path:
+    """The small experiment, run and opened through the CLI."""
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    ok(run_cli(work, "open", "results/bc", "--yes", "--cores", "2"))
+    return work
+
+
+KEPT = ("model/model.skops", "model/card.json", "final/verdict.json", "sealed/manifest.json", "sealed/test.parquet",
+        "dev.parquet", "choice.json", "ranking.parquet", "folds.parquet", "ledger.jsonl")
+
+
+@pytest.mark.parametrize("flags", [["--forceall"], ["--delete-all-output"], ["--touch"], ["-R", "tally"]])
+def test_forcing_flags_cannot_replace_or_delete_what_was_opened(opened: Path, flags: list[str]) -> None:
+    exp = opened / "results" / "bc"
+    before = {name: (exp / name).read_bytes() for name in KEPT}
+    dry = run_workflow(opened, "-n", *flags)
+    assert "open_test" not in planned_jobs(dry) and "refit_winner" not in planned_jobs(dry)
+    real = run_workflow(opened, *flags)
+    assert {name: (exp / name).read_bytes() for name in KEPT if (exp / name).exists()} == before
+    assert all((exp / name).exists() for name in KEPT), real.stderr[-2000:]
+    assert ok(run_cli(opened, "audit", "results/bc")).stdout.startswith("PASS")
+
+
+@pytest.mark.parametrize("rule", ["refit_winner", "open_test", "tally", "fit_family", "assign_folds", "seal"])
+def test_forcing_a_closed_rule_is_refused_by_name_even_in_a_dry_run(opened: Path, rule: str) -> None:
+    before = tree_digest(opened / "results")
+    for extra in (["-n"], []):
+        result = run_workflow(opened, *extra, "--forcerun", rule)
+        assert result.returncode == 4, result.stderr[-2000:]
+        assert f"--forcerun {rule}" in result.stderr and "nothing was run" in result.stderr
+    assert tree_digest(opened / "results") == before
+
+
+def test_cut_ledger_changed_grid_and_forced_folds_do_not_open_again(opened: Path) -> None:
+    """The attack: cut the ledger back to its seal line, change a grid, force the folds: refused, and the audit
+    counts the opening from the other records and says they disagree."""
+    exp = opened / "results" / "bc"
+    lines = (exp / "ledger.jsonl").read_text().splitlines()
+    (exp / "ledger.jsonl").write_text(lines[0] + "\n")
+    edit(opened, lambda c: c["candidates"]["tree"]["grid"].update(max_depth=[2, 3]))
+    archive = (exp / "final" / "openings" / "1.json").read_bytes()
+    for extra in (["-n"], []):
+        result = run_workflow(opened, *extra, "--forcerun", "assign_folds")
+        assert result.returncode == 4, result.stderr[-2000:]
+        assert "already opened 1 time(s)" in result.stderr
+    assert (exp / "final" / "openings" / "1.json").read_bytes() == archive
+    assert not (exp / "final" / "openings" / "2.json").exists()
+    audit = run_cli(opened, "audit", "results/bc")
+    assert audit.returncode == 1 and "test set opened 1 time(s)" in audit.stdout
+    assert "[opening-records-disagree]" in audit.stdout
+
+
+def test_a_copied_project_and_a_changed_mem_mb_plan_nothing(opened: Path, tmp_path: Path) -> None:
+    copy = tmp_path / "copy"
+    shutil.copytree(opened, copy)  # new modification times in copy order, as cp -r gives
+    dry = run_workflow(copy, "-n")
+    assert dry.returncode == 0 and planned_jobs(dry) == [], dry.stderr[-2000:]
+    edit(opened, lambda c: c["candidates"]["tree"].update(mem_mb=3000, threads=2, runtime=20))
+    dry = run_workflow(opened, "-n")
+    assert dry.returncode == 0 and planned_jobs(dry) == [], dry.stderr[-2000:]
+
+
+# --- receipts, anchored heads and signatures -------------------------------------------------------------------------
+
+def rechain(items: list[dict[str, Any]], start: int) -> None:
+    """Recompute seq, prev and hash from ``start`` on, as a careful forger without the signing key would."""
+    prev = ledger.GENESIS if start == 0 else items[start - 1]["hash"]
+    for position in range(start, len(items)):
+        items[position]["seq"] = position
+        items[position]["prev"] = prev
+        items[position]["hash"] = ledger.line_hash(items[position])
+        prev = items[position]["hash"]
+
+
+def forge_away_first_opening(exp: Path) -> int:
+    """Remove every record of opening 1 and renumber opening 2 as 1, consistently, the way a forger would.
+
+    Returns the sequence number of the first ledger line the forger had to rewrite.
+    """
+    from holdfast._io import canonical_json, sha256_file
+
+    final = exp / "final"
+    verdict = json.loads((final / "verdict.json").read_text())
+    for key in ("reopen_reasons", "warning"):
+        verdict.pop(key, None)
+    verdict.update(opening=1, compromised=False, test_set_opened="test set opened 1 time")
+    text = json.dumps(verdict, indent=2, sort_keys=True) + "\n"
+    for name in ("1.json", "started-1.json"):
+        (final / "openings" / name).chmod(0o644)
+        (final / "openings" / name).unlink()
+    (final / "openings" / "2.json").chmod(0o644)
+    (final / "openings" / "2.json").rename(final / "openings" / "1.json")
+    (final / "openings" / "1.json").write_text(text)
+    (final / "verdict.json").write_text(text)
+    marker = json.loads((final / "openings" / "started-2.json").read_text())
+    marker["opening"] = 1
+    (final / "openings" / "started-2.json").chmod(0o644)
+    (final / "openings" / "started-2.json").unlink()
+    (final / "openings" / "started-1.json").write_text(json.dumps(marker, indent=2, sort_keys=True) + "\n")
+    manifest = json.loads((exp / "sealed" / "manifest.json").read_text())
+    manifest["openings"] = [{**manifest["openings"][1], "opening": 1,
+                             "marker_sha256": sha256_file(final / "openings" / "started-1.json")}]
+    (exp / "sealed" / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
+    registry = exp.parent / ".holdfast" / "openings.jsonl"
+    kept = [json.loads(line) for line in registry.read_text().splitlines()][1:]
+    registry.write_text("".join(canonical_json({**e, "opening": 1}) + "\n" for e in kept))
+    items = entries(exp)
+    first = next(i for i, e in enumerate(items) if e["event"] == "opening_started")
+    items = [e for e in items if not (e["event"] in ("opening_started", "open_test")
+                                      and e["details"]["opening"] == 1)]
+    for e in items:
+        if e["event"] in ("opening_started", "open_test"):
+            e["details"]["opening"] = 1
+        if e["event"] == "open_test":
+            e["details"]["reasons"] = []
+            e["details"]["verdict_sha256"] = sha256_file(final / "verdict.json")
+            e["details"]["marker_sha256"] = sha256_file(final / "openings" / "started-1.json")
+    rechain(items, first)
+    (exp / "ledger.jsonl").write_text("".join(canonical_json(e) + "\n" for e in items))
+    return first
+
+
+def reopen_after_changing(work: Path) -> str:
+    """Run, open, then with a written reason change a grid, run and open again; return the first receipt's head."""
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    ok(run_cli(work, "open", "results/bc", "--yes", "--cores", "2"))
+    receipt = (work / "results/bc/receipt.txt").read_text()
+    head = next(line for line in receipt.splitlines() if line.startswith("ledger head: "))[len("ledger head: "):]
+    assert "verdict sha256: " in receipt
+    edit(work, lambda c: (c["test"].update(reopen_reasons=["the first look used the wrong metric set, said the "
+                                                           "reviewer"]),
+                          c["candidates"]["tree"]["grid"].update(max_depth=[2, 3])))
+    ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
+    ok(run_cli(work, "open", "results/bc", "--yes", "--cores", "2"))
+    return head
+
+
+def test_a_consistent_forgery_passes_the_plain_audit_but_not_the_receipt(work: Path) -> None:
+    exp = work / "results" / "bc"
+    head = reopen_after_changing(work)
+    assert run_cli(work, "audit", "results/bc").returncode == 1  # honestly: opened twice
+    forge_away_first_opening(exp)
+    edit(work, lambda c: c["test"].update(reopen_reasons=[]))
+    plain = run_cli(work, "audit", "results/bc")
+    assert plain.returncode == 0 and "test set opened 1 time(s)" in plain.stdout, plain.stdout  # the limit
+    anchored = run_cli(work, "audit", "results/bc", "--expect-head", head)
+    assert anchored.returncode == 1 and "[head-changed]" in anchored.stdout, anchored.stdout
+
+
+def test_with_signing_the_same_forgery_fails_without_any_receipt(work: Path, tmp_path_factory: Any) -> None:
+    keys = tmp_path_factory.mktemp("keys")
+    subprocess.run(["openssl", "genpkey", "-algorithm", "ed25519", "-out", str(keys / "key.pem")], check=True)
+    edit(work, lambda c: c.update(ledger={"signing_key": str(keys / "key.pem")}))
+    exp = work / "results" / "bc"
+    reopen_after_changing(work)
+    assert all(e.get("sig") for e in entries(exp))
+    first = forge_away_first_opening(exp)
+    plain = run_cli(work, "audit", "results/bc")
+    assert plain.returncode == 1 and f"[bad-signature] ledger line(s) with seq {first}," in plain.stdout, plain.stdout
+    # An unsigned line is named as such, by its sequence number.
+    items = entries(exp)
+    del items[-1]["sig"]
+    (exp / "ledger.jsonl").write_text("".join(json.dumps(e, sort_keys=True, separators=(",", ":")) + "\n"
+                                              for e in items))
+    unsigned = run_cli(work, "audit", "results/bc")
+    assert f"[unsigned-line] ledger line(s) with seq {items[-1]['seq']}" in unsigned.stdout
+
+
+# --- several experiments on one data set -----------------------------------------------------------------------------
+
+def test_a_second_experiment_cannot_seal_rows_another_opened_unless_it_says_why(opened: Path) -> None:
+    edit(opened, lambda c: c.update(experiment="bc-again"))
+    before = tree_digest(opened / "results")
+    refused = run_cli(opened, "run", "config.yaml", "--cores", "2")
+    assert refused.returncode == 4, refused.stdout + refused.stderr
+    assert "in a test set already opened by 'bc (folder bc)'" in refused.stderr
+    assert "test.seen_rows_reason" in refused.stderr
+    assert tree_digest(opened / "results") == before and not (opened / "results" / "bc-again").exists()
+    # Renaming the opened experiment's folder, or deleting it, launders nothing: the registry remembers.
+    (opened / "results" / "bc").rename(opened / "results" / "renamed")
+    assert run_cli(opened, "run", "config.yaml", "--cores", "2").returncode == 4
+    shutil.rmtree(opened / "results" / "renamed")
+    assert run_cli(opened, "run", "config.yaml", "--cores", "2").returncode == 4
+    edit(opened, lambda c: c["test"].update(seen_rows_reason="a second model family for the same review, "
+                                                             "agreed with the validator"))
+    ok(run_cli(opened, "run", "config.yaml", "--cores", "2"))
+    ok(run_cli(opened, "open", "results/bc-again", "--yes", "--cores", "2"))
+    exp = opened / "results" / "bc-again"
+    verdict = json.loads((exp / "final" / "verdict.json").read_text())
+    assert verdict["test_rows_seen_before"]["note"] == "test rows seen before"
+    assert "note: test rows seen before" in run_cli(opened, "audit", "results/bc-again").stdout
