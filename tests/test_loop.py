@@ -95,7 +95,7 @@ def test_run_change_run_add_run_open_counts_three_rounds_and_reruns_only_what_ch
     assert fit_families_since(exp, head) == ["knn"] * 3
 
     opened = ok(run_cli(work, "open", "results/bc", "--yes", "--cores", "2"))
-    assert "chosen after 3 selection round(s), 9 candidate(s) tried in all" in opened.stdout
+    assert "chosen after 3 selection round(s), 7 candidate(s) tried in all" in opened.stdout
     rounds = [e["details"] for e in entries(exp) if e["event"] == "round"]
     assert [r["round"] for r in rounds] == [1, 2, 3]
     assert rounds[0]["changes"] is None and rounds[0]["ranking_seen_sha256"] is None
@@ -106,10 +106,10 @@ def test_run_change_run_add_run_open_counts_three_rounds_and_reruns_only_what_ch
     assert third["families_added"] == ["knn"] and third["families_altered"] == {}
     assert all(r["ranking_seen_sha256"] for r in rounds[1:]), "a later round names the ranking that was seen"
     verdict = json.loads((exp / "final" / "verdict.json").read_text())
-    assert verdict["selection"] == {"rounds": 3, "candidates_tried": 9,
-                                    "text": "chosen after 3 rounds, 9 candidates tried in all"}
+    assert verdict["selection"] == {"rounds": 3, "candidates_tried": 7,
+                                    "text": "chosen after 3 rounds, 7 candidates tried in all"}
     choice = json.loads((exp / "choice.json").read_text())
-    assert choice["optimism"]["candidates_counted"] == 9 and choice["candidates"] == 9
+    assert choice["optimism"]["candidates_counted"] == 7 and choice["candidates"] == 7
 
 
 def test_optimism_counts_candidates_of_earlier_rounds(work: Path) -> None:
