@@ -216,11 +216,11 @@ def run_scenario(scenario: Scenario, reps: int, cores: int, root: Path) -> list[
 # --------------------------------------------------------------------------- report
 
 
-def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> None:
-    """The comparison table, the identity check and the breakdown of each side's time."""
+def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dict[str, float | None]:
+    """The comparison table, the identity check and the breakdown of each side's time; returns the medians."""
     plan = records[0]["plan"]
     print(f"{scenario.label}")
-    print(f"  {plan['n_candidates']} candidates in {plan['n_families']} families x {plan['k']} folds; "
+    print(f"  {plan['n_candidates']} candidate(s) in {plan['n_families']} families x {plan['k']} folds; "
           f"{plan['dev_rows']:,} development rows, {plan['test_rows']:,} sealed test rows; "
           f"medians of {len(records)} alternating rep(s)")
     rows: dict[str, list[tuple[float | None, float | None]]] = {}
@@ -246,10 +246,11 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> Non
                                                                                               sc["search_s"]))
         add("parallel efficiency, whole", c.ratio(h_limit, h_wall), c.ratio(s_limit, s_wall))
         add("peak RSS of the largest process (MiB)", rec["run"].peak_mib, rec["script_run"].peak_mib)
-    table = []
+    table, medians = [], {}
     for name, pairs in rows.items():
         h = c.median([p[0] for p in pairs])
         s = c.median([p[1] for p in pairs])
+        medians[f"holdfast {name}"], medians[f"script {name}"] = h, s
         if "efficiency" in name:
             table.append([name, c.pct(h), c.pct(s), ""])
         else:
@@ -286,6 +287,20 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> Non
     ]
     c.table(["script: where the wall time went (medians)", "seconds"],
             [[name, c.median(v)] for name, v in script_rows])
+    medians["identical"] = float(all(rec["same"]["identical"] for rec in records))
+    return medians
+
+
+def judge(target: str, value: float | None, limit: float, quick: bool, unit: str = "") -> None:
+    """One line on an issue-13 target: the measured median against the limit (not judged with --quick)."""
+    shown = "—" if value is None else (f"{100 * value:.0f} %" if unit == "%" else f"{value:.2f}{unit}")
+    if quick:
+        verdict = "not judged (--quick sizes)"
+    elif value is None:
+        verdict = "not measured"
+    else:
+        verdict = "met" if (value >= limit if unit == "%" else value <= limit) else "NOT met"
+    print(f"target  {target}: measured {shown}: {verdict}")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -297,9 +312,21 @@ def main(argv: list[str] | None = None) -> int:
     c.header("holdfast head to head: the whole workflow against the GridSearchCV script", args, reps)
     scenarios = [s for s in (demo(args.quick), mixed(args.quick)) if args.only in (None, s.name)]
     with c.workspace("head-to-head", args.keep) as root:
-        for scenario in scenarios:
-            records = run_scenario(scenario, reps, args.cores, root)
-            report(scenario, records, args.cores)
+        results = {s.name: report(s, run_scenario(s, reps, args.cores, root), args.cores) for s in scenarios}
+    wall = "whole workflow wall (s)"
+    if "demo" in results:
+        m = results["demo"]
+        judge("demo, whole workflow <= 1.3x the script", c.ratio(m[f"holdfast {wall}"], m[f"script {wall}"]), 1.3,
+              args.quick, "x")
+    if "mixed" in results:
+        m = results["mixed"]
+        judge("mixed grid, whole workflow <= 1.0x the script", c.ratio(m[f"holdfast {wall}"], m[f"script {wall}"]),
+              1.0, args.quick, "x")
+        judge("mixed grid, holdfast fit-phase efficiency >= 90 %", m["holdfast parallel efficiency, fit phase"], 0.9,
+              args.quick, "%")
+    for name, m in results.items():
+        if not m["identical"]:
+            print(f"WARNING {name}: the script's numbers differ from holdfast's in some rep; see 'identical' above")
     c.footer()
     return 0
 
