@@ -421,16 +421,32 @@ def pct(value: float | None) -> str:
     return "—" if value is None else f"{100 * value:.0f} %"
 
 
-def table(headers: Sequence[str], rows: Sequence[Sequence[Any]], title: str | None = None) -> None:
-    """Print a plain fixed-width table: first column left-aligned, the others right-aligned."""
+def table(headers: Sequence[str], rows: Sequence[Sequence[Any]], title: str | None = None,
+          note_last: bool = False) -> None:
+    """Print a plain fixed-width table: first column left-aligned, the others right-aligned.
+
+    With ``note_last`` the last column is free text: left-aligned, unpadded and left out of the widths.
+    """
     cells = [[fmt(c) if not isinstance(c, str) else c for c in row] for row in rows]
-    widths = [max(len(str(h)), *(len(r[i]) for r in cells)) if cells else len(str(h)) for i, h in enumerate(headers)]
+    sized = len(headers) - 1 if note_last else len(headers)
+    widths = [max([len(str(headers[i])), *(len(r[i]) for r in cells)]) for i in range(sized)]
+    if note_last:
+        widths.append(len(str(headers[-1])))
+
+    def render(row: Sequence[str]) -> str:
+        parts = []
+        for i, (cell, width) in enumerate(zip(row, widths, strict=True)):
+            if i == 0 or (note_last and i == len(row) - 1):
+                parts.append(cell if note_last and i == len(row) - 1 else cell.ljust(width))
+            else:
+                parts.append(cell.rjust(width))
+        return "  ".join(parts).rstrip()
+
     if title:
         print(title)
-    line = "  ".join(str(h).ljust(w) if i == 0 else str(h).rjust(w) for i, (h, w) in enumerate(zip(headers, widths,
-                                                                                                   strict=True)))
+    line = render([str(h) for h in headers])
     print(line)
     print("-" * len(line))
     for row in cells:
-        print("  ".join(c.ljust(w) if i == 0 else c.rjust(w) for i, (c, w) in enumerate(zip(row, widths, strict=True))))
+        print(render(row))
     print()
