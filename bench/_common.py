@@ -162,6 +162,8 @@ def measure(cmd: Sequence[str], cwd: Path, logs: Path, name: str) -> Measured:
     with open(out, "w") as o, open(err, "w") as e:
         subprocess.run([PYTHON, "-c", WRAPPER, str(result), *map(str, cmd)], cwd=cwd, env=env(), stdout=o,
                        stderr=e, stdin=subprocess.DEVNULL, check=False)
+    if not result.exists():
+        raise BenchError(f"{name}: the measuring wrapper itself died (killed?); see {err}")
     data = json.loads(result.read_text())
     return Measured(data["wall"], int(data["maxrss_kb"]), int(data["rc"]), data["start"], data["end"], out, err)
 
@@ -176,6 +178,28 @@ def python_json(code: str, args: Sequence[str], cwd: Path, logs: Path, name: str
     if run.rc != 0:
         raise BenchError(f"{name} failed (exit {run.rc}):\n{run.tail()}")
     return run, json.loads(target.read_text())
+
+
+def try_python_json(code: str, args: Sequence[str], cwd: Path, logs: Path,
+                    name: str) -> tuple[Measured | None, dict[str, Any] | None, str | None]:
+    """:func:`python_json` that reports a failure instead of raising: (run, result, None) or (run, None, why).
+
+    A process killed by a signal (the kernel's out-of-memory killer sends SIGKILL) is named as such.
+    """
+    target = logs / f"{name}.result.json"
+    script = logs / f"{name}.py"
+    logs.mkdir(parents=True, exist_ok=True)
+    script.write_text(code)
+    try:
+        run = measure([PYTHON, str(script), str(target), *args], cwd, logs, name)
+    except BenchError as exc:
+        return None, None, str(exc)
+    if run.rc < 0:
+        hint = " (out of memory?)" if run.rc == -9 else ""
+        return run, None, f"killed by signal {-run.rc}{hint} at peak RSS {run.peak_mib:,.0f} MiB"
+    if run.rc != 0:
+        return run, None, f"exit {run.rc}: {first_message(run)}"
+    return run, json.loads(target.read_text()), None
 
 
 def first_message(run: Measured) -> str:
