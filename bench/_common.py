@@ -92,7 +92,8 @@ def package_versions() -> dict[str, str]:
     return out
 
 
-def _commit() -> str:
+def commit() -> str:
+    """This checkout's commit, marked when the working tree has uncommitted changes."""
     try:
         head = subprocess.run(["git", "-C", str(REPO), "rev-parse", "--short", "HEAD"], capture_output=True,
                               text=True, check=True).stdout.strip()
@@ -114,7 +115,7 @@ def header(title: str, args: argparse.Namespace, reps: int) -> None:
     print(f"machine         {cores} cores ({usable} usable by this process), {platform.machine()}, "
           f"load average at start {load}")
     print(f"versions        {', '.join(f'{k} {v}' for k, v in package_versions().items())}")
-    print(f"holdfast        {REPO} at {_commit()}")
+    print(f"holdfast        {REPO} at {commit()}")
     print(f"settings        {'--quick (tiny sizes: checks the benchmark, measures nothing) ' if args.quick else ''}"
           f"reps {reps}, cores {args.cores}")
     print()
@@ -414,13 +415,16 @@ def stage_times(workdir: Path, run: WorkflowRun) -> list[tuple[str, int, float]]
     if not records:
         return []
     first = run.steps["run"]
+    inside = [j for j in records if j["start"] <= first.end]  # the jobs of the run command itself
     out = [("run: start to first job (parse, guards, DAG)", 1, records[0]["start"] - first.start)]
     by_rule: dict[str, list[float]] = {}
     for job in records:
         by_rule.setdefault(job["rule"], []).append(job["end"] - job["start"])
     out += [(f"job {rule}", len(walls), sum(walls)) for rule, walls in by_rule.items()]
-    out.append(("run: last job's output to exit", 1, first.end - max(j["end"] for j in records)))
-    out += [(f"command holdfast {label}", 1, m.wall) for label, m in run.steps.items() if label != "run"]
+    if inside:
+        out.append(("run: last job's output to exit", 1, first.end - max(j["end"] for j in inside)))
+    out += [(f"command {label} (with any jobs it ran)", 1, m.wall) for label, m in run.steps.items()
+            if label != "run"]
     return out
 
 
