@@ -116,8 +116,8 @@ def header(title: str, args: argparse.Namespace, reps: int) -> None:
           f"load average at start {load}")
     print(f"versions        {', '.join(f'{k} {v}' for k, v in package_versions().items())}")
     print(f"holdfast        {REPO} at {commit()}")
-    print(f"settings        {'--quick (tiny sizes: checks the benchmark, measures nothing) ' if args.quick else ''}"
-          f"reps {reps}, cores {args.cores}")
+    quick = "--quick (tiny sizes: checks that the benchmark works; not its numbers) " if args.quick else ""
+    print(f"settings        {quick}reps {reps}, cores {args.cores}")
     print()
 
 

@@ -220,7 +220,8 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
     """The comparison table, the identity check and the breakdown of each side's time; returns the medians."""
     plan = records[0]["plan"]
     print(f"{scenario.label}")
-    print(f"  {plan['n_candidates']} candidate(s) in {plan['n_families']} families x {plan['k']} folds; "
+    families = f"{plan['n_families']} famil{'y' if plan['n_families'] == 1 else 'ies'}"
+    print(f"  {plan['n_candidates']} candidate(s) in {families} x {plan['k']} folds; "
           f"{plan['dev_rows']:,} development rows, {plan['test_rows']:,} sealed test rows; "
           f"medians of {len(records)} alternating rep(s)")
     rows: dict[str, list[tuple[float | None, float | None]]] = {}
@@ -269,7 +270,9 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
     print("  holdfast records no refit time, so its whole-workflow limit uses the script's refit of the same "
           "winner on the same rows")
     print(f"  holdfast commands: {c.workflow_label()}")
-    print(f"  script: bench/gridsearch_baseline.py, GridSearchCV(n_jobs={cores}) per family, a fresh Python process")
+    print(f"  script: bench/gridsearch_baseline.py, GridSearchCV(n_jobs={cores}) per family, a fresh Python process; "
+          "its refit uses the libraries' default threads, as a practitioner's would (holdfast's jobs use their "
+          "declared threads)")
     print()
     stages: dict[str, list[tuple[int, float]]] = {}
     for rec in records:
