@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import getpass
 import os
 import subprocess
 import sys
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -19,6 +21,7 @@ SNAKEFILE = REPO / "Snakefile"
 OWN_OPTIONS = ("--configfile", "--configfiles", "--config", "-C", "--snakefile", "-s", "--directory", "-d")
 CORE_OPTIONS = ("--cores", "-c", "--jobs", "-j", "--executor", "-e", "--profile", "--workflow-profile")
 DRY_RUN = ("-n", "--dry-run", "--dryrun")
+WORKER_ENV = "HOLDFAST_WORKER"
 
 
 def _say(line: str) -> None:
@@ -118,8 +121,6 @@ def _store_config(raw: dict[str, Any], exp: Path) -> Path:
 def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label: str,
                targets: tuple[str, ...] = ()) -> int:
     """Run Snakemake on the checked config; its own output goes to a log file unless ``show``."""
-    import datetime as dt
-
     # Targets first and --configfile=PATH: Snakemake's list options would swallow a target written after them.
     cmd = [sys.executable, "-m", "snakemake", *targets, "-s", str(SNAKEFILE), f"--configfile={configfile}"]
     if not any(w.split("=", 1)[0] in CORE_OPTIONS or (w.startswith("-j") and w[2:].isdigit()) for w in extra):
@@ -127,8 +128,47 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
     cmd += extra
     env = {**os.environ, "HOLDFAST_CLOSING_BY_CLI": "1",
            "PYTHONPATH": os.pathsep.join(filter(None, [str(REPO / "scripts"), os.environ.get("PYTHONPATH")]))}
-    if show:
-        return subprocess.run(cmd, env=env, stdin=subprocess.DEVNULL).returncode
+    with _warm_worker(extra, env):
+        if show:
+            return subprocess.run(cmd, env=env, stdin=subprocess.DEVNULL).returncode
+        return _logged(cmd, env, exp, label)
+
+
+def _local(extra: list[str]) -> bool:
+    """True unless the run goes to a cluster (an executor or a profile is named) or the worker is switched off."""
+    return not os.environ.get("HOLDFAST_NO_WORKER") and not any(
+        w.split("=", 1)[0] in ("--executor", "-e", "--profile", "--workflow-profile") for w in extra)
+
+
+@contextlib.contextmanager
+def _warm_worker(extra: list[str], env: dict[str, str]) -> Iterator[None]:
+    """Start the pre-warmed worker for a local run (see holdfast.worker) and stop it afterwards."""
+    if not _local(extra) or any(w in DRY_RUN for w in extra):
+        yield
+        return
+    import tempfile
+
+    address = os.path.join(tempfile.gettempdir(), f"holdfast-{os.getuid()}-{os.getpid()}.sock")
+    worker = subprocess.Popen([sys.executable, "-m", "holdfast.worker", address], env=env,
+                              stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    env[WORKER_ENV] = address
+    try:
+        yield
+    finally:
+        env.pop(WORKER_ENV, None)
+        worker.terminate()
+        try:
+            worker.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            worker.kill()
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(address)
+
+
+def _logged(cmd: list[str], env: dict[str, str], exp: Path, label: str) -> int:
+    """Run Snakemake with its output in a log file, showing holdfast's own progress lines meanwhile."""
+    import datetime as dt
+
     stamp = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%SZ")
     log = exp / "logs" / f"{label}-{stamp}.log"
     log.parent.mkdir(parents=True, exist_ok=True)

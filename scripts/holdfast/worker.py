@@ -1,0 +1,169 @@
+"""A pre-warmed worker for local runs: each job is forked from a process that has already imported its libraries.
+
+Every Snakemake job is a new Python process, and a job's imports (pandas, pyarrow, scikit-learn) cost about
+two seconds before any work, which on a laptop is most of what a small fit job costs. ``holdfast run`` and
+``holdfast open`` start this worker before Snakemake (local runs only); the job script then hands its job to
+the worker over a Unix socket, with its own stdout and stderr, and the worker forks a child that runs the step
+with everything already imported. The job script waits for the child's exit code, so Snakemake sees an
+ordinary job. If the job script dies (Snakemake was killed), the child is killed too. When no worker answers
+(a cluster job, plain ``snakemake``, ``HOLDFAST_NO_WORKER=1``) the job script runs the step itself, as before.
+
+Only the standard library is imported at module level: the job script imports :func:`submit` cheaply.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import pickle
+import signal
+import socket
+import struct
+import sys
+import threading
+from typing import Any
+
+ENV = "HOLDFAST_WORKER"
+HEADER = struct.Struct("!Q")
+# What the steps import; loaded once in the worker so that no job pays for it again.
+PRELOAD = ("numpy", "pandas", "pyarrow", "pyarrow.parquet", "scipy.stats", "sklearn.base", "sklearn.pipeline",
+           "sklearn.compose", "sklearn.impute", "sklearn.preprocessing", "sklearn.metrics", "sklearn.linear_model",
+           "sklearn.ensemble", "sklearn.tree", "sklearn.neighbors", "sklearn.model_selection", "threadpoolctl",
+           "snakemake.iocontainers", "holdfast.steps", "holdfast.fit", "holdfast.folds", "holdfast.seal",
+           "holdfast.tally", "holdfast.refit", "holdfast.rounds")
+
+
+def _recv_exact(conn: socket.socket, size: int) -> bytes:
+    chunks, left = [], size
+    while left:
+        chunk = conn.recv(min(left, 1 << 20))
+        if not chunk:
+            raise ConnectionError("the job script closed the connection")
+        chunks.append(chunk)
+        left -= len(chunk)
+    return b"".join(chunks)
+
+
+def submit(address: str, job: Any) -> int | None:
+    """Run ``job`` (Snakemake's job object) in the worker; its exit code, or None when no worker answers."""
+    payload = pickle.dumps({"job": job, "cwd": os.getcwd(), "env": dict(os.environ)}, protocol=4)
+    conn = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    try:
+        conn.connect(address)
+    except OSError:
+        conn.close()
+        return None
+    with conn:
+        socket.send_fds(conn, [HEADER.pack(len(payload))], [1, 2])
+        conn.sendall(payload)
+        answer = conn.recv(1)
+    if not answer:
+        return 1  # the child died without an answer (killed, or it crashed hard): a failed job
+    return answer[0]
+
+
+def _run_child(conn: socket.socket) -> None:
+    """In the forked child: take the job, its stdout/stderr and environment, run the step, answer the code."""
+    message, fds, _, _ = socket.recv_fds(conn, HEADER.size, 2)
+    (size,) = HEADER.unpack(message)
+    request = pickle.loads(_recv_exact(conn, size))
+    os.dup2(fds[0], 1)
+    os.dup2(fds[1], 2)
+    for fd in fds:
+        os.close(fd)
+    os.chdir(request["cwd"])
+    os.environ.clear()
+    os.environ.update(request["env"])
+    os.environ.pop(ENV, None)
+
+    def watch() -> None:  # the job script died (its Snakemake was killed): this job must not outlive it
+        try:
+            if not conn.recv(1):
+                os.kill(os.getpid(), signal.SIGKILL)
+        except OSError:
+            os.kill(os.getpid(), signal.SIGKILL)
+
+    threading.Thread(target=watch, daemon=True).start()
+    code = 1
+    try:
+        from holdfast.steps import StepError, run
+
+        try:
+            run(request["job"])
+            code = 0
+        except StepError:
+            code = 1  # the one-line message is already in the log and on stderr
+    except BaseException:  # an unexpected failure: its traceback goes where a cold job's would
+        import traceback
+
+        traceback.print_exc()
+    finally:
+        sys.stdout.flush()
+        sys.stderr.flush()
+        try:
+            conn.sendall(bytes([code]))
+        finally:
+            os._exit(code)
+
+
+def serve(address: str) -> None:
+    """Import everything the steps need, then fork one child per job until the parent process goes away."""
+    import importlib
+
+    # The numeric libraries must not have started thread pools before fork; each job sets its own limits.
+    for name in PRELOAD:
+        try:
+            importlib.import_module(name)
+        except ImportError:
+            continue
+    parent = os.getppid()
+    listener = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    tmp = f"{address}.{os.getpid()}.tmp"
+    listener.bind(tmp)
+    listener.listen(64)
+    os.replace(tmp, address)  # the socket appears only once the imports are done
+    listener.settimeout(1.0)
+    signal.signal(signal.SIGCHLD, lambda *_: _reap())
+    try:
+        while os.getppid() == parent:
+            try:
+                conn, _ = listener.accept()
+            except TimeoutError:
+                continue
+            except InterruptedError:
+                continue
+            conn.settimeout(None)
+            pid = os.fork()
+            if pid == 0:
+                listener.close()
+                signal.signal(signal.SIGCHLD, signal.SIG_DFL)
+                _run_child(conn)
+            conn.close()
+    finally:
+        listener.close()
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(address)
+
+
+def _reap() -> None:
+    while True:
+        try:
+            pid, _ = os.waitpid(-1, os.WNOHANG)
+        except ChildProcessError:
+            return
+        if pid == 0:
+            return
+
+
+def main(argv: list[str] | None = None) -> int:
+    """``python -m holdfast.worker SOCKET``: serve jobs on the Unix socket SOCKET."""
+    args = sys.argv[1:] if argv is None else argv
+    if len(args) != 1:
+        sys.stderr.write("usage: python -m holdfast.worker SOCKET\n")
+        return 2
+    serve(args[0])
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
