@@ -143,7 +143,9 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
         if choice["winner"]["candidate"] != refit["details"]["winner"]:
             raise ModelFileError(f"choice.json names winner {choice['winner']['candidate']} but the ledger's refit is "
                                  f"{refit['details']['winner']}; re-run the tally and refit")
-        model = load_model(str(model_path), refit["details"]["model_sha256"])
+        # Trust exactly the types the refit recorded; a ledger older than that record has none (None),
+        # and then load_model applies its static policy alone.
+        model = load_model(str(model_path), refit["details"]["model_sha256"], refit["details"].get("model_types"))
         manifest = read_json(exp / MANIFEST)
         test_sha = sha256_file(exp / TEST)
         if test_sha != manifest["files"]["test.parquet"]:
