@@ -124,6 +124,12 @@ def _shared_id(marker: Path) -> bytes:
     return _rewrite(_dumps(_pipeline()), edit)
 
 
+def _split_differently(schema: dict[str, Any]) -> None:
+    # The same "<module>.<class>" string as a trusted estimator, split so the class part holds a dot.
+    _add_attribute(schema, "twin", {"__class__": "_logistic.LogisticRegression", "__module__": "sklearn.linear_model",
+                                    "__loader__": "ObjectNode"})
+
+
 class NotOnTheList:
     """A type no model file should contain."""
 
@@ -211,6 +217,8 @@ REFUSED: list[tuple[str, Callable[[Path], bytes], str, str, Callable[[Any, Path]
      True),
     ("a-class-outside-scikit-learn", _extra(NotOnTheList()), "test_model_trust.NotOnTheList",
      "not a type of a scikit-learn pipeline", None, False),
+    ("a-trusted-name-split-another-way", lambda m: _rewrite(_dumps(_pipeline()), _split_differently),
+     "sklearn.linear_model._logistic.LogisticRegression", "a node without a plain type name", None, True),
 ]
 
 

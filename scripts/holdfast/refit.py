@@ -223,7 +223,10 @@ def _problems(data: bytes, trusted: list[str] | None) -> tuple[list[str], list[t
     seen_ids: dict[Any, tuple[Any, ...]] = {}
     for node in nodes:
         loader, module, cls = node.get("__loader__"), node.get("__module__"), node.get("__class__")
-        if not all(isinstance(v, str) for v in (loader, module, cls)):
+        # skops imports the module and takes the class by getattr: both must be plain names, so one
+        # "<module>.<class>" string can be split only one way.
+        if not (isinstance(loader, str) and isinstance(module, str) and isinstance(cls, str) and cls.isidentifier()
+                and all(part.isidentifier() for part in module.split("."))):
             refused.append((f"{module}.{cls}", "a node without a plain type name"))
             continue
         name = f"{module}.{cls}"
