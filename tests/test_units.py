@@ -15,9 +15,8 @@ from conftest import breast_cancer_frame
 from holdfast import ledger
 from holdfast.candidates import build_pipeline, candidate_id, expand_family
 from holdfast.dataset import content_keys, hash_unit, infer_task
-from holdfast.errors import ConfigError, FitError, ModelFileError
+from holdfast.errors import ConfigError, FitError
 from holdfast.fit import fit_family
-from holdfast.refit import load_model, trusted_types
 from holdfast.seal import sealed_mask
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -158,27 +157,6 @@ def test_a_family_where_every_candidate_fails_is_an_error(tmp_path: Path) -> Non
         fit_family(dev, folds, family, spec, 0, 0, ["accuracy"], "classification", 1, ["sklearn"],
                    str(tmp_path / "fits.parquet"), str(tmp_path / "oof.parquet"), str(tmp_path / "ledger.jsonl"))
     assert not (tmp_path / "fits.parquet").exists()
-
-
-class NotOnTheList:
-    """A type no model file should contain."""
-
-
-def test_model_files_load_only_trusted_types(tmp_path: Path) -> None:
-    import skops.io as sio
-    from sklearn.linear_model import LinearRegression
-
-    good = tmp_path / "good.skops"
-    sio.dump(LinearRegression().fit([[0.0], [1.0]], [0.0, 1.0]), good)
-    assert load_model(str(good)).predict([[2.0]])[0] == pytest.approx(2.0)
-    bad = tmp_path / "bad.skops"
-    sio.dump({"model": NotOnTheList()}, bad)
-    with pytest.raises(ModelFileError, match=r"contains type 'test_units.NotOnTheList', which is not on the trusted"):
-        trusted_types(str(bad))
-    from holdfast._io import sha256_file
-
-    with pytest.raises(ModelFileError, match=r"it was changed after the refit"):
-        load_model(str(good), expected_sha256=sha256_file(bad))
 
 
 def test_estimators_outside_the_allowed_modules_are_refused() -> None:

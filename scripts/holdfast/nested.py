@@ -46,7 +46,9 @@ def score_outer(dev_path: str, outer_path: str, inner_folds_path: str, fold: int
     choice = read_json(choice_path)
     events = [e for e in ledger.read(ledger_path) if e["event"] == "refit"
               and e["details"].get("scope") == f"o{fold}"]
-    model = load_model(model_path, events[-1]["details"]["model_sha256"] if events else None)
+    # The types the refit recorded (None for ledgers older than that record: static policy alone).
+    recorded = events[-1]["details"] if events else {}
+    model = load_model(model_path, recorded.get("model_sha256"), recorded.get("model_types"))
     x, y = split_xy(dev[validation], spec)
     outputs = model_outputs(model, x)
     values = score_outputs(metrics, replay(outputs, task, getattr(model, "classes_", None)), y)

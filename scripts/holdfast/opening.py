@@ -270,7 +270,9 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
                                  f"{refit['details']['winner']}; re-run the tally and refit")
         number = before + 1
         request_sha = _check_request(request_path, number, model_sha, sha256_file(exp / CHOICE), experiment)
-        model = load_model(str(model_path), refit["details"]["model_sha256"])
+        # Trust exactly the types the refit recorded; a ledger older than that record has none (None),
+        # and then load_model applies its static policy alone.
+        model = load_model(str(model_path), refit["details"]["model_sha256"], refit["details"].get("model_types"))
         manifest = read_json(exp / MANIFEST)
         test_sha = sha256_file(exp / TEST)
         if test_sha != manifest["files"]["test.parquet"]:
