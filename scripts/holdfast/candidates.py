@@ -97,6 +97,12 @@ def check_estimators(config: dict[str, Any], families: dict[str, list[dict[str, 
         except TypeError as exc:
             raise ConfigError(f"config key '{where}': '{spec['estimator']}' cannot be built without arguments "
                               f"({exc}); use a scikit-learn compatible estimator") from exc
+        from .refit import estimator_refusal
+
+        refusal = estimator_refusal(f"{cls.__module__}.{cls.__name__}")
+        if refusal:  # found now, not after every fit job ran: refit could not save a file holdfast loads
+            raise ConfigError(f"config key '{where}': '{spec['estimator']}' is {refusal}, so its refit model could "
+                              "not be stored as a model file holdfast trusts; choose another estimator")
         wanted = is_classifier if task == "classification" else is_regressor
         if not wanted(instance):
             kind = "classifier" if task == "classification" else "regressor"

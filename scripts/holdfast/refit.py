@@ -146,6 +146,11 @@ def _instance_refusal(name: str) -> str | None:
     return "not a scikit-learn classifier, regressor or a data-only part of one"
 
 
+def estimator_refusal(name: str) -> str | None:
+    """Why refit could not store an estimator of this exact type name in a trusted file (None: it can)."""
+    return _instance_refusal(name)
+
+
 def _refusal(node: dict[str, Any], name: str) -> str | None:
     """Why one node of a model file may not be rebuilt, or None when the static policy admits it."""
     loader = node["__loader__"]
