@@ -314,10 +314,49 @@ def scheme_ignores_time(fold_spec: dict[str, Any]) -> bool:
     return fold_spec["scheme"] not in FORWARD
 
 
+def group_overlap(dev: pd.DataFrame, summary: pd.DataFrame, spec: dict[str, Any], fold_spec: dict[str, Any],
+                  mode: str) -> dict[str, Any] | None:
+    """Groups with rows on both sides of each fold, from the fold summary's per-fold counts (None: no group column).
+
+    A scheme that keeps groups whole always stops on a count above 0; a scheme that ignores groups is noted,
+    warned about or stopped as ``leakage.group_overlap`` says.
+    """
+    column = spec.get("group")
+    if not column:
+        return None
+    scheme = fold_spec["scheme"]
+    counts = summary["groups_on_both_sides"]
+    total = int(dev[column].nunique())
+    found: dict[str, Any] = {
+        "column": column, "scheme": scheme, "scheme_keeps_groups": scheme in GROUPED, "mode": mode,
+        "groups": total, "folds_with_overlap": int((counts > 0).sum()), "most_in_a_fold": int(counts.max()),
+        "folds": [{"repeat": int(r["repeat"]), "fold": int(r["fold"]), "validation_groups": int(r["groups"]),
+                   "groups_on_both_sides": int(r["groups_on_both_sides"])} for _, r in summary.iterrows()],
+        "text": f"0 of {total} group(s) of '{column}' on both sides of any of the {len(summary)} fold(s) "
+                "(counted per fold)", "warning": None}
+    if not found["folds_with_overlap"]:
+        return found
+    worst = summary.loc[counts.idxmax()]
+    found["text"] = (f"in {found['folds_with_overlap']} of {len(summary)} fold(s) groups of '{column}' have rows on "
+                     f"both sides (most in repeat {int(worst['repeat'])}, fold {int(worst['fold'])}: "
+                     f"{int(worst['groups_on_both_sides'])} of its {int(worst['groups'])} validation group(s); "
+                     f"{total} group(s) in all)")
+    if scheme in GROUPED:
+        raise DataError(f"folds ({scheme}): {found['text']}, though the scheme keeps groups whole; rebuild the folds")
+    message = f"folds.scheme {scheme} ignores data.group: {found['text']}"
+    if mode == "error":
+        raise DataError(f"{message}; use folds.scheme: group or stratified_group (whole groups per fold), or set "
+                        "leakage.group_overlap: warn")
+    if mode == "warn":
+        found["warning"] = (f"{message}; if the model will meet new groups, use folds.scheme: group or "
+                            "stratified_group")
+    return found
+
+
 def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any], task: str,
                    settings: dict[str, Any], manifest: dict[str, Any], summary_path: str,
                    fold_spec: dict[str, Any] | None = None) -> dict[str, Any]:
-    """Write folds_summary.parquet and return leakage.json's content; duplicates may be an error."""
+    """Write folds_summary.parquet and return leakage.json's content; duplicates and group overlap may be errors."""
     from ._io import write_parquet
     from .leakage import fold_summary
 
@@ -330,8 +369,12 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
                         f"{worst['repeat']}, fold {worst['fold']}: {worst['duplicates_with_training']}); "
                         "remove duplicate rows or set leakage.duplicates: warn")
     at_seal = manifest.get("leakage", {})
+    groups = group_overlap(dev, summary, spec, fold_spec, settings.get("group_overlap", "warn"))
     lines = [f"leakage: {at_seal.get('duplicate_feature_rows_dev_test', 0)} test row(s) duplicate development rows; "
-             f"{within} validation row(s) duplicate training rows across folds; group overlap: none"]
+             f"{within} validation row(s) duplicate training rows across folds; "
+             f"group overlap: {groups['text'] if groups else 'no group column'}"]
+    if groups and groups["warning"]:
+        lines.append(f"leakage warning: {groups['warning']}")
     lines += [f"leakage warning: feature '{a['feature']}' alone reaches {a['measure']} {a['value']:.3f}"
               for a in at_seal.get("single_feature", [])]
     mode = settings.get("time_order", "note")
@@ -364,7 +407,7 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
         "duplicate_feature_rows_dev_test": at_seal.get("duplicate_feature_rows_dev_test"),
         "duplicate_feature_rows_within_folds": within,
         "duplicates_mode": settings.get("duplicates", "warn"),
-        "group_overlap": "none (checked for every fold)" if spec.get("group") else "no group column",
+        "group_overlap": {k: v for k, v in groups.items() if k not in ("text", "warning")} if groups else None,
         "single_feature": at_seal.get("single_feature", []),
         "single_feature_threshold": at_seal.get("single_feature_threshold"),
         "classes_missing_from_validation": missing,
