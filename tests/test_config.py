@@ -58,6 +58,8 @@ def edit(path: str, value: Any) -> dict[str, Any]:
     (edit("candidates.logistic.params", {"C": 1.0}), r"parameter 'C' is in both params and grid"),
     (edit("data.group", "target"), r"'data.target' and 'data.group' both name column 'target'"),
     (edit("task", "clustering"), r"config key 'task'"),
+    (edit("data.time_unit", "days"), r"config key 'data.time_unit': 'days' is not one of"),
+    (edit("leakage.group_overlap", "ignore"), r"config key 'leakage.group_overlap': 'ignore' is not one of"),
 ])
 def test_schema_and_cross_field_errors(config: dict[str, Any], message: str) -> None:
     with pytest.raises(ConfigError, match=message):

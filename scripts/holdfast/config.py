@@ -285,6 +285,8 @@ def seal_spec(config: dict[str, Any]) -> dict[str, Any]:
         "task": config.get("task"),
         "fraction": config["test"]["fraction"], "scheme": config["test"]["scheme"], "salt": config["test"]["salt"],
         **({"gap_hours": config["test"]["gap_hours"]} if config["test"]["scheme"] == "time_tail" else {}),
+        # Only when set, so experiments sealed before the key existed keep their spec.
+        **({"time_unit": data["time_unit"]} if data.get("time_unit") else {}),
     }
 
 

@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .dataset import KEY
+from .dataset import KEY, parse_times
 from .errors import ConfigError, DataError
 from .foldspec import COMPLETE, FORWARD, GROUPED, HOLDOUT, STRATIFIED, effective_k, repeats
 
@@ -45,7 +45,8 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
         if scheme == "stratified_holdout":
             assert target is not None
             counts = target.value_counts()
-            if int(counts.min()) < 2 or min(n_val, n_train) < len(counts):
+            _check_class_sizes(counts, target, scheme)
+            if min(n_val, n_train) < len(counts):
                 raise ConfigError(f"config key 'folds.fraction' is {spec['fraction']}: stratified_holdout needs every "
                                   f"one of the {len(counts)} classes on both sides, but class '{counts.idxmin()}' "
                                   f"has {int(counts.min())} row(s) and the smaller side {min(n_val, n_train)}; use "
@@ -73,6 +74,7 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
     if scheme in ("stratified", "stratified_group"):
         assert target is not None
         counts = target.value_counts()
+        _check_class_sizes(counts, target, scheme)
         if k > int(counts.min()):
             raise ConfigError(f"config key 'folds.k' is {k} but class '{counts.idxmin()}' of '{target.name}' has only "
                               f"{int(counts.min())} development rows; lower folds.k to at most {int(counts.min())} "
@@ -83,6 +85,18 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
         if k > n_groups:
             raise ConfigError(f"config key 'folds.k' is {k} but group column '{groups.name}' has only {n_groups} "
                               f"groups in the development rows; lower folds.k to at most {n_groups}")
+
+
+def _check_class_sizes(counts: pd.Series, target: pd.Series, scheme: str) -> None:
+    """A stratified scheme needs every class on both sides: a class with one development row cannot be."""
+    if int(counts.min()) >= 2:
+        return
+    alone = sorted(map(str, counts.index[counts < 2]))
+    other = "group" if scheme == "stratified_group" else "kfold"
+    more = f" (and {len(alone) - 1} more class(es) too)" if len(alone) > 1 else ""
+    raise ConfigError(f"folds.scheme {scheme} needs at least 2 development rows per class but class '{alone[0]}' of "
+                      f"'{target.name}' has 1{more}; remove or merge that class's rows in the data file (before the "
+                      f"seal), or use folds.scheme: {other}")
 
 
 def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
@@ -132,14 +146,14 @@ def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
         yield validation
 
 
-def time_order(dev: pd.DataFrame, time_col: str) -> np.ndarray:
+def time_order(dev: pd.DataFrame, time_col: str, time_unit: str | None = None) -> np.ndarray:
     """Positions of the development rows sorted by time; ties keep their stored order."""
-    times = pd.to_datetime(dev[time_col], utc=True).to_numpy()
+    times = parse_times(dev[time_col], time_unit).to_numpy()
     return np.argsort(times, kind="stable")
 
 
-def _forward(dev: pd.DataFrame, spec: dict[str, Any], time_col: str,
-             group_col: str | None) -> tuple[np.ndarray, np.ndarray]:
+def _forward(dev: pd.DataFrame, spec: dict[str, Any], time_col: str, group_col: str | None,
+             time_unit: str | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Fold (−1: never validated) and train_from (k: never trained on) of every dev row for forward folds.
 
     The cuts are those of scikit-learn's TimeSeriesSplit(n_splits=k, test_size=window, gap=gap) on the
@@ -147,11 +161,11 @@ def _forward(dev: pd.DataFrame, spec: dict[str, Any], time_col: str,
     part every row (group) not strictly earlier than the window's first time, so equal timestamps never
     straddle a cut; with distinct times the folds equal TimeSeriesSplit's.
     """
-    times = pd.to_datetime(dev[time_col], utc=True).to_numpy()
+    times = parse_times(dev[time_col], time_unit).to_numpy()
     k, gap = int(spec["k"]), int(spec["gap"])
     if group_col is None:
         unit_of = np.empty(len(dev), dtype=np.int64)
-        unit_of[time_order(dev, time_col)] = np.arange(len(dev))  # each row is its own unit, in time order
+        unit_of[time_order(dev, time_col, time_unit)] = np.arange(len(dev))  # each row is its own unit, in time order
         first = last = times[np.argsort(unit_of)]
     else:
         frame = pd.DataFrame({"g": dev[group_col].astype(str).to_numpy(), "t": times})
@@ -178,7 +192,7 @@ def _small_uint(limit: int) -> str:
 
 
 def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: str | None,
-           time_col: str | None = None) -> pd.DataFrame:
+           time_col: str | None = None, time_unit: str | None = None) -> pd.DataFrame:
     """Draw the fold table ``row_key, repeat, fold, train_from`` for the development rows.
 
     A row is validated in fold ``fold`` of its repeat (null: in no fold) and is in the training part
@@ -197,7 +211,8 @@ def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: 
         if scheme in FORWARD:
             if time_col is None:
                 raise ConfigError(f"folds.scheme {scheme} needs data.time; name the time column")
-            fold_of, train_from = _forward(dev, spec, time_col, group_col if scheme == "forward_group" else None)
+            fold_of, train_from = _forward(dev, spec, time_col, group_col if scheme == "forward_group" else None,
+                                           time_unit)
         else:
             fold_of = np.full(len(dev), -1, dtype=np.int64)
             for fold, validation in enumerate(_splits(spec, repeat, len(dev), target, groups)):
@@ -226,7 +241,7 @@ def fold_masks(part: pd.DataFrame, fold: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, spec: dict[str, Any],
-          groups: pd.Series | None = None, times: pd.Series | None = None) -> None:
+          groups: pd.Series | None = None, times: pd.Series | None = None, time_unit: str | None = None) -> None:
     """Check the invariants; raise DataError naming the scheme, repeat, fold and count.
 
     Every scheme: each dev row listed once per repeat, no test key, no empty fold, training and
@@ -246,7 +261,7 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
     if unknown:
         raise DataError(f"folds ({scheme}) name {len(unknown)} row(s) not in the development set; rebuild the folds")
     group_of = dict(zip(map(str, dev_keys), groups.astype(str).to_numpy(), strict=True)) if groups is not None else None
-    time_of = (dict(zip(map(str, dev_keys), pd.to_datetime(times, utc=True), strict=True))
+    time_of = (dict(zip(map(str, dev_keys), parse_times(times, time_unit), strict=True))
                if times is not None else None)
     for repeat, part in table.groupby("repeat", sort=True):
         part = part.reset_index(drop=True)
@@ -293,9 +308,10 @@ def _check_forward(part: pd.DataFrame, training: np.ndarray, validation: np.ndar
                         f"{spec['gap']}; rebuild the folds")
 
 
-def time_overlap(dev: pd.DataFrame, table: pd.DataFrame, time_col: str) -> list[dict[str, Any]]:
+def time_overlap(dev: pd.DataFrame, table: pd.DataFrame, time_col: str,
+                 time_unit: str | None = None) -> list[dict[str, Any]]:
     """Per fold of a scheme that ignores time: training rows later than the fold's first validation row."""
-    times = pd.Series(pd.to_datetime(dev[time_col], utc=True).to_numpy(), index=dev[KEY].to_numpy())
+    times = pd.Series(parse_times(dev[time_col], time_unit).to_numpy(), index=dev[KEY].to_numpy())
     out = []
     for repeat, part in table.groupby("repeat", sort=True):
         part = part.reset_index(drop=True)
@@ -385,7 +401,7 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
                      f"row ({seal_time['share']:.0%}); if the model will forecast, use test.scheme: time_tail")
     fold_time = None
     if spec.get("time") and scheme_ignores_time(fold_spec):
-        overlap = time_overlap(dev, table, spec["time"])
+        overlap = time_overlap(dev, table, spec["time"], spec.get("time_unit"))
         fold_time = {"column": spec["time"], "scheme": fold_spec["scheme"], "folds": overlap,
                      "training_rows_later": sum(o["training_rows_later"] for o in overlap)}
         if overlap and mode != "note":

@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .dataset import KEY, feature_columns
+from .dataset import KEY, feature_columns, parse_times
 
 
 def feature_hashes(frame: pd.DataFrame, spec: dict[str, Any]) -> pd.Series:
@@ -94,7 +94,7 @@ def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], t
             row["target_mean"] = float(sub[spec["target"]].mean())
             row["target_sd"] = float(sub[spec["target"]].std(ddof=1)) if len(sub) > 1 else float("nan")
         if spec.get("time"):
-            times = pd.to_datetime(sub[spec["time"]], utc=True)
+            times = parse_times(sub[spec["time"]], spec.get("time_unit"))
             row["time_first"], row["time_last"] = str(times.min()), str(times.max())
         rows.append(row)
     return pd.DataFrame(rows)

@@ -286,7 +286,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             text_columns = _text_features(pd.read_parquet(exp / DEV).drop(columns=["row_key"]), spec)
     else:
         from .dataset import row_keys
-        from .seal import check_development_classes, check_sides, load_checked, split_masks
+        from .seal import check_before_seal, check_development_classes, check_sides, load_checked, split_masks
 
         frame, task = load_checked(config["data"]["path"], spec)
         keys = row_keys(frame, spec["id"])
@@ -299,6 +299,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         if main:
             if task == "classification":
                 check_development_classes(dev[spec["target"]], config["data"]["path"])
+            check_before_seal(config, frame, test_rows, dropped, task)
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
     config = cfg.with_task(config, task)
     families = expand(config)
