@@ -451,6 +451,41 @@ def test_rows_of_one_class(workdir: Path, config: dict[str, Any]) -> None:
     use_data(workdir, config, frame[(frame["target"] == 1) | ~sealed])
 
 
+def grid_of_five_times_sixty(workdir: Path, config: dict[str, Any]) -> None:
+    """5 parameters x 60 values: 777,600,000 candidates that must be counted, not built."""
+    values = [round(0.001 * 1.2**i, 9) for i in range(60)]
+    config["candidates"]["logistic"]["grid"] = {name: values for name in ("C", "tol", "intercept_scaling",
+                                                                          "l1_ratio", "verbose")}
+
+
+def experiment_with_trailing_newline(workdir: Path, config: dict[str, Any]) -> None:
+    """An experiment name ending in a line break (Python's '$' matches before it)."""
+    config["experiment"] = "bc\n"
+
+
+def blank_reopen_reason(workdir: Path, config: dict[str, Any]) -> None:
+    """A second reopen reason made of spaces only."""
+    config["test"]["reopen_reasons"] = ["the first opening crashed half way", " " * 12]
+
+
+def repeated_reopen_reason(workdir: Path, config: dict[str, Any]) -> None:
+    """The same reopen reason twice (differing only in spacing and case)."""
+    config["test"]["reopen_reasons"] = ["labels were corrected in March", "Labels were corrected  in March"]
+
+
+def results_symlink_outside(workdir: Path, config: dict[str, Any]) -> None:
+    """results/ is a symbolic link to a folder outside the project."""
+    (workdir / "results").rename(workdir.parent / "moved_results")
+    (workdir / "results").symlink_to(workdir.parent / "moved_results", target_is_directory=True)
+
+
+def experiment_symlink_outside(workdir: Path, config: dict[str, Any]) -> None:
+    """results/<experiment> of a new experiment is a symbolic link to a folder outside the project."""
+    (workdir.parent / "elsewhere").mkdir()
+    (workdir / "results" / FRESH).symlink_to(workdir.parent / "elsewhere", target_is_directory=True)
+    config["experiment"] = FRESH
+
+
 # --- the table ---------------------------------------------------------------------------------------------------
 
 CASES = [
@@ -630,6 +665,24 @@ CASES = [
                  r"the sealed test rows of 'bad\.csv' would hold a single class \('1'\) in \d+ row\(s\), and metric "
                  r"'roc_auc' cannot be computed on them \(scikit-learn: .*\); use test\.scheme: stratified",
                  id="test-rows-one-class"),
+    pytest.param(grid_of_five_times_sixty, CONFIG_ERROR,
+                 r"the candidate grids expand to 777600002 candidates, more than max_candidates \(500\)",
+                 id="grid-five-by-sixty"),
+    pytest.param(experiment_with_trailing_newline, CONFIG_ERROR,
+                 r"config key 'experiment': 'bc\\n' matches .* only in part \(a trailing line break\?\); remove the "
+                 r"extra characters", id="experiment-trailing-newline"),
+    pytest.param(blank_reopen_reason, CONFIG_ERROR,
+                 r"config key 'test\.reopen_reasons\[1\]' is blank or shorter than 10 characters once spaces are "
+                 r"removed", id="reopen-reason-blank"),
+    pytest.param(repeated_reopen_reason, CONFIG_ERROR,
+                 r"config key 'test\.reopen_reasons\[1\]' repeats reopen_reasons\[0\]; each extra opening needs its "
+                 r"own written reason", id="reopen-reason-repeated"),
+    pytest.param(results_symlink_outside, CONFIG_ERROR,
+                 r"'results' is a symbolic link to '.*moved_results', outside the project folder .*; nothing was run",
+                 id="results-symlink-outside"),
+    pytest.param(experiment_symlink_outside, CONFIG_ERROR,
+                 r"'results/fresh' is a symbolic link to '.*elsewhere', outside the project folder",
+                 id="experiment-symlink-outside"),
 ]
 # Through the real Snakemake as well (each costs a full start-up): the issue's acceptance list plus
 # one case per error class and per place the check happens.
@@ -637,13 +690,15 @@ REAL_RUN = {"data-file-missing", "target-column-missing", "target-missing-values
             "k-above-smallest-class", "estimator-os-system", "scorer-unknown",
             "class-only-in-test", "parameter-value-invalid", "experiment-parent-path", "sealed-data-file-deleted",
             "data-outside-project", "holdout-fraction-too-small", "forward-min-train", "k-above-groups",
-            "metric-binary-on-three-classes", "time-epoch-seconds", "test-rows-one-class"}
+            "metric-binary-on-three-classes", "time-epoch-seconds", "test-rows-one-class", "grid-five-by-sixty",
+            "results-symlink-outside"}
 # Through the real `holdfast check`, each in a new process: every case found by trying the workflow as a
 # hostile or careless user would (each used to pass the check and fail only after the seal, or not at all).
 CLI_RUN = {"metric-binary-on-three-classes", "metric-default-on-three-classes", "metric-positive-label-missing",
            "labels-differ-by-space", "labels-differ-by-case", "column-of-lists", "column-of-structs",
            "target-infinite", "time-epoch-seconds", "time-unit-on-text", "class-of-one-row",
-           "class-only-in-sealed-rows", "test-rows-one-class"}
+           "class-only-in-sealed-rows", "test-rows-one-class", "grid-five-by-sixty", "experiment-trailing-newline",
+           "reopen-reason-blank", "reopen-reason-repeated", "results-symlink-outside", "experiment-symlink-outside"}
 
 
 def prepared_case(workdir: Path, edit: Edit) -> dict[str, Any]:
@@ -698,7 +753,10 @@ def test_bad_input_stops_the_real_workflow_with_one_line(bc_copy: Path, edit: Ed
 @pytest.mark.slow
 @pytest.mark.parametrize(("edit", "exit_code", "pattern"), [c for c in CASES if c.id in CLI_RUN])
 def test_bad_input_is_refused_by_holdfast_check(bc_copy: Path, edit: Edit, exit_code: int, pattern: str) -> None:
-    """`holdfast check CONFIG` (a new process) refuses with one line and its exit code, and writes nothing."""
+    """`holdfast check CONFIG` (a new process) refuses with one line and its exit code, and writes nothing.
+
+    The 5 x 60 grid would take hours and gigabytes to expand; the timeout makes a hang a failure.
+    """
     prepared_case(bc_copy, edit)
     results = bc_copy / "results"
     before = snapshot(results)

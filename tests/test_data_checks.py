@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import time
 from pathlib import Path
 
 import numpy as np
@@ -9,8 +10,11 @@ import pandas as pd
 import pytest
 from conftest import breast_cancer_frame, small_classification_config, write_config
 from holdfast import config as cfg
+from holdfast.candidates import expand
 from holdfast.dataset import check_label_spelling, feature_columns, parse_times
+from holdfast.errors import ConfigError
 from holdfast.folds import assign
+from holdfast.layout import check_experiment_dir
 from holdfast.seal import seal
 
 START = 1_735_689_600  # 2025-01-01T00:00:00Z in Unix epoch seconds
@@ -80,3 +84,25 @@ def test_a_nested_column_listed_in_drop_is_sealed_and_never_a_feature(tmp_path: 
 def test_labels_that_differ_in_more_than_spaces_or_case_pass(labels: list[object]) -> None:
     check_label_spelling(pd.Series(labels * 3, name="answer"), "data.csv")
 
+
+def test_grids_are_counted_before_they_are_built() -> None:
+    config = cfg.validate(small_classification_config())
+    config["candidates"]["logistic"]["grid"] = {"C": [0.1, 1.0, 10.0], "tol": [1e-4, 1e-3, 1e-2, 1e-1]}
+    assert sum(len(c) for c in expand(config).values()) == 3 * 4 + 2
+    config["candidates"]["logistic"]["grid"] = {f"p{i}": list(range(60)) for i in range(5)}
+    started = time.perf_counter()
+    with pytest.raises(ConfigError, match=r"expand to 777600002 candidates, more than max_candidates \(500\)"):
+        expand(config)
+    assert time.perf_counter() - started < 5  # building 777,600,000 candidates would take hours
+
+
+def test_symlinks_inside_the_project_are_allowed_and_outside_refused(tmp_path: Path) -> None:
+    project, outside = tmp_path / "project", tmp_path / "outside"
+    (project / "store" / "bc").mkdir(parents=True)
+    outside.mkdir()
+    (project / "results").symlink_to(project / "store", target_is_directory=True)
+    check_experiment_dir(project / "results" / "bc", project)  # a link that stays inside the project
+    (project / "store" / "bc" / "final").symlink_to(outside, target_is_directory=True)
+    with pytest.raises(ConfigError, match=r"'.*results/bc/final' is a symbolic link to '.*outside', outside the "
+                                          r"project folder"):
+        check_experiment_dir(project / "results" / "bc", project)

@@ -263,6 +263,9 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
     config = cfg.validate(raw)
     cfg.check_data_location(config)
     exp = cfg.experiment_dir(config, results)
+    from .layout import check_experiment_dir
+
+    check_experiment_dir(exp)
     manifest = read_manifest(exp)
     spec = cfg.seal_spec(config)
     dev_target = dev_groups = None
