@@ -451,6 +451,18 @@ def test_rows_of_one_class(workdir: Path, config: dict[str, Any]) -> None:
     use_data(workdir, config, frame[(frame["target"] == 1) | ~sealed])
 
 
+def log_error_on_negative_target(workdir: Path, config: dict[str, Any]) -> None:
+    """A logarithmic error on a target with negative values (the diabetes progression score minus 150)."""
+    from conftest import diabetes_frame
+
+    frame = diabetes_frame()
+    frame["target"] = frame["target"] - 150
+    frame.insert(0, "patient", [f"P{i:04d}" for i in range(len(frame))])
+    use_data(workdir, config, frame)
+    config["metrics"] = ["neg_mean_squared_log_error"]
+    config["folds"] = {"scheme": "kfold", "k": 3}
+
+
 def grid_of_five_times_sixty(workdir: Path, config: dict[str, Any]) -> None:
     """5 parameters x 60 values: 777,600,000 candidates that must be counted, not built."""
     values = [round(0.001 * 1.2**i, 9) for i in range(60)]
@@ -665,6 +677,10 @@ CASES = [
                  r"the sealed test rows of 'bad\.csv' would hold a single class \('1'\) in \d+ row\(s\), and metric "
                  r"'roc_auc' cannot be computed on them \(scikit-learn: .*\); use test\.scheme: stratified",
                  id="test-rows-one-class"),
+    pytest.param(log_error_on_negative_target, CONFIG_ERROR,
+                 r"config key 'metrics\[0\]': 'neg_mean_squared_log_error' cannot score target 'target' \(from -\d+ to "
+                 r"\d+; scikit-learn: Mean Squared Logarithmic Error cannot be used when targets contain values less "
+                 r"than or equal to -1\); choose another metric", id="metric-outside-target-range"),
     pytest.param(grid_of_five_times_sixty, CONFIG_ERROR,
                  r"the candidate grids expand to 777600002 candidates, more than max_candidates \(500\)",
                  id="grid-five-by-sixty"),
@@ -697,8 +713,9 @@ REAL_RUN = {"data-file-missing", "target-column-missing", "target-missing-values
 CLI_RUN = {"metric-binary-on-three-classes", "metric-default-on-three-classes", "metric-positive-label-missing",
            "labels-differ-by-space", "labels-differ-by-case", "column-of-lists", "column-of-structs",
            "target-infinite", "time-epoch-seconds", "time-unit-on-text", "class-of-one-row",
-           "class-only-in-sealed-rows", "test-rows-one-class", "grid-five-by-sixty", "experiment-trailing-newline",
-           "reopen-reason-blank", "reopen-reason-repeated", "results-symlink-outside", "experiment-symlink-outside"}
+           "class-only-in-sealed-rows", "test-rows-one-class", "metric-outside-target-range", "grid-five-by-sixty",
+           "experiment-trailing-newline", "reopen-reason-blank", "reopen-reason-repeated", "results-symlink-outside",
+           "experiment-symlink-outside"}
 
 
 def prepared_case(workdir: Path, edit: Edit) -> dict[str, Any]:

@@ -132,6 +132,9 @@ def check_time_column(frame: pd.DataFrame, spec: dict[str, Any], source: str) ->
     except (OverflowError, ValueError) as exc:  # numbers beyond the timestamp range for this unit
         raise DataError(f"time column '{column}' of '{source}' has numbers out of range as {unit} since 1970 "
                         f"({exc}); check data.time_unit") from exc
+    if parsed.isna().any() and numeric:
+        raise DataError(f"time column '{column}' has {int(parsed.isna().sum())} number(s) out of range as {unit} since "
+                        f"1970 in '{source}'; check data.time_unit")
     if parsed.isna().any():
         raise DataError(f"time column '{column}' has {int(parsed.isna().sum())} value(s) that are not "
                         f"timestamps in '{source}'; use ISO-8601 times")

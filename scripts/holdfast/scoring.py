@@ -131,13 +131,17 @@ def metric_problem(name: str, classes: np.ndarray, y: Any) -> str | None:
     The scorer itself is asked, on the same replay the fit jobs and the opening use, so the answer follows
     the installed scikit-learn rather than a list of names.
     """
+    y = np.asarray(y)
+    return _score_problem(name, _probe_model(np.asarray(classes), len(y)), y)
+
+
+def _score_problem(name: str, model: _ReplayBase, y: np.ndarray) -> str | None:
     import warnings
 
-    y = np.asarray(y)
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            value = get_scorer(name)(_probe_model(np.asarray(classes), len(y)), np.arange(len(y)).reshape(-1, 1), y)
+            value = get_scorer(name)(model, np.arange(len(y)).reshape(-1, 1), y)
     except Exception as exc:  # any failure here is the failure a fit job or the opening would meet
         text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         return text.rstrip(".")
@@ -173,6 +177,21 @@ def check_metrics_for_target(metrics: list[str], target: Any, defaults: bool = F
             f", or use {instead}" if instead and instead.endswith("_macro") else "")
         raise ConfigError(f"{key}: '{name}' cannot score target '{getattr(target, 'name', '')}' with classes "
                           f"{labels_text(classes)} (scikit-learn: {problem}); {fix}")
+
+
+def check_regression_metrics(metrics: list[str], target: Any) -> None:
+    """Every metric can score this regression target's values (a log or deviance error needs positive ones).
+
+    Asked of the scorer with predictions drawn from the target's own values; a model that predicts outside
+    that range can still fail later, but a target outside the metric's domain is known now.
+    """
+    y = np.asarray(target, dtype=float)[:PROBE_ROWS]
+    for position, name in enumerate(metrics):
+        problem = _score_problem(name, replay({"predict": np.roll(y, 1)}, "regression"), y)
+        if problem is not None:
+            raise ConfigError(f"config key 'metrics[{position}]': '{name}' cannot score target "
+                              f"'{getattr(target, 'name', '')}' (from {y.min():g} to {y.max():g}; scikit-learn: "
+                              f"{problem}); choose another metric, e.g. neg_mean_absolute_error")
 
 
 def clopper_pearson(successes: int, trials: int, level: float) -> tuple[float, float]:

@@ -180,14 +180,15 @@ def check_before_seal(config: dict[str, Any], frame: pd.DataFrame, test_rows: np
                       task: str) -> None:
     """Refuse, while it can still be fixed, metrics that cannot score the target and a test partition that would
     leave a class unlearnt or a metric undefined; plan.prepare runs it on every not-yet-sealed experiment."""
-    if task != "classification":
-        return
     from .config import with_task
-    from .scoring import check_metrics, check_metrics_for_target
+    from .scoring import check_metrics, check_metrics_for_target, check_regression_metrics
 
     metrics = with_task(config, task)["metrics"]
     check_metrics(metrics, task)  # names first, so an unknown scorer is reported as such
     target = frame[config["data"]["target"]]
+    if task != "classification":
+        check_regression_metrics(metrics, target[~test_rows & ~dropped])
+        return
     dev_target = target[~test_rows & ~dropped]
     check_metrics_for_target(metrics, dev_target, defaults=not config.get("metrics"))
     check_test_partition(dev_target, target[test_rows], metrics, config["data"]["path"])
