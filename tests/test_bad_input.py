@@ -444,7 +444,7 @@ def third_class_only_in_test(workdir: Path, config: dict[str, Any]) -> None:
     use_data(workdir, config, frame)
 
 
-def test_rows_of_one_class(workdir: Path, config: dict[str, Any]) -> None:
+def sealed_rows_of_one_class(workdir: Path, config: dict[str, Any]) -> None:
     """Only benign rows hash into the sealed test set, so its roc_auc would be undefined."""
     frame = breast_cancer_frame()
     sealed = sealed_rows(frame, config)
@@ -673,7 +673,7 @@ CASES = [
                  r"class '2' of target column 'target' would be only in the sealed test rows of 'bad\.csv' \(3 "
                  r"row\(s\), none among the development rows\).*use test\.scheme: stratified",
                  id="class-only-in-sealed-rows"),
-    pytest.param(test_rows_of_one_class, DATA_ERROR,
+    pytest.param(sealed_rows_of_one_class, DATA_ERROR,
                  r"the sealed test rows of 'bad\.csv' would hold a single class \('1'\) in \d+ row\(s\), and metric "
                  r"'roc_auc' cannot be computed on them \(scikit-learn: .*\); use test\.scheme: stratified",
                  id="test-rows-one-class"),
