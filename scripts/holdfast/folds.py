@@ -92,7 +92,7 @@ def _check_class_sizes(counts: pd.Series, target: pd.Series, scheme: str) -> Non
     if int(counts.min()) >= 2:
         return
     alone = sorted(map(str, counts.index[counts < 2]))
-    other = "group" if scheme == "stratified_group" else "kfold"
+    other = {"stratified_group": "group", "stratified_holdout": "holdout"}.get(scheme, "kfold")
     more = f" (and {len(alone) - 1} more class(es) too)" if len(alone) > 1 else ""
     raise ConfigError(f"folds.scheme {scheme} needs at least 2 development rows per class but class '{alone[0]}' of "
                       f"'{target.name}' has 1{more}; remove or merge that class's rows in the data file (before the "
