@@ -324,6 +324,180 @@ def tiny_test_fraction(workdir: Path, config: dict[str, Any]) -> None:
     config["test"] = {**config["test"], "scheme": "stratified", "fraction": 0.002}
 
 
+def bundled_frame(name: str) -> pd.DataFrame:
+    """A multiclass data set scikit-learn ships (load_iris: Fisher 1936, 150 rows, 3 classes; load_wine: UCI wine
+    recognition data, 178 rows, 3 classes), with the breast cancer config's id column 'patient'."""
+    from sklearn import datasets
+
+    frame = getattr(datasets, f"load_{name}")(as_frame=True).frame
+    frame = frame.rename(columns=lambda c: c.replace(" (cm)", "").replace(" ", "_").replace("/", "_"))
+    frame.insert(0, "patient", [f"P{i:04d}" for i in range(len(frame))])
+    return frame
+
+
+def sealed_rows(frame: pd.DataFrame, config: dict[str, Any]) -> np.ndarray:
+    """Which rows the config's hashed test partition seals (membership from the key and salt alone)."""
+    return hash_unit(frame["patient"], config["test"]["salt"]) < config["test"]["fraction"]
+
+
+def binary_metric_on_three_classes(workdir: Path, config: dict[str, Any]) -> None:
+    """roc_auc (binary only) on the three iris species: every fit would fail after the seal."""
+    use_data(workdir, config, bundled_frame("iris"))
+    config["metrics"] = ["accuracy", "roc_auc"]
+
+
+def default_metrics_on_three_classes(workdir: Path, config: dict[str, Any]) -> None:
+    """No metrics set on the three wine cultivars: the default roc_auc cannot score them."""
+    use_data(workdir, config, bundled_frame("wine"))
+    del config["metrics"]
+
+
+def f1_on_text_labels(workdir: Path, config: dict[str, Any]) -> None:
+    """f1 scores the label 1, which a target of 'benign'/'malignant' does not have."""
+    frame = breast_cancer_frame()
+    frame["target"] = np.where(frame["target"] == 1, "benign", "malignant")
+    use_data(workdir, config, frame)
+    config["metrics"] = ["f1"]
+
+
+def labels_differ_by_a_space(workdir: Path, config: dict[str, Any]) -> None:
+    """Three rows say 'benign ' (trailing space) where the rest say 'benign'."""
+    frame = breast_cancer_frame()
+    frame["target"] = np.where(frame["target"] == 1, "benign", "malignant")
+    frame.loc[frame.index[frame["target"] == "benign"][:3], "target"] = "benign "
+    use_data(workdir, config, frame)
+    config["metrics"] = ["accuracy"]
+
+
+def labels_differ_by_case(workdir: Path, config: dict[str, Any]) -> None:
+    """Two rows say 'Malignant' where the rest say 'malignant'."""
+    frame = breast_cancer_frame()
+    frame["target"] = np.where(frame["target"] == 1, "benign", "malignant")
+    frame.loc[frame.index[frame["target"] == "malignant"][:2], "target"] = "Malignant"
+    use_data(workdir, config, frame)
+    config["metrics"] = ["accuracy"]
+
+
+def use_parquet(workdir: Path, config: dict[str, Any], frame: pd.DataFrame) -> None:
+    """Write ``frame`` as a Parquet data file of a new experiment."""
+    frame.to_parquet(workdir / "bad.parquet", index=False)
+    config["experiment"] = FRESH
+    config["data"]["path"] = "bad.parquet"
+
+
+def list_column(workdir: Path, config: dict[str, Any]) -> None:
+    """A Parquet list column (tags per patient) left among the features."""
+    frame = breast_cancer_frame()
+    frame["tags"] = [["follow-up"] * (i % 3) for i in range(len(frame))]
+    use_parquet(workdir, config, frame)
+
+
+def struct_column(workdir: Path, config: dict[str, Any]) -> None:
+    """A Parquet struct column (lab site and batch) left among the features."""
+    frame = breast_cancer_frame()
+    frame["lab"] = [{"site": "north" if i % 2 else "south", "batch": i % 5} for i in range(len(frame))]
+    use_parquet(workdir, config, frame)
+
+
+def infinite_target(workdir: Path, config: dict[str, Any]) -> None:
+    """One target value is infinite (the seal used to end in a traceback)."""
+    frame = breast_cancer_frame().astype({"target": "float64"})
+    frame.loc[3, "target"] = np.inf
+    use_data(workdir, config, frame)
+
+
+def epoch_seconds(frame: pd.DataFrame) -> pd.DataFrame:
+    """The frame with an hourly time column in Unix epoch seconds from 2025-01-01 (crafted)."""
+    out = frame.copy()
+    out["visit_at"] = 1_735_689_600 + 3600 * np.arange(len(out))
+    return out
+
+
+def time_in_epoch_seconds(workdir: Path, config: dict[str, Any]) -> None:
+    """Integer epoch seconds in data.time, which pandas would read as nanoseconds after 1970."""
+    use_data(workdir, config, epoch_seconds(breast_cancer_frame()))
+    config["data"]["time"] = "visit_at"
+    config["test"] = {**config["test"], "scheme": "time_tail"}
+
+
+def time_unit_on_text_times(workdir: Path, config: dict[str, Any]) -> None:
+    """data.time_unit set for a column of ISO-8601 text: it would do nothing."""
+    frame = breast_cancer_frame()
+    frame["visit_at"] = pd.date_range("2025-01-01", periods=len(frame), freq="h", tz="UTC").astype(str)
+    use_data(workdir, config, frame)
+    config["data"]["time"] = "visit_at"
+    config["data"]["time_unit"] = "s"
+
+
+def one_member_class(workdir: Path, config: dict[str, Any]) -> None:
+    """A third class with a single development row under stratified folds."""
+    frame = breast_cancer_frame()
+    frame.loc[int(np.flatnonzero(~sealed_rows(frame, config))[0]), "target"] = 2
+    use_data(workdir, config, frame)
+    config["metrics"] = ["accuracy"]
+
+
+def third_class_only_in_test(workdir: Path, config: dict[str, Any]) -> None:
+    """Every row of a third class hashes into the sealed test set."""
+    frame = breast_cancer_frame()
+    frame.loc[np.flatnonzero(sealed_rows(frame, config))[:3], "target"] = 2
+    use_data(workdir, config, frame)
+
+
+def sealed_rows_of_one_class(workdir: Path, config: dict[str, Any]) -> None:
+    """Only benign rows hash into the sealed test set, so its roc_auc would be undefined."""
+    frame = breast_cancer_frame()
+    sealed = sealed_rows(frame, config)
+    use_data(workdir, config, frame[(frame["target"] == 1) | ~sealed])
+
+
+def log_error_on_negative_target(workdir: Path, config: dict[str, Any]) -> None:
+    """A logarithmic error on a target with negative values (the diabetes progression score minus 150)."""
+    from conftest import diabetes_frame
+
+    frame = diabetes_frame()
+    frame["target"] = frame["target"] - 150
+    frame.insert(0, "patient", [f"P{i:04d}" for i in range(len(frame))])
+    use_data(workdir, config, frame)
+    config["metrics"] = ["neg_mean_squared_log_error"]
+    config["folds"] = {"scheme": "kfold", "k": 3}
+
+
+def grid_of_five_times_sixty(workdir: Path, config: dict[str, Any]) -> None:
+    """5 parameters x 60 values: 777,600,000 candidates that must be counted, not built."""
+    values = [round(0.001 * 1.2**i, 9) for i in range(60)]
+    config["candidates"]["logistic"]["grid"] = {name: values for name in ("C", "tol", "intercept_scaling",
+                                                                          "l1_ratio", "verbose")}
+
+
+def experiment_with_trailing_newline(workdir: Path, config: dict[str, Any]) -> None:
+    """An experiment name ending in a line break (Python's '$' matches before it)."""
+    config["experiment"] = "bc\n"
+
+
+def blank_reopen_reason(workdir: Path, config: dict[str, Any]) -> None:
+    """A second reopen reason made of spaces only."""
+    config["test"]["reopen_reasons"] = ["the first opening crashed half way", " " * 12]
+
+
+def repeated_reopen_reason(workdir: Path, config: dict[str, Any]) -> None:
+    """The same reopen reason twice (differing only in spacing and case)."""
+    config["test"]["reopen_reasons"] = ["labels were corrected in March", "Labels were corrected  in March"]
+
+
+def results_symlink_outside(workdir: Path, config: dict[str, Any]) -> None:
+    """results/ is a symbolic link to a folder outside the project."""
+    (workdir / "results").rename(workdir.parent / "moved_results")
+    (workdir / "results").symlink_to(workdir.parent / "moved_results", target_is_directory=True)
+
+
+def experiment_symlink_outside(workdir: Path, config: dict[str, Any]) -> None:
+    """results/<experiment> of a new experiment is a symbolic link to a folder outside the project."""
+    (workdir.parent / "elsewhere").mkdir()
+    (workdir / "results" / FRESH).symlink_to(workdir.parent / "elsewhere", target_is_directory=True)
+    config["experiment"] = FRESH
+
+
 # --- the table ---------------------------------------------------------------------------------------------------
 
 CASES = [
@@ -458,13 +632,90 @@ CASES = [
     pytest.param(tiny_test_fraction, CONFIG_ERROR,
                  r"config key 'test\.fraction' is 0\.002: with test\.scheme stratified it leaves 1 test and \d+ "
                  r"development row\(s\) of 'data\.csv', fewer than 2 on a side", id="test-fraction-one-row"),
+    pytest.param(binary_metric_on_three_classes, CONFIG_ERROR,
+                 r"config key 'metrics\[1\]': 'roc_auc' scores two classes but target 'target' has 3 \('0', '1', "
+                 r"'2'\) \(scikit-learn: .*\); use roc_auc_ovr instead", id="metric-binary-on-three-classes"),
+    pytest.param(default_metrics_on_three_classes, CONFIG_ERROR,
+                 r"config key 'metrics' \(not set, so the defaults accuracy, roc_auc, neg_log_loss apply\): 'roc_auc' "
+                 r"scores two classes but target 'target' has 3 .*; use roc_auc_ovr instead",
+                 id="metric-default-on-three-classes"),
+    pytest.param(f1_on_text_labels, CONFIG_ERROR,
+                 r"config key 'metrics\[0\]': 'f1' cannot score target 'target' with classes 'benign', 'malignant' "
+                 r"\(scikit-learn: pos_label=1 .*\); recode the target as 0 and 1 \(1 = the class of interest\), or "
+                 r"use f1_macro", id="metric-positive-label-missing"),
+    pytest.param(labels_differ_by_a_space, DATA_ERROR,
+                 r"target column 'target' has classes 'benign' \(\d+ rows\) and 'benign ' \(3 rows\) in 'bad\.csv', "
+                 r"which differ only in spaces or case; make them one label", id="labels-differ-by-space"),
+    pytest.param(labels_differ_by_case, DATA_ERROR,
+                 r"target column 'target' has classes 'Malignant' \(2 rows\) and 'malignant' \(\d+ rows\) .*differ "
+                 r"only in spaces or case", id="labels-differ-by-case"),
+    pytest.param(list_column, DATA_ERROR,
+                 r"column 'tags' \(a feature\) of 'bad\.parquet' holds lists or structs \(nested values\), which no "
+                 r"model step can use; list it in data\.drop \(possible now: nothing is sealed yet\)",
+                 id="column-of-lists"),
+    pytest.param(struct_column, DATA_ERROR,
+                 r"column 'lab' \(a feature\) of 'bad\.parquet' holds lists or structs .*list it in data\.drop",
+                 id="column-of-structs"),
+    pytest.param(infinite_target, DATA_ERROR,
+                 r"target column 'target' has 1 infinite value\(s\) in 'bad\.csv' \(first at data row 4\); drop or "
+                 r"fix those rows before the seal", id="target-infinite"),
+    pytest.param(time_in_epoch_seconds, DATA_ERROR,
+                 r"time column 'visit_at' of 'bad\.csv' holds numbers \(e\.g\. 1735689600\), not timestamps; set "
+                 r"data\.time_unit to s, ms, us or ns", id="time-epoch-seconds"),
+    pytest.param(time_unit_on_text_times, DATA_ERROR,
+                 r"config key 'data\.time_unit' is s but time column 'visit_at' of 'bad\.csv' does not hold numbers; "
+                 r"remove data\.time_unit", id="time-unit-on-text"),
+    pytest.param(one_member_class, CONFIG_ERROR,
+                 r"folds\.scheme stratified needs at least 2 development rows per class but class '2' of 'target' has "
+                 r"1; remove or merge that class's rows in the data file \(before the seal\), or use folds\.scheme: "
+                 r"kfold", id="class-of-one-row"),
+    pytest.param(third_class_only_in_test, DATA_ERROR,
+                 r"class '2' of target column 'target' would be only in the sealed test rows of 'bad\.csv' \(3 "
+                 r"row\(s\), none among the development rows\).*use test\.scheme: stratified",
+                 id="class-only-in-sealed-rows"),
+    pytest.param(sealed_rows_of_one_class, DATA_ERROR,
+                 r"the sealed test rows of 'bad\.csv' would hold a single class \('1'\) in \d+ row\(s\), and metric "
+                 r"'roc_auc' cannot be computed on them \(scikit-learn: .*\); use test\.scheme: stratified",
+                 id="test-rows-one-class"),
+    pytest.param(log_error_on_negative_target, CONFIG_ERROR,
+                 r"config key 'metrics\[0\]': 'neg_mean_squared_log_error' cannot score target 'target' \(from -\d+ to "
+                 r"\d+; scikit-learn: Mean Squared Logarithmic Error cannot be used when targets contain values less "
+                 r"than or equal to -1\); choose another metric", id="metric-outside-target-range"),
+    pytest.param(grid_of_five_times_sixty, CONFIG_ERROR,
+                 r"the candidate grids expand to 777600002 candidates, more than max_candidates \(500\)",
+                 id="grid-five-by-sixty"),
+    pytest.param(experiment_with_trailing_newline, CONFIG_ERROR,
+                 r"config key 'experiment': 'bc\\n' matches .* only in part \(a trailing line break\?\); remove the "
+                 r"extra characters", id="experiment-trailing-newline"),
+    pytest.param(blank_reopen_reason, CONFIG_ERROR,
+                 r"config key 'test\.reopen_reasons\[1\]' is blank or shorter than 10 characters once spaces are "
+                 r"removed", id="reopen-reason-blank"),
+    pytest.param(repeated_reopen_reason, CONFIG_ERROR,
+                 r"config key 'test\.reopen_reasons\[1\]' repeats reopen_reasons\[0\]; each extra opening needs its "
+                 r"own written reason", id="reopen-reason-repeated"),
+    pytest.param(results_symlink_outside, CONFIG_ERROR,
+                 r"'results' is a symbolic link to '.*moved_results', outside the project folder .*; nothing was run",
+                 id="results-symlink-outside"),
+    pytest.param(experiment_symlink_outside, CONFIG_ERROR,
+                 r"'results/fresh' is a symbolic link to '.*elsewhere', outside the project folder",
+                 id="experiment-symlink-outside"),
 ]
 # Through the real Snakemake as well (each costs a full start-up): the issue's acceptance list plus
 # one case per error class and per place the check happens.
 REAL_RUN = {"data-file-missing", "target-column-missing", "target-missing-values", "misspelt-fold-key",
             "k-above-smallest-class", "estimator-os-system", "scorer-unknown",
             "class-only-in-test", "parameter-value-invalid", "experiment-parent-path", "sealed-data-file-deleted",
-            "data-outside-project", "holdout-fraction-too-small", "forward-min-train", "k-above-groups"}
+            "data-outside-project", "holdout-fraction-too-small", "forward-min-train", "k-above-groups",
+            "metric-binary-on-three-classes", "time-epoch-seconds", "test-rows-one-class", "grid-five-by-sixty",
+            "results-symlink-outside"}
+# Through the real `holdfast check`, each in a new process: every case found by trying the workflow as a
+# hostile or careless user would (each used to pass the check and fail only after the seal, or not at all).
+CLI_RUN = {"metric-binary-on-three-classes", "metric-default-on-three-classes", "metric-positive-label-missing",
+           "labels-differ-by-space", "labels-differ-by-case", "column-of-lists", "column-of-structs",
+           "target-infinite", "time-epoch-seconds", "time-unit-on-text", "class-of-one-row",
+           "class-only-in-sealed-rows", "test-rows-one-class", "metric-outside-target-range", "grid-five-by-sixty",
+           "experiment-trailing-newline", "reopen-reason-blank", "reopen-reason-repeated", "results-symlink-outside",
+           "experiment-symlink-outside"}
 
 
 def prepared_case(workdir: Path, edit: Edit) -> dict[str, Any]:
@@ -514,6 +765,28 @@ def test_bad_input_stops_the_real_workflow_with_one_line(bc_copy: Path, edit: Ed
     assert "Traceback" not in result.stderr, result.stderr[-3000:]
     assert snapshot(results) == before, "a bad input must not write under results/"
     assert not (bc_copy / "escape").exists() and not (bc_copy / "results" / "team").exists()
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(("edit", "exit_code", "pattern"), [c for c in CASES if c.id in CLI_RUN])
+def test_bad_input_is_refused_by_holdfast_check(bc_copy: Path, edit: Edit, exit_code: int, pattern: str) -> None:
+    """`holdfast check CONFIG` (a new process) refuses with one line and its exit code, and writes nothing.
+
+    The 5 x 60 grid would take hours and gigabytes to expand; the timeout makes a hang a failure.
+    """
+    prepared_case(bc_copy, edit)
+    results = bc_copy / "results"
+    before = snapshot(results)
+
+    check = subprocess.run([sys.executable, "-m", "holdfast", "check", "config.yaml"], capture_output=True,
+                           text=True, cwd=bc_copy, env={"PYTHONPATH": str(REPO / "scripts"), "PATH": "/usr/bin:/bin"},
+                           timeout=300)
+
+    last = last_stderr_line(check.stderr)
+    assert check.returncode == exit_code, check.stdout + check.stderr
+    assert last.startswith("holdfast:") and re.search(pattern, last), check.stderr
+    assert "Traceback" not in check.stderr and check.stdout == "", check.stdout + check.stderr
+    assert snapshot(results) == before, "a refused check must not write under results/"
 
 
 # --- a config file whose YAML would run code -------------------------------------------------------------------------

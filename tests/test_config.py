@@ -58,6 +58,20 @@ def edit(path: str, value: Any) -> dict[str, Any]:
     (edit("candidates.logistic.params", {"C": 1.0}), r"parameter 'C' is in both params and grid"),
     (edit("data.group", "target"), r"'data.target' and 'data.group' both name column 'target'"),
     (edit("task", "clustering"), r"config key 'task'"),
+    # Python's re lets a pattern's final '$' match before a trailing line break; whole values must match.
+    (edit("experiment", "bc\n"), r"config key 'experiment': 'bc\\n' matches .* only in part"),
+    (edit("candidates.logistic.estimator", "sklearn.linear_model.LogisticRegression\n"),
+     r"config key 'candidates.logistic.estimator': .* only in part"),
+    (edit("candidates.tree\n", {"estimator": "sklearn.tree.DecisionTreeClassifier"}),
+     r"config key 'candidates.tree\\n': 'tree\\n' matches .* only in part"),
+    (edit("allowed_modules", ["sklearn", "numpy\n"]), r"config key 'allowed_modules\[1\]': 'numpy\\n' matches"),
+    (edit("test.reopen_reasons", [" " * 10]), r"'test.reopen_reasons\[0\]' is blank or shorter than 10 characters"),
+    (edit("test.reopen_reasons", ["-" + " " * 12 + "x"]), r"'test.reopen_reasons\[0\]' is blank or shorter than"),
+    (edit("test.reopen_reasons", ["the labels were fixed", "the labels  were fixed "]),
+     r"'test.reopen_reasons\[1\]' repeats reopen_reasons\[0\]"),
+    (edit("data.time_unit", "s"), r"config key 'data.time_unit' is set but 'data.time' is not"),
+    (edit("data.time_unit", "days"), r"config key 'data.time_unit': 'days' is not one of"),
+    (edit("leakage.group_overlap", "ignore"), r"config key 'leakage.group_overlap': 'ignore' is not one of"),
 ])
 def test_schema_and_cross_field_errors(config: dict[str, Any], message: str) -> None:
     with pytest.raises(ConfigError, match=message):

@@ -282,8 +282,9 @@ def test_check_catches_broken_forward_tables() -> None:
     (spec("holdout", 1, fraction=0.02), r"'folds.fraction' is 0.02: with 40 development rows it leaves 1 "
                                         r"validation and 39 training row\(s\), fewer than 2 on a side"),
     (spec("holdout", 1, fraction=0.97), r"leaves 39 validation and 1 training row\(s\)"),
-    (spec("stratified_holdout", 1, fraction=0.25), r"stratified_holdout needs every one of the 3 classes on both "
-                                                   r"sides, but class '2' has 1 row\(s\)"),
+    (spec("stratified_holdout", 1, fraction=0.25), r"folds.scheme stratified_holdout needs at least 2 development "
+                                                   r"rows per class but class '2' of 'y' has 1; remove or merge that "
+                                                   r"class's rows .*, or use folds.scheme: holdout"),
     (spec("forward", 1, k=4, window=9, gap=2), r"folds \(forward\): with 40 development rows, k=4 windows of 9 and a "
                                                r"gap of 2, fold 0 would train on 2 rows, fewer than folds.min_train=3"),
     (spec("forward_group", 1, k=4, gap=1),

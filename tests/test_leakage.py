@@ -3,12 +3,15 @@
 from __future__ import annotations
 
 import json
+import re
+import shutil
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import breast_cancer_frame, diabetes_frame
+import yaml
+from conftest import REPO, breast_cancer_frame, diabetes_frame, run_workflow, write_config
 from holdfast.errors import DataError
 from holdfast.folds import assign, leakage_report
 from holdfast.leakage import fold_summary, single_feature_alarms
@@ -126,3 +129,113 @@ def test_folds_that_train_on_later_rows_are_noted_warned_or_refused(tmp_path: Pa
     report = leakage_report(dev, assign(dev, forward, "target", None, "visit_at"), spec, "classification",
                             {"time_order": "error"}, manifest, str(tmp_path / "forward.parquet"), forward)
     assert report["time_order_in_folds"] is None and "ignores time" not in report["summary"]
+
+
+def with_clinics(frame: pd.DataFrame, n: int = 12) -> pd.DataFrame:
+    """The frame as development rows with a crafted group column: patient i attends clinic i mod n."""
+    out = frame.rename(columns={"patient": "row_key"})
+    out["clinic"] = [f"C{i % n:02d}" for i in range(len(out))]
+    return out
+
+
+def groups_on_both_sides(dev: pd.DataFrame, folds: pd.DataFrame, column: str) -> list[int]:
+    """Per fold, counted here without holdfast: validation groups that also have a training row."""
+    group_of = dict(zip(dev["row_key"], dev[column], strict=True))
+    counts = []
+    for fold in sorted(folds["fold"].unique()):
+        validation = {group_of[k] for k in folds.loc[folds["fold"] == fold, "row_key"]}
+        training = {group_of[k] for k in folds.loc[folds["fold"] != fold, "row_key"]}
+        counts.append(len(validation & training))
+    return counts
+
+
+def test_group_overlap_is_counted_per_fold_and_noted_warned_or_refused(tmp_path: Path) -> None:
+    dev = with_clinics(breast_cancer_frame())
+    spec = {**SPEC, "id": None, "group": "clinic"}
+    manifest = {"leakage": {"duplicate_feature_rows_dev_test": 0, "single_feature": []}}
+    stratified = {"scheme": "stratified", "k": 4, "repeats": 1, "seed": 0}
+    folds = assign(dev, stratified, "target", "clinic")
+    expected = groups_on_both_sides(dev, folds, "clinic")
+    assert expected == [12, 12, 12, 12]  # 12 clinics of ~47 patients: every clinic is on both sides of every fold
+    for mode in ("note", "warn"):
+        report = leakage_report(dev, folds, spec, "classification", {"group_overlap": mode}, manifest,
+                                str(tmp_path / f"{mode}.parquet"), stratified)
+        found = report["group_overlap"]
+        assert [f["groups_on_both_sides"] for f in found["folds"]] == expected
+        assert list(pd.read_parquet(tmp_path / f"{mode}.parquet")["groups_on_both_sides"]) == expected
+        assert found["folds_with_overlap"] == 4 and found["groups"] == 12 and not found["scheme_keeps_groups"]
+        assert "group overlap: in 4 of 4 fold(s) groups of 'clinic' have rows on both sides" in report["summary"]
+        assert ("leakage warning: folds.scheme stratified ignores data.group" in report["summary"]) == (mode == "warn")
+    with pytest.raises(DataError, match=r"folds.scheme stratified ignores data.group: in 4 of 4 fold\(s\) groups of "
+                                        r"'clinic' have rows on both sides \(most in repeat 0, fold 0: 12 of its 12 "
+                                        r"validation group\(s\); 12 group\(s\) in all\); use folds.scheme: group"):
+        leakage_report(dev, folds, spec, "classification", {"group_overlap": "error"}, manifest,
+                       str(tmp_path / "error.parquet"), stratified)
+    assert not (tmp_path / "error.parquet").exists()
+
+
+def test_grouped_folds_report_zero_from_the_count_not_the_scheme(tmp_path: Path) -> None:
+    dev = with_clinics(breast_cancer_frame())
+    spec = {**SPEC, "id": None, "group": "clinic"}
+    manifest = {"leakage": {"duplicate_feature_rows_dev_test": 0, "single_feature": []}}
+    grouped = {"scheme": "stratified_group", "k": 4, "repeats": 1, "seed": 0}
+    folds = assign(dev, grouped, "target", "clinic")
+    report = leakage_report(dev, folds, spec, "classification", {"group_overlap": "error"}, manifest,
+                            str(tmp_path / "grouped.parquet"), grouped)
+    assert groups_on_both_sides(dev, folds, "clinic") == [0, 0, 0, 0]
+    assert [f["groups_on_both_sides"] for f in report["group_overlap"]["folds"]] == [0, 0, 0, 0]
+    assert "group overlap: 0 of 12 group(s) of 'clinic' on both sides of any of the 4 fold(s)" in report["summary"]
+    # The same scheme name over a table that does split a clinic: the count, not the name, decides.
+    broken = folds.copy()
+    broken.loc[broken.index[0], "fold"] = (int(broken.loc[broken.index[0], "fold"]) + 1) % 4
+    with pytest.raises(DataError, match=r"folds \(stratified_group\): in \d of 4 fold\(s\) groups of 'clinic' have "
+                                        r"rows on both sides .* though the scheme keeps groups whole"):
+        leakage_report(dev, broken, spec, "classification", {"group_overlap": "note"}, manifest,
+                       str(tmp_path / "broken.parquet"), grouped)
+    no_group = leakage_report(dev, folds, {**spec, "group": None}, "classification", {}, manifest,
+                              str(tmp_path / "none.parquet"), grouped)
+    assert no_group["group_overlap"] is None and "group overlap: no group column" in no_group["summary"]
+
+
+@pytest.mark.slow
+def test_demo_with_folds_that_ignore_routes_counts_every_route_on_both_sides(tmp_path: Path) -> None:
+    """The demo as it was (group: route, folds.scheme: stratified): leakage.json used to say 'none'."""
+    (tmp_path / "data_demo").mkdir()
+    shutil.copy(REPO / "data_demo" / "shipments.csv", tmp_path / "data_demo" / "shipments.csv")
+    config = yaml.safe_load((REPO / "config" / "config.yaml").read_text(encoding="utf-8"))
+    assert config["leakage"]["group_overlap"] == "error"  # as shipped
+    config["folds"]["scheme"] = "stratified"
+    write_config(tmp_path, config)
+    exp = tmp_path / "results" / config["experiment"]
+
+    refused = run_workflow(tmp_path, "--until", "assign_folds")
+
+    said = [line for line in refused.stderr.splitlines() if line.startswith("holdfast:")]
+    assert refused.returncode != 0 and len(said) == 1, refused.stderr[-3000:]  # the job's one line, then Snakemake's
+    last = said[0]
+    assert re.fullmatch(r"holdfast: data error: folds.scheme stratified ignores data.group: in 5 of 5 fold\(s\) "
+                        r"groups of 'route' have rows on both sides \(most in repeat 0, fold \d: 40 of its 40 "
+                        r"validation group\(s\); 40 group\(s\) in all\); use folds.scheme: group or stratified_group "
+                        r"\(whole groups per fold\), or set leakage.group_overlap: warn", last), last
+    assert (exp / "sealed" / "manifest.json").exists() and not (exp / "folds.parquet").exists()
+
+    config["leakage"]["group_overlap"] = "warn"
+    write_config(tmp_path, config)
+    warned = run_workflow(tmp_path, "--until", "assign_folds")
+    assert warned.returncode == 0, warned.stderr[-3000:]
+    dev, folds = pd.read_parquet(exp / "dev.parquet"), pd.read_parquet(exp / "folds.parquet")
+    leakage = json.loads((exp / "leakage.json").read_text())
+    assert groups_on_both_sides(dev, folds, "route") == [40] * 5
+    assert [f["groups_on_both_sides"] for f in leakage["group_overlap"]["folds"]] == [40] * 5
+    assert list(pd.read_parquet(exp / "folds_summary.parquet")["groups_on_both_sides"]) == [40] * 5
+    assert "leakage warning: folds.scheme stratified ignores data.group" in leakage["summary"]
+
+    config["folds"]["scheme"] = "stratified_group"  # as shipped now
+    write_config(tmp_path, config)
+    grouped = run_workflow(tmp_path, "--until", "assign_folds")
+    assert grouped.returncode == 0, grouped.stderr[-3000:]
+    dev, folds = pd.read_parquet(exp / "dev.parquet"), pd.read_parquet(exp / "folds.parquet")
+    leakage = json.loads((exp / "leakage.json").read_text())
+    assert groups_on_both_sides(dev, folds, "route") == [0] * 5
+    assert [f["groups_on_both_sides"] for f in leakage["group_overlap"]["folds"]] == [0] * 5
+    assert "group overlap: 0 of 40 group(s) of 'route'" in leakage["summary"] and "warning" not in leakage["summary"]

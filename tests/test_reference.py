@@ -53,11 +53,11 @@ def test_demo_ranking_equals_cross_val_score(demo_finished: Path) -> None:
 
 
 @pytest.mark.slow
-def test_demo_passes_audit_and_folds_equal_stratified_kfold(demo_finished: Path) -> None:
-    # Reference implementation: sklearn.model_selection.StratifiedKFold(n_splits=k, shuffle=True,
-    # random_state=seed + repeat) on the development rows in stored order.
+def test_demo_passes_audit_and_folds_equal_stratified_group_kfold(demo_finished: Path) -> None:
+    # Reference implementation: sklearn.model_selection.StratifiedGroupKFold(n_splits=k, shuffle=True,
+    # random_state=seed + repeat) on the development rows in stored order, grouped by route.
     from holdfast.audit import audit
-    from sklearn.model_selection import StratifiedKFold
+    from sklearn.model_selection import StratifiedGroupKFold
 
     exp = demo_finished / "results" / "cold-chain-spoilage"
     assert audit(str(exp))["passed"]
@@ -65,15 +65,17 @@ def test_demo_passes_audit_and_folds_equal_stratified_kfold(demo_finished: Path)
     assert leakage["duplicate_feature_rows_dev_test"] == 0 and leakage["duplicate_feature_rows_within_folds"] == 0
     assert leakage["single_feature"] == []
     assert "warning" not in leakage["summary"]  # time order only noted (leakage.time_order: note) on the demo
-    assert leakage["time_order_in_folds"]["scheme"] == "stratified"
+    assert leakage["time_order_in_folds"]["scheme"] == "stratified_group"
+    assert [f["groups_on_both_sides"] for f in leakage["group_overlap"]["folds"]] == [0] * 5  # whole routes per fold
     dev = pd.read_parquet(exp / "dev.parquet")
     folds = pd.read_parquet(exp / "folds.parquet")
     config = cfg.load(demo_finished / "config.yaml")
     k, seed = config["folds"]["k"], config["folds"]["seed"]
     for repeat in range(config["folds"]["repeats"]):
         ours = folds[folds["repeat"] == repeat].set_index("row_key")["fold"]
-        splitter = StratifiedKFold(n_splits=k, shuffle=True, random_state=seed + repeat)
-        for fold, (_, validation) in enumerate(splitter.split(np.zeros((len(dev), 1)), dev["spoiled"])):
+        splitter = StratifiedGroupKFold(n_splits=k, shuffle=True, random_state=seed + repeat)
+        splits = splitter.split(np.zeros((len(dev), 1)), dev["spoiled"], groups=dev["route"])
+        for fold, (_, validation) in enumerate(splits):
             assert set(dev["row_key"].iloc[validation]) == set(ours[ours == fold].index)
 
 

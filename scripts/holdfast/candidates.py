@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import importlib
 import itertools
+import math
 from typing import Any
 
 from ._io import canonical_json, sha256_text
@@ -41,12 +42,17 @@ def expand_family(name: str, spec: dict[str, Any]) -> list[dict[str, Any]]:
 
 
 def expand(config: dict[str, Any]) -> dict[str, list[dict[str, Any]]]:
-    """All families' candidates; refuses more than ``max_candidates`` in total and id clashes."""
-    families = {name: expand_family(name, spec) for name, spec in config["candidates"].items()}
-    total = sum(len(c) for c in families.values())
+    """All families' candidates; refuses more than ``max_candidates`` in total and id clashes.
+
+    The total is counted (a product of grid lengths) before anything is expanded, so a huge grid is
+    refused at once instead of filling memory.
+    """
+    total = sum(math.prod(len(values) for values in spec.get("grid", {}).values())
+                for spec in config["candidates"].values())
     if total > int(config["max_candidates"]):
         raise ConfigError(f"the candidate grids expand to {total} candidates, more than max_candidates "
                           f"({config['max_candidates']}); shrink the grids or raise max_candidates")
+    families = {name: expand_family(name, spec) for name, spec in config["candidates"].items()}
     seen: dict[str, str] = {}
     for name, cands in families.items():
         for cand in cands:

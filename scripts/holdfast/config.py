@@ -196,6 +196,7 @@ def validate(raw: Any) -> dict[str, Any]:
                     key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
     if errors:
         raise ConfigError(_schema_message(errors[0]))
+    _strict_checks(config, schema)
     _cross_checks(config)
     return config
 
@@ -277,6 +278,49 @@ def _cross_checks(config: dict[str, Any]) -> None:
                           "stratified or group folds")
     if config["nested"]["k"] == 1:
         raise ConfigError("config key 'nested.k' is 1; use 0 to turn nested cross-validation off or at least 2")
+
+
+def _pattern_misses(value: Any, schema: dict[str, Any], where: list[str]) -> Any:
+    """Yield (key, value, pattern) for every string the schema's pattern matches only in part.
+
+    JSON-Schema patterns are searched, and in Python's re a final '$' also matches before a trailing
+    line break, so 'name\n' passes '^...$'; holdfast wants the whole value to match.
+    """
+    if isinstance(value, str) and "pattern" in schema and not re.fullmatch(schema["pattern"], value):
+        yield ".".join(where) or "<top level>", value, schema["pattern"]
+    if isinstance(value, dict):
+        names = schema.get("propertyNames", {})
+        extra = schema.get("additionalProperties")
+        for key, item in value.items():
+            if "pattern" in names and not re.fullmatch(names["pattern"], str(key)):
+                yield ".".join([*where, str(key)]), key, names["pattern"]
+            sub = schema.get("properties", {}).get(key, extra if isinstance(extra, dict) else None)
+            if sub:
+                yield from _pattern_misses(item, sub, [*where, str(key)])
+    if isinstance(value, list) and isinstance(schema.get("items"), dict):
+        for i, item in enumerate(value):
+            yield from _pattern_misses(item, schema["items"], [*where[:-1], f"{where[-1] if where else ''}[{i}]"])
+
+
+def _strict_checks(config: dict[str, Any], schema: dict[str, Any]) -> None:
+    """Checks the schema cannot say: whole-value patterns, real written reasons, a time unit with a time column."""
+    for key, value, pattern in _pattern_misses(config, schema, []):
+        where = key.encode("unicode_escape").decode("ascii")  # one line, even for a key with a line break
+        raise ConfigError(f"config key '{where}': {value!r} matches {pattern} only in part (a trailing line break?); "
+                          "remove the extra characters")
+    seen: dict[str, int] = {}
+    for position, reason in enumerate(config["test"]["reopen_reasons"]):
+        plain = " ".join(reason.split())
+        if len(plain) < 10:
+            raise ConfigError(f"config key 'test.reopen_reasons[{position}]' is blank or shorter than 10 characters "
+                              "once spaces are removed; write why the test set is opened again")
+        if plain.casefold() in seen:
+            raise ConfigError(f"config key 'test.reopen_reasons[{position}]' repeats reopen_reasons"
+                              f"[{seen[plain.casefold()]}]; each extra opening needs its own written reason")
+        seen[plain.casefold()] = position
+    if config["data"].get("time_unit") and config["data"]["time"] is None:
+        raise ConfigError("config key 'data.time_unit' is set but 'data.time' is not; name the time column in "
+                          "data.time or remove data.time_unit")
 
 
 def _check_selection(config: dict[str, Any]) -> None:
@@ -390,6 +434,8 @@ def seal_spec(config: dict[str, Any]) -> dict[str, Any]:
         "task": config.get("task"),
         "fraction": config["test"]["fraction"], "scheme": config["test"]["scheme"], "salt": config["test"]["salt"],
         **({"gap_hours": config["test"]["gap_hours"]} if config["test"]["scheme"] == "time_tail" else {}),
+        # Only when set, so experiments sealed before the key existed keep their spec.
+        **({"time_unit": data["time_unit"]} if data.get("time_unit") else {}),
     }
 
 

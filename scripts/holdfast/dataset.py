@@ -92,8 +92,56 @@ def feature_columns(frame: pd.DataFrame, spec: dict[str, Any]) -> list[str]:
     return [c for c in frame.columns if c not in skip]
 
 
+TIME_UNITS = ("s", "ms", "us", "ns")
+
+
+def parse_times(values: pd.Series, unit: str | None = None) -> pd.Series:
+    """The time column as UTC timestamps: text or datetimes as they are, numbers as counts of ``unit`` since 1970."""
+    if unit is None:
+        return pd.to_datetime(values, utc=True)
+    return pd.to_datetime(values, unit=unit, utc=True)
+
+
+def _nested(values: pd.Series) -> bool:
+    """True for a column of lists, arrays, mappings or sets (Parquet list, map or struct columns)."""
+    if values.dtype != object:
+        return False
+    present = values.dropna()
+    return not present.empty and isinstance(present.iloc[0], list | tuple | dict | set | np.ndarray)
+
+
+def check_time_column(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> None:
+    """data.time holds timestamps, or numbers that data.time_unit says how to read; every value parses."""
+    column, unit = spec["time"], spec.get("time_unit")
+    values = frame[column]
+    numeric = pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values)
+    if numeric and unit is None:
+        example = (values.dropna().iloc[:1].tolist() or ["none"])[0]
+        raise DataError(f"time column '{column}' of '{source}' holds numbers (e.g. {example}), not timestamps; set "
+                        "data.time_unit to s, ms, us or ns to say what they count since 1970, or use ISO-8601 times")
+    if unit is not None and not numeric:
+        raise DataError(f"config key 'data.time_unit' is {unit} but time column '{column}' of '{source}' does not hold "
+                        "numbers; remove data.time_unit (text times are read as ISO-8601)")
+    if numeric:
+        finite = np.isfinite(values.to_numpy(dtype=float, na_value=np.nan))
+        if not finite.all():
+            raise DataError(f"time column '{column}' has {int((~finite).sum())} value(s) that are blank or infinite in "
+                            f"'{source}'; give every row a time")
+    try:
+        parsed = pd.to_datetime(values, errors="coerce", utc=True, **({"unit": unit} if unit else {}))
+    except (OverflowError, ValueError) as exc:  # numbers beyond the timestamp range for this unit
+        raise DataError(f"time column '{column}' of '{source}' has numbers out of range as {unit} since 1970 "
+                        f"({exc}); check data.time_unit") from exc
+    if parsed.isna().any() and numeric:
+        raise DataError(f"time column '{column}' has {int(parsed.isna().sum())} number(s) out of range as {unit} since "
+                        f"1970 in '{source}'; check data.time_unit")
+    if parsed.isna().any():
+        raise DataError(f"time column '{column}' has {int(parsed.isna().sum())} value(s) that are not "
+                        f"timestamps in '{source}'; use ISO-8601 times")
+
+
 def check_columns(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> None:
-    """Every column the config names exists; the target is complete; features are finite."""
+    """Every column the config names exists; no nested values; the target is complete and finite; features finite."""
     roles = [("target", spec["target"])] + [(r, spec[r]) for r in ("id", "group", "time") if spec.get(r)]
     roles += [("drop", c) for c in spec.get("drop", [])]
     for role, column in roles:
@@ -103,19 +151,28 @@ def check_columns(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> Non
                             f"{' ...' if len(frame.columns) > 12 else ''}")
     if KEY in frame.columns:
         raise DataError(f"'{source}' has a column named '{KEY}', which holdfast reserves; rename it")
+    dropped = set(spec.get("drop", []))
+    for column in frame.columns:
+        if column not in dropped and _nested(frame[column]):
+            role = next((f"data.{r}" for r, c in roles if c == column), "a feature")
+            raise DataError(f"column '{column}' ({role}) of '{source}' holds lists or structs (nested values), which "
+                            + ("no model step can use; list it in data.drop (possible now: nothing is sealed yet)"
+                               if role == "a feature" else "cannot serve as that role; use a column of plain values"))
     target = frame[spec["target"]]
     if target.isna().any():
         raise DataError(f"target column '{spec['target']}' has {int(target.isna().sum())} missing value(s) in "
                         f"'{source}'; drop or fill those rows before the seal")
+    if pd.api.types.is_numeric_dtype(target) and not pd.api.types.is_bool_dtype(target):
+        infinite = ~np.isfinite(target.to_numpy(dtype=float))
+        if infinite.any():
+            raise DataError(f"target column '{spec['target']}' has {int(infinite.sum())} infinite value(s) in "
+                            f"'{source}' (first at data row {int(np.flatnonzero(infinite)[0]) + 1}); drop or fix "
+                            "those rows before the seal")
     if spec.get("group") and frame[spec["group"]].isna().any():
         raise DataError(f"group column '{spec['group']}' has {int(frame[spec['group']].isna().sum())} missing "
                         f"value(s) in '{source}'; give every row a group")
     if spec.get("time"):
-        parsed = pd.to_datetime(frame[spec["time"]], errors="coerce", utc=True)
-        bad = parsed.isna() & frame[spec["time"]].notna()
-        if bad.any() or parsed.isna().any():
-            raise DataError(f"time column '{spec['time']}' has {int(parsed.isna().sum())} value(s) that are not "
-                            f"timestamps in '{source}'; use ISO-8601 times")
+        check_time_column(frame, spec, source)
     features = feature_columns(frame, spec)
     if not features:
         raise DataError(f"'{source}' has no feature columns left after target, id, group, time and drop; "
@@ -135,9 +192,25 @@ def check_target_for_task(target: pd.Series, task: str, source: str) -> None:
         if target.nunique() < 2:
             raise DataError(f"target column '{target.name}' has a single class ('{target.iloc[0]}') in '{source}'; "
                             "classification needs at least two")
+        check_label_spelling(target, source)
     elif not pd.api.types.is_numeric_dtype(target):
         raise DataError(f"target column '{target.name}' is not numeric in '{source}' but task is regression; "
                         "set task: classification or fix the column")
+
+
+def check_label_spelling(target: pd.Series, source: str) -> None:
+    """Refuse class labels that differ only in spaces or case ('yes' and 'Yes '): almost surely one class."""
+    labels = [v for v in target.unique() if isinstance(v, str)]
+    seen: dict[str, str] = {}
+    for label in sorted(labels):
+        plain = "".join(label.split()).casefold()
+        if plain in seen:
+            counts = target.value_counts()
+            first = seen[plain]
+            raise DataError(f"target column '{target.name}' has classes {first!r} ({int(counts[first])} rows) and "
+                            f"{label!r} ({int(counts[label])} rows) in '{source}', which differ only in spaces or "
+                            "case; make them one label in the data file before the seal")
+        seen[plain] = label
 
 
 def split_xy(frame: pd.DataFrame, spec: dict[str, Any]) -> tuple[pd.DataFrame, pd.Series]:

@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .dataset import KEY
+from .dataset import KEY, parse_times
 from .errors import ConfigError, DataError
 from .foldspec import COMPLETE, FORWARD, GROUPED, HOLDOUT, STRATIFIED, effective_k, repeats
 
@@ -45,7 +45,8 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
         if scheme == "stratified_holdout":
             assert target is not None
             counts = target.value_counts()
-            if int(counts.min()) < 2 or min(n_val, n_train) < len(counts):
+            _check_class_sizes(counts, target, scheme)
+            if min(n_val, n_train) < len(counts):
                 raise ConfigError(f"config key 'folds.fraction' is {spec['fraction']}: stratified_holdout needs every "
                                   f"one of the {len(counts)} classes on both sides, but class '{counts.idxmin()}' "
                                   f"has {int(counts.min())} row(s) and the smaller side {min(n_val, n_train)}; use "
@@ -73,6 +74,7 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
     if scheme in ("stratified", "stratified_group"):
         assert target is not None
         counts = target.value_counts()
+        _check_class_sizes(counts, target, scheme)
         if k > int(counts.min()):
             raise ConfigError(f"config key 'folds.k' is {k} but class '{counts.idxmin()}' of '{target.name}' has only "
                               f"{int(counts.min())} development rows; lower folds.k to at most {int(counts.min())} "
@@ -83,6 +85,18 @@ def check_feasible(spec: dict[str, Any], n_rows: int, target: pd.Series | None, 
         if k > n_groups:
             raise ConfigError(f"config key 'folds.k' is {k} but group column '{groups.name}' has only {n_groups} "
                               f"groups in the development rows; lower folds.k to at most {n_groups}")
+
+
+def _check_class_sizes(counts: pd.Series, target: pd.Series, scheme: str) -> None:
+    """A stratified scheme needs every class on both sides: a class with one development row cannot be."""
+    if int(counts.min()) >= 2:
+        return
+    alone = sorted(map(str, counts.index[counts < 2]))
+    other = {"stratified_group": "group", "stratified_holdout": "holdout"}.get(scheme, "kfold")
+    more = f" (and {len(alone) - 1} more class(es) too)" if len(alone) > 1 else ""
+    raise ConfigError(f"folds.scheme {scheme} needs at least 2 development rows per class but class '{alone[0]}' of "
+                      f"'{target.name}' has 1{more}; remove or merge that class's rows in the data file (before the "
+                      f"seal), or use folds.scheme: {other}")
 
 
 def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
@@ -132,14 +146,14 @@ def _splits(spec: dict[str, Any], repeat: int, n: int, target: pd.Series | None,
         yield validation
 
 
-def time_order(dev: pd.DataFrame, time_col: str) -> np.ndarray:
+def time_order(dev: pd.DataFrame, time_col: str, time_unit: str | None = None) -> np.ndarray:
     """Positions of the development rows sorted by time; ties keep their stored order."""
-    times = pd.to_datetime(dev[time_col], utc=True).to_numpy()
+    times = parse_times(dev[time_col], time_unit).to_numpy()
     return np.argsort(times, kind="stable")
 
 
-def _forward(dev: pd.DataFrame, spec: dict[str, Any], time_col: str,
-             group_col: str | None) -> tuple[np.ndarray, np.ndarray]:
+def _forward(dev: pd.DataFrame, spec: dict[str, Any], time_col: str, group_col: str | None,
+             time_unit: str | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Fold (−1: never validated) and train_from (k: never trained on) of every dev row for forward folds.
 
     The cuts are those of scikit-learn's TimeSeriesSplit(n_splits=k, test_size=window, gap=gap) on the
@@ -147,11 +161,11 @@ def _forward(dev: pd.DataFrame, spec: dict[str, Any], time_col: str,
     part every row (group) not strictly earlier than the window's first time, so equal timestamps never
     straddle a cut; with distinct times the folds equal TimeSeriesSplit's.
     """
-    times = pd.to_datetime(dev[time_col], utc=True).to_numpy()
+    times = parse_times(dev[time_col], time_unit).to_numpy()
     k, gap = int(spec["k"]), int(spec["gap"])
     if group_col is None:
         unit_of = np.empty(len(dev), dtype=np.int64)
-        unit_of[time_order(dev, time_col)] = np.arange(len(dev))  # each row is its own unit, in time order
+        unit_of[time_order(dev, time_col, time_unit)] = np.arange(len(dev))  # each row is its own unit, in time order
         first = last = times[np.argsort(unit_of)]
     else:
         frame = pd.DataFrame({"g": dev[group_col].astype(str).to_numpy(), "t": times})
@@ -178,7 +192,7 @@ def _small_uint(limit: int) -> str:
 
 
 def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: str | None,
-           time_col: str | None = None) -> pd.DataFrame:
+           time_col: str | None = None, time_unit: str | None = None) -> pd.DataFrame:
     """Draw the fold table ``row_key, repeat, fold, train_from`` for the development rows.
 
     A row is validated in fold ``fold`` of its repeat (null: in no fold) and is in the training part
@@ -197,7 +211,8 @@ def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: 
         if scheme in FORWARD:
             if time_col is None:
                 raise ConfigError(f"folds.scheme {scheme} needs data.time; name the time column")
-            fold_of, train_from = _forward(dev, spec, time_col, group_col if scheme == "forward_group" else None)
+            fold_of, train_from = _forward(dev, spec, time_col, group_col if scheme == "forward_group" else None,
+                                           time_unit)
         else:
             fold_of = np.full(len(dev), -1, dtype=np.int64)
             for fold, validation in enumerate(_splits(spec, repeat, len(dev), target, groups)):
@@ -226,7 +241,7 @@ def fold_masks(part: pd.DataFrame, fold: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, spec: dict[str, Any],
-          groups: pd.Series | None = None, times: pd.Series | None = None) -> None:
+          groups: pd.Series | None = None, times: pd.Series | None = None, time_unit: str | None = None) -> None:
     """Check the invariants; raise DataError naming the scheme, repeat, fold and count.
 
     Every scheme: each dev row listed once per repeat, no test key, no empty fold, training and
@@ -246,7 +261,7 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
     if unknown:
         raise DataError(f"folds ({scheme}) name {len(unknown)} row(s) not in the development set; rebuild the folds")
     group_of = dict(zip(map(str, dev_keys), groups.astype(str).to_numpy(), strict=True)) if groups is not None else None
-    time_of = (dict(zip(map(str, dev_keys), pd.to_datetime(times, utc=True), strict=True))
+    time_of = (dict(zip(map(str, dev_keys), parse_times(times, time_unit), strict=True))
                if times is not None else None)
     for repeat, part in table.groupby("repeat", sort=True):
         part = part.reset_index(drop=True)
@@ -293,9 +308,10 @@ def _check_forward(part: pd.DataFrame, training: np.ndarray, validation: np.ndar
                         f"{spec['gap']}; rebuild the folds")
 
 
-def time_overlap(dev: pd.DataFrame, table: pd.DataFrame, time_col: str) -> list[dict[str, Any]]:
+def time_overlap(dev: pd.DataFrame, table: pd.DataFrame, time_col: str,
+                 time_unit: str | None = None) -> list[dict[str, Any]]:
     """Per fold of a scheme that ignores time: training rows later than the fold's first validation row."""
-    times = pd.Series(pd.to_datetime(dev[time_col], utc=True).to_numpy(), index=dev[KEY].to_numpy())
+    times = pd.Series(parse_times(dev[time_col], time_unit).to_numpy(), index=dev[KEY].to_numpy())
     out = []
     for repeat, part in table.groupby("repeat", sort=True):
         part = part.reset_index(drop=True)
@@ -314,10 +330,49 @@ def scheme_ignores_time(fold_spec: dict[str, Any]) -> bool:
     return fold_spec["scheme"] not in FORWARD
 
 
+def group_overlap(dev: pd.DataFrame, summary: pd.DataFrame, spec: dict[str, Any], fold_spec: dict[str, Any],
+                  mode: str) -> dict[str, Any] | None:
+    """Groups with rows on both sides of each fold, from the fold summary's per-fold counts (None: no group column).
+
+    A scheme that keeps groups whole always stops on a count above 0; a scheme that ignores groups is noted,
+    warned about or stopped as ``leakage.group_overlap`` says.
+    """
+    column = spec.get("group")
+    if not column:
+        return None
+    scheme = fold_spec["scheme"]
+    counts = summary["groups_on_both_sides"]
+    total = int(dev[column].nunique())
+    found: dict[str, Any] = {
+        "column": column, "scheme": scheme, "scheme_keeps_groups": scheme in GROUPED, "mode": mode,
+        "groups": total, "folds_with_overlap": int((counts > 0).sum()), "most_in_a_fold": int(counts.max()),
+        "folds": [{"repeat": int(r["repeat"]), "fold": int(r["fold"]), "validation_groups": int(r["groups"]),
+                   "groups_on_both_sides": int(r["groups_on_both_sides"])} for _, r in summary.iterrows()],
+        "text": f"0 of {total} group(s) of '{column}' on both sides of any of the {len(summary)} fold(s) "
+                "(counted per fold)", "warning": None}
+    if not found["folds_with_overlap"]:
+        return found
+    worst = summary.loc[counts.idxmax()]
+    found["text"] = (f"in {found['folds_with_overlap']} of {len(summary)} fold(s) groups of '{column}' have rows on "
+                     f"both sides (most in repeat {int(worst['repeat'])}, fold {int(worst['fold'])}: "
+                     f"{int(worst['groups_on_both_sides'])} of its {int(worst['groups'])} validation group(s); "
+                     f"{total} group(s) in all)")
+    if scheme in GROUPED:
+        raise DataError(f"folds ({scheme}): {found['text']}, though the scheme keeps groups whole; rebuild the folds")
+    message = f"folds.scheme {scheme} ignores data.group: {found['text']}"
+    if mode == "error":
+        raise DataError(f"{message}; use folds.scheme: group or stratified_group (whole groups per fold), or set "
+                        "leakage.group_overlap: warn")
+    if mode == "warn":
+        found["warning"] = (f"{message}; if the model will meet new groups, use folds.scheme: group or "
+                            "stratified_group")
+    return found
+
+
 def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any], task: str,
                    settings: dict[str, Any], manifest: dict[str, Any], summary_path: str,
                    fold_spec: dict[str, Any] | None = None) -> dict[str, Any]:
-    """Write folds_summary.parquet and return leakage.json's content; duplicates may be an error."""
+    """Write folds_summary.parquet and return leakage.json's content; duplicates and group overlap may be errors."""
     from ._io import write_parquet
     from .leakage import fold_summary
 
@@ -330,8 +385,12 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
                         f"{worst['repeat']}, fold {worst['fold']}: {worst['duplicates_with_training']}); "
                         "remove duplicate rows or set leakage.duplicates: warn")
     at_seal = manifest.get("leakage", {})
+    groups = group_overlap(dev, summary, spec, fold_spec, settings.get("group_overlap", "warn"))
     lines = [f"leakage: {at_seal.get('duplicate_feature_rows_dev_test', 0)} test row(s) duplicate development rows; "
-             f"{within} validation row(s) duplicate training rows across folds; group overlap: none"]
+             f"{within} validation row(s) duplicate training rows across folds; "
+             f"group overlap: {groups['text'] if groups else 'no group column'}"]
+    if groups and groups["warning"]:
+        lines.append(f"leakage warning: {groups['warning']}")
     lines += [f"leakage warning: feature '{a['feature']}' alone reaches {a['measure']} {a['value']:.3f}"
               for a in at_seal.get("single_feature", [])]
     mode = settings.get("time_order", "note")
@@ -342,7 +401,7 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
                      f"row ({seal_time['share']:.0%}); if the model will forecast, use test.scheme: time_tail")
     fold_time = None
     if spec.get("time") and scheme_ignores_time(fold_spec):
-        overlap = time_overlap(dev, table, spec["time"])
+        overlap = time_overlap(dev, table, spec["time"], spec.get("time_unit"))
         fold_time = {"column": spec["time"], "scheme": fold_spec["scheme"], "folds": overlap,
                      "training_rows_later": sum(o["training_rows_later"] for o in overlap)}
         if overlap and mode != "note":
@@ -364,7 +423,7 @@ def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any],
         "duplicate_feature_rows_dev_test": at_seal.get("duplicate_feature_rows_dev_test"),
         "duplicate_feature_rows_within_folds": within,
         "duplicates_mode": settings.get("duplicates", "warn"),
-        "group_overlap": "none (checked for every fold)" if spec.get("group") else "no group column",
+        "group_overlap": {k: v for k, v in groups.items() if k not in ("text", "warning")} if groups else None,
         "single_feature": at_seal.get("single_feature", []),
         "single_feature_threshold": at_seal.get("single_feature_threshold"),
         "classes_missing_from_validation": missing,

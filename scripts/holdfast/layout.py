@@ -7,6 +7,7 @@ from pathlib import Path
 from typing import Any
 
 from ._io import read_json
+from .errors import ConfigError
 
 MANIFEST = "sealed/manifest.json"
 TEST = "sealed/test.parquet"
@@ -36,3 +37,19 @@ def read_manifest(exp_dir: str | os.PathLike[str]) -> dict[str, Any] | None:
     """The experiment's seal manifest, or None before the seal."""
     path = Path(exp_dir) / MANIFEST
     return read_json(path) if path.exists() else None
+
+
+def check_experiment_dir(exp_dir: str | os.PathLike[str], project: str | os.PathLike[str] = ".") -> None:
+    """Refuse a results folder, experiment folder or entry of it that is a symbolic link leading out of the project.
+
+    Such a link would send the seal, the ledger and every output somewhere else on the machine.
+    """
+    exp, root = Path(exp_dir), Path(project).resolve()
+    paths = [exp.parent, exp]
+    if exp.is_dir() and not exp.is_symlink():
+        paths += sorted(exp.iterdir())
+    for path in paths:
+        if path.is_symlink() and not path.resolve().is_relative_to(root):
+            raise ConfigError(f"'{path}' is a symbolic link to '{path.resolve()}', outside the project folder "
+                              f"'{root}', so the experiment would write there; nothing was run. Replace it with a "
+                              "real folder inside the project")

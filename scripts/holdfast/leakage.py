@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .dataset import KEY, feature_columns
+from .dataset import KEY, feature_columns, parse_times
 
 
 def feature_hashes(frame: pd.DataFrame, spec: dict[str, Any]) -> pd.Series:
@@ -66,7 +66,8 @@ def single_feature_alarms(dev: pd.DataFrame, spec: dict[str, Any], task: str, th
 
 
 def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], task: str) -> pd.DataFrame:
-    """Per repeat and fold: validation rows, groups, class counts or target mean/sd, time range, duplicates."""
+    """Per repeat and fold: validation rows, groups (and how many also train), class counts or target mean/sd,
+    time range, duplicates."""
     hashes = feature_hashes(dev, spec).set_axis(dev[KEY])
     data = dev.set_index(KEY)
     rows = []
@@ -81,7 +82,10 @@ def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], t
                                "training_rows": len(training),
                                "duplicates_with_training": int(hashes.loc[keys].isin(set(hashes.loc[training])).sum())}
         if spec.get("group"):
-            row["groups"] = int(sub[spec["group"]].nunique())
+            validation_groups = pd.Index(sub[spec["group"]].unique())
+            row["groups"] = len(validation_groups)
+            # Counted, never assumed from the scheme: groups with rows on both sides of this fold.
+            row["groups_on_both_sides"] = int(validation_groups.isin(set(data.loc[training, spec["group"]])).sum())
         if task == "classification":
             counts = sub[spec["target"]].value_counts()
             for label in sorted(data[spec["target"]].unique(), key=str):
@@ -90,7 +94,7 @@ def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], t
             row["target_mean"] = float(sub[spec["target"]].mean())
             row["target_sd"] = float(sub[spec["target"]].std(ddof=1)) if len(sub) > 1 else float("nan")
         if spec.get("time"):
-            times = pd.to_datetime(sub[spec["time"]], utc=True)
+            times = parse_times(sub[spec["time"]], spec.get("time_unit"))
             row["time_first"], row["time_last"] = str(times.min()), str(times.max())
         rows.append(row)
     return pd.DataFrame(rows)

@@ -388,6 +388,9 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
     config = cfg.validate(raw)
     cfg.check_data_location(config)
     exp = cfg.experiment_dir(config, results)
+    from .layout import check_experiment_dir
+
+    check_experiment_dir(exp)
     manifest = read_manifest(exp)
     spec = cfg.seal_spec(config)
     dev_target = dev_groups = None
@@ -412,7 +415,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             text_columns = _text_features(pd.read_parquet(exp / DEV).drop(columns=["row_key"]), spec)
     else:
         from .dataset import row_keys
-        from .seal import check_development_classes, check_sides, load_checked, split_masks
+        from .seal import check_before_seal, check_development_classes, check_sides, load_checked, split_masks
 
         frame, task = load_checked(config["data"]["path"], spec)
         keys = row_keys(frame, spec["id"])
@@ -425,6 +428,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         if main:
             if task == "classification":
                 check_development_classes(dev[spec["target"]], config["data"]["path"])
+            check_before_seal(config, frame, test_rows, dropped, task)
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
             from .overlap import check as check_overlap
 

@@ -109,6 +109,91 @@ def check_metrics(metrics: list[str], task: str) -> None:
                               "choose a metric for this task")
 
 
+# Scorers for two classes (the last four score the label 1) and their counterparts for any labels.
+MULTICLASS = {"roc_auc": "roc_auc_ovr", "f1": "f1_macro", "precision": "precision_macro", "recall": "recall_macro",
+              "jaccard": "jaccard_macro"}
+
+
+PROBE_ROWS = 20_000
+
+
+def _probe_model(classes: np.ndarray, rows: int) -> _ReplayBase:
+    """A replay classifier over ``classes`` with fixed arbitrary outputs, the shapes a fitted model's would have."""
+    proba = np.random.default_rng(0).dirichlet(np.ones(len(classes)), rows)
+    outputs = {"predict": classes[proba.argmax(axis=1)], "predict_proba": proba,
+               "decision_function": proba[:, 1] if len(classes) == 2 else proba}
+    return replay(outputs, "classification", classes)
+
+
+def metric_problem(name: str, classes: np.ndarray, y: Any) -> str | None:
+    """Why the scorer cannot score labels ``y`` for a model of ``classes``, in scikit-learn's words (None: it can).
+
+    The scorer itself is asked, on the same replay the fit jobs and the opening use, so the answer follows
+    the installed scikit-learn rather than a list of names.
+    """
+    y = np.asarray(y)
+    return _score_problem(name, _probe_model(np.asarray(classes), len(y)), y)
+
+
+def _score_problem(name: str, model: _ReplayBase, y: np.ndarray) -> str | None:
+    import warnings
+
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            value = get_scorer(name)(model, np.arange(len(y)).reshape(-1, 1), y)
+    except Exception as exc:  # any failure here is the failure a fit job or the opening would meet
+        text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        return text.rstrip(".")
+    if not np.isfinite(value):
+        said = [str(w.message).splitlines()[0].rstrip(".") for w in caught if str(w.message)]
+        return f"{said[-1]}; the value is NaN" if said else "the value is NaN"
+    return None
+
+
+def labels_text(values: Any, limit: int = 4) -> str:
+    """Class labels for a message: 'a', 'b', ... (at most ``limit``)."""
+    listed = np.asarray(values).tolist()
+    return ", ".join(f"'{v}'" for v in listed[:limit]) + (", ..." if len(listed) > limit else "")
+
+
+def check_metrics_for_target(metrics: list[str], target: Any, defaults: bool = False) -> None:
+    """Every metric can score this classification target (refuses binary-only scorers on three or more classes)."""
+    classes = np.unique(np.asarray(target))
+    y = np.concatenate([classes, np.asarray(target)[:PROBE_ROWS]])  # every class, and no more rows than needed
+    for position, name in enumerate(metrics):
+        problem = metric_problem(name, classes, y)
+        if problem is None:
+            continue
+        key = ("config key 'metrics' (not set, so the defaults " + ", ".join(metrics) + " apply)" if defaults
+               else f"config key 'metrics[{position}]'")
+        instead = MULTICLASS.get(name)
+        if len(classes) > 2:
+            fix = (f"use {instead} instead" if instead else
+                   "use a scorer for several classes, e.g. accuracy, f1_macro or roc_auc_ovr")
+            raise ConfigError(f"{key}: '{name}' scores two classes but target '{getattr(target, 'name', '')}' has "
+                              f"{len(classes)} ({labels_text(classes)}) (scikit-learn: {problem}); {fix}")
+        fix = "recode the target as 0 and 1 (1 = the class of interest)" + (
+            f", or use {instead}" if instead and instead.endswith("_macro") else "")
+        raise ConfigError(f"{key}: '{name}' cannot score target '{getattr(target, 'name', '')}' with classes "
+                          f"{labels_text(classes)} (scikit-learn: {problem}); {fix}")
+
+
+def check_regression_metrics(metrics: list[str], target: Any) -> None:
+    """Every metric can score this regression target's values (a log or deviance error needs positive ones).
+
+    Asked of the scorer with predictions drawn from the target's own values; a model that predicts outside
+    that range can still fail later, but a target outside the metric's domain is known now.
+    """
+    y = np.asarray(target, dtype=float)[:PROBE_ROWS]
+    for position, name in enumerate(metrics):
+        problem = _score_problem(name, replay({"predict": np.roll(y, 1)}, "regression"), y)
+        if problem is not None:
+            raise ConfigError(f"config key 'metrics[{position}]': '{name}' cannot score target "
+                              f"'{getattr(target, 'name', '')}' (from {y.min():g} to {y.max():g}; scikit-learn: "
+                              f"{problem}); choose another metric, e.g. neg_mean_absolute_error")
+
+
 def clopper_pearson(successes: int, trials: int, level: float) -> tuple[float, float]:
     """Exact binomial interval (Clopper & Pearson, Biometrika 26, 1934) from beta quantiles."""
     from scipy.stats import beta

@@ -16,7 +16,16 @@ import pandas as pd
 
 from . import __version__, ledger
 from ._io import read_table, sha256_file, write_json, write_parquet
-from .dataset import KEY, check_columns, check_target_for_task, hash_unit, infer_task, keys_digest, row_keys
+from .dataset import (
+    KEY,
+    check_columns,
+    check_target_for_task,
+    hash_unit,
+    infer_task,
+    keys_digest,
+    parse_times,
+    row_keys,
+)
 from .errors import ConfigError, DataError, SealedAccessError
 from .layout import DEV, LEDGER, MANIFEST, TEST
 from .leakage import duplicates_across, single_feature_alarms
@@ -88,7 +97,7 @@ def _stratified_groups(groups: pd.Series, target: pd.Series, spec: dict[str, Any
 def split_masks(frame: pd.DataFrame, keys: pd.Series, spec: dict[str, Any], task: str) -> tuple[np.ndarray, np.ndarray]:
     """(sealed test rows, rows left out of both sides) for the configured test scheme."""
     if spec["scheme"] == "time_tail":
-        times = pd.to_datetime(frame[spec["time"]], utc=True)
+        times = parse_times(frame[spec["time"]], spec.get("time_unit"))
         n_test = round(float(spec["fraction"]) * len(frame))
         if n_test < 1:
             return np.zeros(len(frame), dtype=bool), np.zeros(len(frame), dtype=bool)
@@ -108,8 +117,8 @@ def time_order_at_seal(dev: pd.DataFrame, test: pd.DataFrame, spec: dict[str, An
     column = spec.get("time")
     if not column or test.empty:
         return None
-    dev_times = pd.to_datetime(dev[column], utc=True)
-    first_test = pd.to_datetime(test[column], utc=True).min()
+    dev_times = parse_times(dev[column], spec.get("time_unit"))
+    first_test = parse_times(test[column], spec.get("time_unit")).min()
     later = int((dev_times >= first_test).sum()) if spec["scheme"] == "time_tail" else int(
         (dev_times > first_test).sum())
     found = {"column": column, "scheme": spec["scheme"], "first_test_time": str(first_test),
@@ -136,6 +145,53 @@ def check_development_classes(dev_target: pd.Series, source: str) -> None:
         raise DataError(f"target column '{dev_target.name}' has a single class ('{dev_target.iloc[0]}') among the "
                         f"development rows of '{source}' (the others all fell into the test set); use "
                         "test.scheme: stratified or another test.salt")
+
+
+def check_test_partition(dev_target: pd.Series, test_target: pd.Series, metrics: list[str] | None,
+                         source: str) -> None:
+    """Refuse a test partition that would leave a class unlearnt or a test metric undefined (counts only, no scores).
+
+    A class only among the sealed rows can never be predicted; a metric that cannot be computed on the sealed
+    rows' labels (a single class under roc_auc, say) would make the one opening worthless.
+    """
+    dev_counts, test_counts = dev_target.value_counts(), test_target.value_counts()
+    only = [label for label in sorted(test_counts.index, key=str) if label not in dev_counts.index]
+    if only:
+        raise DataError(f"class '{only[0]}' of target column '{test_target.name}' would be only in the sealed test "
+                        f"rows of '{source}' ({int(test_counts[only[0]])} row(s), none among the development rows), "
+                        "so no candidate could learn it and its test scores would be undefined; use test.scheme: "
+                        "stratified or another test.salt, or remove that class's rows before the seal")
+    if not metrics or test_target.empty:
+        return
+    from .scoring import labels_text, metric_problem
+
+    classes = np.asarray(sorted(dev_counts.index))
+    for name in metrics:
+        problem = metric_problem(name, classes, test_target.to_numpy())
+        if problem is not None:
+            held = (f"a single class ('{test_counts.index[0]}')" if len(test_counts) == 1 else
+                    f"classes {labels_text(sorted(test_counts.index, key=str))}")
+            raise DataError(f"the sealed test rows of '{source}' would hold {held} in {len(test_target)} row(s), and "
+                            f"metric '{name}' cannot be computed on them (scikit-learn: {problem}); use test.scheme: "
+                            "stratified or a larger test.fraction, or remove the metric")
+
+
+def check_before_seal(config: dict[str, Any], frame: pd.DataFrame, test_rows: np.ndarray, dropped: np.ndarray,
+                      task: str) -> None:
+    """Refuse, while it can still be fixed, metrics that cannot score the target and a test partition that would
+    leave a class unlearnt or a metric undefined; plan.prepare runs it on every not-yet-sealed experiment."""
+    from .config import with_task
+    from .scoring import check_metrics, check_metrics_for_target, check_regression_metrics
+
+    metrics = with_task(config, task)["metrics"]
+    check_metrics(metrics, task)  # names first, so an unknown scorer is reported as such
+    target = frame[config["data"]["target"]]
+    if task != "classification":
+        check_regression_metrics(metrics, target[~test_rows & ~dropped])
+        return
+    dev_target = target[~test_rows & ~dropped]
+    check_metrics_for_target(metrics, dev_target, defaults=not config.get("metrics"))
+    check_test_partition(dev_target, target[test_rows], metrics, config["data"]["path"])
 
 
 def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd.DataFrame, str]:
@@ -215,6 +271,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     check_sides(n_test, n_dev, spec, str(data_path))
     if task == "classification":
         check_development_classes(frame[spec["target"]][~mask & ~dropped], str(data_path))
+        check_test_partition(frame[spec["target"]][~mask & ~dropped], frame[spec["target"]][mask], None,
+                             str(data_path))
     keyed = frame.copy()
     keyed.insert(0, KEY, keys.to_numpy())
     test, dev = keyed[mask].reset_index(drop=True), keyed[~mask & ~dropped].reset_index(drop=True)

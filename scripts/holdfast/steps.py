@@ -72,11 +72,11 @@ def assign_folds(smk: Any) -> None:
 
         dev = dev[~outer_rows(dev, pd.read_parquet(smk.input.outer), int(smk.wildcards.outer))]
         dev = dev.reset_index(drop=True)
-    table = assign(dev, fold_spec, spec["target"], spec["group"], spec.get("time"))
+    table = assign(dev, fold_spec, spec["target"], spec["group"], spec.get("time"), spec.get("time_unit"))
     groups = dev[spec["group"]] if spec["group"] else None
     times = dev[spec["time"]] if spec.get("time") else None
     test_keys = set(pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"])
-    check(table, dev["row_key"], test_keys, fold_spec, groups, times)
+    check(table, dev["row_key"], test_keys, fold_spec, groups, times, spec.get("time_unit"))
     report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
                             read_json(smk.params.manifest), smk.output.summary, fold_spec)
     write_parquet(smk.output.folds, table)
