@@ -82,7 +82,8 @@ def test_defaults_are_filled_from_the_schema() -> None:
     config = cfg.validate({"experiment": "x", "data": {"path": "d.csv", "target": "y"},
                            "candidates": {"m": {"estimator": "sklearn.linear_model.Ridge"}}})
     assert config["test"] == {"fraction": 0.2, "scheme": "hashed", "salt": "holdfast", "reopen_reasons": [],
-                              "gap_hours": 0}
+                              "gap_hours": 0, "seen_rows_reason": None}
+    assert config["ledger"] == {"signing_key": None}
     assert config["folds"] == {"scheme": "kfold", "k": 5, "repeats": 1, "seed": 0, "fraction": 0.2, "window": None,
                                "gap": 0, "min_train": 1}
     assert config["candidates"]["m"]["preprocess"] == {"impute": "median", "scale": "none", "categorical": "onehot"}

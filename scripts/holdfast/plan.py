@@ -394,6 +394,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
     manifest = read_manifest(exp)
     spec = cfg.seal_spec(config)
     dev_target = dev_groups = None
+    sealed_keys: Any = None
     if manifest is not None:
         _seal_unchanged(config, manifest, exp)
         if main:
@@ -430,9 +431,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
                 check_development_classes(dev[spec["target"]], config["data"]["path"])
             check_before_seal(config, frame, test_rows, dropped, task)
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
-            from .overlap import check as check_overlap
-
-            check_overlap(keys[test_rows], exp.parent, config["experiment"], config["test"]["seen_rows_reason"])
+            sealed_keys = keys[test_rows]
             if config["ledger"]["signing_key"]:
                 from .signing import check_key_location
 
@@ -467,6 +466,10 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
                            dev_groups if scheme in GROUPED else None)
         _opening_guard(plan)
         _forced_guard(plan, snakemake_flags())
+        if manifest is None:  # last: a data or config problem is the user's first fix, the policy comes after
+            from .overlap import check as check_overlap
+
+            check_overlap(sealed_keys, exp.parent, config["experiment"], config["test"]["seen_rows_reason"])
     return plan
 
 
