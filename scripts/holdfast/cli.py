@@ -203,14 +203,30 @@ def _finish(exp: Path) -> int:
     return 1 if any(p["code"] != "opened-more-than-once" for p in result["problems"]) else 0
 
 
+def _prepare_cached(raw: dict[str, Any], results: str = "results") -> Any:
+    """plan.prepare in full the first time a config and its data are seen; later with the recorded facts only.
+
+    The facts are written after a full check passed, so the Snakefile's main process (and the next run) skip
+    re-reading the data and importing scikit-learn for checks that already passed.
+    """
+    from ._io import write_json
+    from .plan import cached_facts, prepare
+
+    facts, path = cached_facts(raw)
+    plan = prepare(raw, main=True, results=results, facts=facts)
+    if facts is None:
+        write_json(path, plan.facts)
+    return plan
+
+
 def _run(args: argparse.Namespace, extra: list[str]) -> int:
     from .config import read_yaml
-    from .plan import _forced_guard, prepare, snakemake_flags
+    from .plan import _forced_guard, snakemake_flags
 
     _refuse_own_options(extra)
     _trust(args.trust_module)
     raw = read_yaml(args.configfile)
-    plan = prepare(raw, main=True)
+    plan = _prepare_cached(raw)
     _forced_guard(plan, snakemake_flags(["snakemake", *extra]))
     if plan.exp.is_symlink():
         raise ConfigError(f"results folder '{plan.exp}' is a symbolic link; holdfast writes only into real folders "
@@ -229,7 +245,6 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
     from ._io import read_json, sha256_file, write_json
     from .config import read_yaml
     from .layout import CHOICE, CONFIG_COPY, MODEL, REQUEST
-    from .plan import prepare
 
     _refuse_own_options(extra)
     _trust(args.trust_module)
@@ -239,7 +254,7 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
         raise ConfigError(f"'{config_path}' is missing (the experiment was not run with 'holdfast run'); pass the "
                           "experiment's config with --config CONFIG")
     raw = read_yaml(config_path)
-    plan = prepare(raw, main=True, results=str(exp.parent))
+    plan = _prepare_cached(raw, results=str(exp.parent))
     if plan.exp.resolve() != exp.resolve():
         raise ConfigError(f"config '{config_path}' names experiment '{plan.config['experiment']}', not the folder "
                           f"'{exp}'; pass the experiment's own config")

@@ -8,6 +8,7 @@ express. Nothing here imports scikit-learn: the Snakefile calls this at parse ti
 from __future__ import annotations
 
 import copy
+import functools
 import json
 import os
 import re
@@ -116,7 +117,9 @@ def read_yaml(path: str | os.PathLike[str]) -> Any:
     return data
 
 
+@functools.cache
 def _schema() -> dict[str, Any]:
+    # Read once per process: it is only ever read, never changed (defaults are deep-copied where filled).
     with open(SCHEMA_PATH, encoding="utf-8") as handle:
         return yaml.safe_load(handle)
 
@@ -447,6 +450,25 @@ def fold_spec(config: dict[str, Any]) -> dict[str, Any]:
 RESOURCE_KEYS = ("threads", "mem_mb", "runtime", "cost")
 
 
+def _without_defaults(value: Any, schema: dict[str, Any]) -> Any:
+    """``value`` with every key that holds its schema default left out (recursively).
+
+    The fingerprint of what was opened is taken on this form, so a later holdfast that adds a config key with
+    a default, or a user who writes a default out, does not count as a change to what was opened.
+    """
+    if not isinstance(value, dict):
+        return value
+    props = schema.get("properties", {})
+    extra = schema.get("additionalProperties")
+    out = {}
+    for key, item in value.items():
+        sub = props.get(key, extra if isinstance(extra, dict) else {})
+        if "default" in sub and item == sub["default"]:
+            continue
+        out[key] = _without_defaults(item, sub)
+    return out
+
+
 def _selection_part(config: dict[str, Any]) -> dict[str, Any]:
     # Every key that reaches a param of a rule upstream of (or at) the opening.
     keys = ("data", "task", "metrics", "test", "folds", "candidates", "selection", "allowed_modules", "leakage",
@@ -457,7 +479,8 @@ def _selection_part(config: dict[str, Any]) -> dict[str, Any]:
                           for name, spec in config["candidates"].items()}
     part["test"] = {k: v for k, v in config["test"].items() if k not in ("reopen_reasons", "seen_rows_reason")}
     part["data"] = {k: v for k, v in config["data"].items() if k not in ("path", "allow_outside_project")}
-    return part
+    props = _schema()["properties"]
+    return {k: _without_defaults(v, props.get(k, {})) for k, v in part.items()}
 
 
 def selection_fingerprint(config: dict[str, Any], code: str) -> str:

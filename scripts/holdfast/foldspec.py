@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
-MAX_FIT_JOBS = 5000
+MAX_FIT_JOBS = 100_000
 
 # Schemes where every development row is validated exactly once per repeat.
 COMPLETE = ("kfold", "stratified", "group", "stratified_group", "loo", "leave_one_group_out")

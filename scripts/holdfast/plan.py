@@ -126,6 +126,7 @@ class Plan:
     fold_ids: list[tuple[int, int]] = field(default_factory=list)
     opened: int = 0
     main: bool = True
+    facts: dict[str, Any] = field(default_factory=dict)
 
     @property
     def sealed(self) -> bool:
@@ -383,8 +384,15 @@ def _text_features(frame: Any, spec: dict[str, Any]) -> list[str]:
                                                             or pd.api.types.is_bool_dtype(frame[c]))]
 
 
-def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") -> Plan:
-    """Validate the config and run the parse-time guards; ``main`` adds the checks that import scikit-learn."""
+def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
+            facts: dict[str, Any] | None = None) -> Plan:
+    """Validate the config and run the parse-time guards; ``main`` adds the guards and the checks that import
+    scikit-learn or read data.
+
+    ``facts`` are what an earlier full check of this very config and data found (see :func:`check_facts`):
+    with them the data and estimator checks are not repeated (the guards always run in the main process).
+    Job processes (``main`` False) never read the data file before the seal: they do not need the folds.
+    """
     config = cfg.validate(raw)
     cfg.check_data_location(config)
     exp = cfg.experiment_dir(config, results)
@@ -393,15 +401,19 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
     check_experiment_dir(exp)
     manifest = read_manifest(exp)
     spec = cfg.seal_spec(config)
+    heavy = main and facts is None
     dev_target = dev_groups = None
     sealed_keys: Any = None
+    text_columns: list[str] = []
+    n_dev: int | None
+    n_groups: int | None
     if manifest is not None:
         _seal_unchanged(config, manifest, exp)
         if main:
             _data_unchanged(config, manifest)
             _signing_unchanged(config, manifest)
         task = manifest["spec"]["task"]
-        if main and config["folds"]["scheme"] not in ("kfold", "loo"):
+        if heavy and config["folds"]["scheme"] not in ("kfold", "loo"):
             import pandas as pd
 
             cols = [c for c in (spec["target"], spec["group"]) if c]
@@ -409,11 +421,14 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
         n_dev = int(manifest["counts"]["dev"])
         n_groups = manifest["counts"].get("dev_groups")
-        text_columns: list[str] = []
-        if main and any(f["preprocess"].get("categorical") == "none" for f in config["candidates"].values()):
+        if heavy and any(f["preprocess"].get("categorical") == "none" for f in config["candidates"].values()):
             import pandas as pd
 
             text_columns = _text_features(pd.read_parquet(exp / DEV).drop(columns=["row_key"]), spec)
+    elif facts is not None or not main:
+        facts = facts or {}
+        task, n_dev, n_groups = facts.get("task") or config.get("task") or "classification", facts.get("n_dev"), \
+            facts.get("n_groups")
     else:
         from .dataset import row_keys
         from .seal import check_before_seal, check_development_classes, check_sides, load_checked, split_masks
@@ -425,32 +440,35 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
         check_sides(int(test_rows.sum()), len(dev), spec, config["data"]["path"])
         n_dev = len(dev)
         n_groups = int(dev[spec["group"]].nunique()) if spec["group"] else None
-        text_columns = _text_features(frame, spec) if main else []
-        if main:
-            if task == "classification":
-                check_development_classes(dev[spec["target"]], config["data"]["path"])
-            check_before_seal(config, frame, test_rows, dropped, task)
-            dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
-            sealed_keys = keys[test_rows]
-            if config["ledger"]["signing_key"]:
-                from .signing import check_key_location
+        text_columns = _text_features(frame, spec)
+        if task == "classification":
+            check_development_classes(dev[spec["target"]], config["data"]["path"])
+        check_before_seal(config, frame, test_rows, dropped, task)
+        dev_target, dev_groups = dev[spec["target"]], dev[spec["group"]] if spec["group"] else None
+        sealed_keys = keys[test_rows]
+        if config["ledger"]["signing_key"]:
+            from .signing import check_key_location
 
-                check_key_location(config["ledger"]["signing_key"], exp.parent)
+            check_key_location(config["ledger"]["signing_key"], exp.parent)
     config = cfg.with_task(config, task)
     families = expand(config)
     from .foldspec import MAX_FIT_JOBS, fold_ids
 
+    needs_rows = config["folds"]["scheme"] in ("loo", "leave_one_group_out")
+    known = (n_dev is not None) and (n_groups is not None or config["folds"]["scheme"] != "leave_one_group_out")
     plan = Plan(config=config, exp=exp, families=families, manifest=manifest,
-                fold_ids=fold_ids(config["folds"], n_dev, n_groups), main=main)
+                fold_ids=fold_ids(config["folds"], n_dev or 0, n_groups) if known or not needs_rows else [],
+                main=main)
     if main and manifest is not None:
         from . import openings
 
         plan.opened = openings.records(exp).count
     jobs = len(plan.fold_ids) * len(families) * (1 + int(config["nested"]["k"]))
     if jobs > MAX_FIT_JOBS:
-        raise ConfigError(f"config key 'folds' gives {jobs} fit jobs ({len(plan.fold_ids)} folds x {len(families)} "
-                          f"families), more than {MAX_FIT_JOBS}; use fewer folds (e.g. kfold instead of loo)")
-    if main:
+        raise ConfigError(f"config keys 'folds' and 'candidates' give {jobs} fit jobs ({len(plan.fold_ids)} folds "
+                          f"and repeats x {len(families)} families), more than {MAX_FIT_JOBS}; use fewer folds, "
+                          "repeats or families")
+    if heavy:
         from .candidates import check_estimators
         from .folds import check_feasible
         from .scoring import check_metrics
@@ -464,13 +482,46 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results") ->
             scheme = config["folds"]["scheme"]
             check_feasible(config["folds"], len(dev_target), dev_target if scheme in STRATIFIED else None,
                            dev_groups if scheme in GROUPED else None)
+    if main:
         _opening_guard(plan)
         _forced_guard(plan, snakemake_flags())
-        if manifest is None:  # last: a data or config problem is the user's first fix, the policy comes after
-            from .overlap import check as check_overlap
+    if heavy and manifest is None:  # last: a data or config problem is the user's first fix, the policy comes after
+        from .overlap import check as check_overlap
 
-            check_overlap(sealed_keys, exp.parent, config["experiment"], config["test"]["seen_rows_reason"])
+        check_overlap(sealed_keys, exp.parent, config["experiment"], config["test"]["seen_rows_reason"])
+    plan.facts = {"task": task, "n_dev": n_dev, "n_groups": n_groups}
     return plan
+
+
+FACTS_VERSION = 1
+
+
+def facts_key(raw: dict[str, Any]) -> str:
+    """What a full check depends on: the config, the data file's size and time, holdfast's checking code and the
+    scikit-learn version. Equal keys mean an earlier full check still holds."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    data = raw.get("data") if isinstance(raw, dict) else None
+    path = data.get("path") if isinstance(data, dict) else None
+    stat = os.stat(path) if isinstance(path, str) and os.path.isfile(path) else None
+    try:
+        sklearn = version("scikit-learn")
+    except PackageNotFoundError:
+        sklearn = "?"
+    checking = {m: sha256_file(PACKAGE / f"{m}.py") for m in ("config", "plan", "candidates", "scoring", "dataset",
+                                                             "seal", "folds", "refit")}
+    return sha256_text(canonical_json({"config": raw, "data": [stat.st_size, stat.st_mtime_ns] if stat else None,
+                                       "code": checking, "sklearn": sklearn, "v": FACTS_VERSION}))
+
+
+def cached_facts(raw: dict[str, Any],
+                 folder: str = ".snakemake/holdfast/checked") -> tuple[dict[str, Any] | None, Path]:
+    """The facts a full check of this config recorded, if one did and nothing it depends on changed."""
+    path = Path(folder) / f"{facts_key(raw)}.json"
+    try:
+        return read_json(path), path
+    except (OSError, ValueError):
+        return None, path
 
 
 def checked_config(config: dict[str, Any], configfiles: list[str], overrides: dict[str, Any] | None,
@@ -512,9 +563,14 @@ def checked_config_or_exit(config: dict[str, Any], configfiles: list[str], overr
 
 
 def prepare_or_exit(raw: dict[str, Any], main: bool = True, results: str = "results") -> Plan:
-    """:func:`prepare`, turning a holdfast error into one line on stderr and its exit code."""
+    """:func:`prepare`, turning a holdfast error into one line on stderr and its exit code.
+
+    In the main process, facts of an earlier full check of the same config and data (written by ``holdfast
+    run``) spare the checks that import scikit-learn or read the data; the guards always run.
+    """
     try:
-        return prepare(raw, main=main, results=results)
+        facts = cached_facts(raw)[0] if main else None
+        return prepare(raw, main=main, results=results, facts=facts)
     except HoldfastError as exc:
         sys.stderr.write(exc.format_message() + "\n")
         raise SystemExit(exc.exit_code) from None
