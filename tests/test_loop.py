@@ -128,7 +128,9 @@ def test_optimism_counts_candidates_of_earlier_rounds(work: Path) -> None:
     assert choice["candidates"] == 1
     everything, last_round = choice["optimism"], choice["optimism"]["this_round_only"]
     assert everything["bbc"]["optimism"] > last_round["bbc"]["optimism"]
-    assert everything["tibshirani"]["optimism"] > last_round["tibshirani"]["optimism"] == 0.0
+    # Tibshirani–Tibshirani is a fold-wise shortfall: one candidate has none, and with these seeds the winner
+    # happens to be best on every fold of round 1 too (0 either way); it may never be smaller over more candidates.
+    assert everything["tibshirani"]["optimism"] >= last_round["tibshirani"]["optimism"] == 0.0
     assert everything["bbc_candidates"] == 8 and everything["tibshirani_candidates"] == 8
 
 
@@ -182,7 +184,7 @@ def test_a_killed_opening_counts_and_is_named_by_the_audit(work: Path) -> None:
     again = run_cli(work, "open", "results/bc", "--yes", "--cores", "2")
     assert again.returncode == 4 and "already opened 1 time(s)" in again.stderr
     plain = run_workflow(work, "-n")
-    assert plain.returncode == 0 and planned_jobs(plain) == []
+    assert plain.returncode == 0 and planned_jobs(plain) == [], plain.stdout[-2000:]
 
 
 # --- flags that used to break an opened experiment -------------------------------------------------------------------

@@ -67,7 +67,7 @@ def all_targets():
     """The development loop's outputs; the verdict only once an opening made it (holdfast open)."""
     if PLAN.closed:  # only what exists or can be restored: nothing up to the opening can run
         verdict = PLAN.path("final/verdict.json")
-        return [verdict] if Path(verdict).exists() or verdict_to_restore() else []
+        return [verdict] if Path(verdict).exists() or verdict_to_restore() else [PLAN.path("sealed/manifest.json")]
     targets = [
         PLAN.path("ranking.parquet"),
         PLAN.path("choice.json"),
