@@ -134,6 +134,6 @@ def fit_family(dev_path: str, folds_path: str, family: dict[str, Any], spec: dic
         "n_val": int(validation.sum()), "candidates": len(fits), "failed": len(failed),
         "folds_sha256": sha256_file(folds_path), "fits": str(Path(fits_path).name),
         "fits_sha256": sha256_file(fits_path), "oof_sha256": sha256_file(oof_path),
-        "random_states": seeds,
+        "random_states": seeds, "fit_seconds": round(float(fits["fit_seconds"].sum()), 3),
     }, rule=rule)
     return fits

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import fcntl
+import functools
 import getpass
 import json
 import os
@@ -139,8 +140,24 @@ class Problem:
         return f"[{self.code}] {self.message}"
 
 
-def verify_chain(path: str | os.PathLike[str]) -> tuple[list[dict[str, Any]], list[Problem]]:
-    """Recompute the chain. Returns the entries that parsed and every problem found."""
+def verify_chain(path: str | os.PathLike[str], cached: bool = True) -> tuple[list[dict[str, Any]], list[Problem]]:
+    """Recompute the chain. Returns the entries that parsed and every problem found.
+
+    With ``cached`` the result is kept per process for an unchanged file (same size and modification time),
+    because one parse asks several times; callers must not change the returned lists. The audit reads afresh.
+    """
+    ledger = Path(path)
+    try:
+        stat = ledger.stat()
+    except FileNotFoundError:
+        return [], [Problem("ledger-missing", f"ledger '{ledger}' does not exist")]
+    if not cached:
+        return _verify_chain.__wrapped__(str(ledger), stat.st_size, stat.st_mtime_ns)
+    return _verify_chain(str(ledger.resolve()), stat.st_size, stat.st_mtime_ns)
+
+
+@functools.lru_cache(maxsize=8)
+def _verify_chain(path: str, size: int, mtime_ns: int) -> tuple[list[dict[str, Any]], list[Problem]]:
     ledger = Path(path)
     problems: list[Problem] = []
     entries: list[dict[str, Any]] = []

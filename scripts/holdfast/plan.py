@@ -127,6 +127,7 @@ class Plan:
     opened: int = 0
     main: bool = True
     facts: dict[str, Any] = field(default_factory=dict)
+    _costs: dict[str, float] | None = field(default=None, repr=False)
 
     @property
     def sealed(self) -> bool:
@@ -212,6 +213,31 @@ class Plan:
         """Each family's declared simplicity parameter and direction (for the one-standard-error rule)."""
         return {name: spec["simplicity"] for name, spec in self.config["candidates"].items()
                 if spec.get("simplicity")}
+
+    def fit_costs(self) -> dict[str, float]:
+        """Expected seconds of one fit job per family: measured by its latest fit jobs in the ledger, else the
+        family's declared ``cost`` x candidates, else its number of candidates. Read once per parse."""
+        if self._costs is None:
+            measured: dict[str, list[float]] = {}
+            path = self.exp / LEDGER
+            if self.main and path.exists():
+                for entry in ledger.verify_chain(path)[0]:
+                    details = entry.get("details") or {}
+                    if entry.get("event") == "fit" and details.get("scope", "main") == "main" \
+                            and isinstance(details.get("fit_seconds"), int | float):
+                        measured.setdefault(str(details.get("family")), []).append(float(details["fit_seconds"]))
+            costs = {}
+            for family, candidates in self.families.items():
+                declared = self.config["candidates"][family].get("cost")
+                recent = measured.get(family, [])[-len(self.fold_ids) or None:]
+                costs[family] = (sum(recent) / len(recent) if recent else
+                                 float(declared) * len(candidates) if declared else float(len(candidates)))
+            self._costs = costs
+        return self._costs
+
+    def fit_priority(self, family: str) -> float:
+        """Snakemake priority of a family's fit jobs: the longest expected ones start first."""
+        return round(self.fit_costs().get(family, 0.0), 3)
 
     def threads(self, family: str) -> int:
         """Threads declared for a family's fit jobs."""

@@ -33,6 +33,10 @@ def family_json(wildcards):
     return PLAN.family_json(wildcards.family)
 
 
+def fit_priority(wildcards):
+    return PLAN.fit_priority(wildcards.family)
+
+
 def family_threads(wildcards):
     return PLAN.threads(wildcards.family)
 

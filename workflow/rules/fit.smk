@@ -17,6 +17,7 @@ rule fit_family:
         ledger=LEDGER,
         code=code_hash("fit_family"),
     threads: family_threads
+    priority: fit_priority
     resources:
         mem_mb=family_resource("mem_mb"),
         runtime=family_resource("runtime"),
