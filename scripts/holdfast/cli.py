@@ -8,6 +8,9 @@ from pathlib import Path
 
 from .errors import HoldfastError
 
+# Exit codes of `holdfast audit` (the errors' own codes, 1 to 7, are those of errors.py).
+AUDIT_PASS, AUDIT_FAIL, NOT_AN_EXPERIMENT = 0, 1, 2
+
 
 def _audit(args: argparse.Namespace) -> int:
     from .audit import audit, report
@@ -16,15 +19,21 @@ def _audit(args: argparse.Namespace) -> int:
     if not (exp / "ledger.jsonl").exists() and not (exp / "sealed").exists():
         sys.stderr.write(f"holdfast: error: '{exp}' is not an experiment directory (no ledger.jsonl, no sealed/); "
                          "pass results/<experiment>\n")
-        return 2
+        return NOT_AN_EXPERIMENT
     result = audit(str(exp))
     print(report(result))
-    if result["passed"]:  # what the passing record vouches for; a failing one vouches for nothing
-        from .headline import lines
+    if not result["passed"]:
+        return AUDIT_FAIL  # a failing record vouches for nothing: no numbers
+    from .headline import UnverifiedFileError, lines
 
-        for line in lines(exp):
-            print(f"  {line}")
-    return 0 if result["passed"] else 1
+    try:
+        shown = lines(exp, result["verified"])  # only from files this audit verified
+    except UnverifiedFileError as exc:
+        print(f"  numbers withheld: {exc}")
+        return AUDIT_FAIL
+    for line in shown:
+        print(f"  {line}")
+    return AUDIT_PASS
 
 
 def _check(args: argparse.Namespace) -> int:

@@ -1,26 +1,48 @@
-"""The closing lines of a run: the headline numbers, read from the files the steps wrote.
+"""The closing lines of a run: the headline numbers, read only from files an audit has just verified.
 
-Kept apart from the steps so the end of a run reads two JSON files without importing
-scikit-learn or skops into Snakemake's main process.
+Every number printed under "audit PASS" must come from a file that the same audit checked against the
+ledger: the readers here take the audit's ``verified`` map (relative path -> sha256) and refuse a file
+that is not in it or whose bytes changed since. Kept apart from the steps so the end of a run does not
+import scikit-learn or skops into Snakemake's main process.
 """
 
 from __future__ import annotations
 
+import hashlib
+import json
+import os
+from collections.abc import Mapping
 from pathlib import Path
+from typing import Any
 
-from ._io import read_json
-from .layout import CHOICE, NESTED_SUMMARY, VERDICT
+from .layout import AUDIT, CHOICE, LEDGER, NESTED_SUMMARY, VERDICT
 
 
-def verdict_line(exp_dir: str | Path) -> str:
+class UnverifiedFileError(Exception):
+    """A headline number would come from a file the audit did not verify."""
+
+
+def _read(exp: Path, name: str, verified: Mapping[str, str]) -> Any:
+    """A JSON file's content, only if the audit verified exactly these bytes."""
+    path = exp / name
+    if name not in verified:
+        raise UnverifiedFileError(f"'{path}' was not verified by this audit; its numbers are not shown")
+    data = path.read_bytes()
+    if hashlib.sha256(data).hexdigest() != verified[name]:
+        raise UnverifiedFileError(f"'{path}' changed after the audit verified it; its numbers are not shown, "
+                             "audit again")
+    return json.loads(data)
+
+
+def verdict_line(exp_dir: str | Path, verified: Mapping[str, str]) -> str:
     """One line for the end of a run: the winner, its CV estimates and its test score on the primary metric.
 
     Empty when the experiment has no verdict yet (a run stopped before the opening).
     """
     exp = Path(exp_dir)
-    if not (exp / VERDICT).exists() or not (exp / CHOICE).exists():
+    if not (exp / VERDICT).exists():
         return ""
-    verdict, choice = read_json(exp / VERDICT), read_json(exp / CHOICE)
+    verdict, choice = _read(exp, VERDICT, verified), _read(exp, CHOICE, verified)
     metric = choice["metric"]
     block = verdict["metrics"].get(metric)
     if block is None:
@@ -39,14 +61,13 @@ def verdict_line(exp_dir: str | Path) -> str:
     return line
 
 
-def nested_line(exp_dir: str | Path) -> str:
+def nested_line(exp_dir: str | Path, verified: Mapping[str, str]) -> str:
     """One line for the end of a run: the nested estimate of the selection procedure, and who won where."""
-    path = Path(exp_dir) / NESTED_SUMMARY
-    if not path.exists():
+    exp = Path(exp_dir)
+    if not (exp / NESTED_SUMMARY).exists():
         return ""
-    summary = read_json(path)
-    choice = Path(exp_dir) / CHOICE
-    metric = read_json(choice)["metric"] if choice.exists() else next(iter(summary["metrics"]))
+    summary = _read(exp, NESTED_SUMMARY, verified)
+    metric = _read(exp, CHOICE, verified)["metric"] if (exp / CHOICE).exists() else next(iter(summary["metrics"]))
     numbers = {"se_corrected": float("nan"), **summary["metrics"][metric]}  # older summaries lack it
     winners = ", ".join(f"{c} ×{n}" for c, n in summary["winner_counts"].items())
     return (f"nested CV of the whole selection ({summary['outer_folds']} outer folds), {metric}: "
@@ -54,6 +75,31 @@ def nested_line(exp_dir: str | Path) -> str:
             f"outer-fold winners: {winners}")
 
 
-def lines(exp_dir: str | Path) -> list[str]:
-    """Every headline line that the experiment's files can give, in reading order."""
-    return [line for line in (verdict_line(exp_dir), nested_line(exp_dir)) if line]
+def lines(exp_dir: str | Path, verified: Mapping[str, str]) -> list[str]:
+    """Every headline line the verified files give, in reading order; UnverifiedFileError if one is not verified."""
+    return [line for line in (verdict_line(exp_dir, verified), nested_line(exp_dir, verified)) if line]
+
+
+def closing_lines(exp_dir: str | os.PathLike[str], experiment: str) -> list[str]:
+    """The end of a run: a fresh audit (written to audit.json when the workflow keeps one), then, only when it
+    passed, the headline numbers from the files it verified.
+
+    The audit is made now, not read from an audit.json that a file edited since could have made stale.
+    """
+    exp = Path(exp_dir)
+    if not (exp / LEDGER).exists():
+        return []  # nothing was sealed yet: there is no record to audit
+    from .audit import audit, audit_to_file
+
+    result = audit_to_file(exp, exp / AUDIT) if (exp / AUDIT).exists() else audit(exp)
+    where = f"details: holdfast audit {exp}"
+    out: list[str] = []
+    state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
+    if result["passed"]:
+        try:
+            out += lines(exp, result["verified"])
+        except UnverifiedFileError as exc:
+            state = f"PASS, but numbers withheld: {exc}"
+    out.append(f"experiment '{experiment}': audit {state} (test set opened {result['test_set_opened']} time(s)); "
+               f"{where}")
+    return out

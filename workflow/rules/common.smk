@@ -74,15 +74,10 @@ def all_targets():
 
 
 onsuccess:
-    # Closing lines: where the audit stands (the audit rule writes it; the run never hides a failure)
-    # and, only when it passed, the headline numbers that record vouches for (as `holdfast audit`).
-    audit_path = Path(PLAN.path("audit.json"))
-    if audit_path.exists():
-        from holdfast.headline import lines
+    # Closing lines from an audit made now (rewriting audit.json), never from a stored audit.json that a file
+    # edited since could have made stale; the headline numbers only when it passed, read from the files it
+    # verified. No step is running at this point, so the audit's exclusive lock does not wait on this run.
+    from holdfast.headline import closing_lines
 
-        result = json.loads(audit_path.read_text())
-        state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
-        for line in lines(PLAN.exp) if result["passed"] else []:
-            print(f"holdfast: {line}")
-        print(f"holdfast: experiment '{PLAN.config['experiment']}': audit {state} "
-              f"(test set opened {result['test_set_opened']} time(s)); details: holdfast audit {PLAN.exp}")
+    for line in closing_lines(PLAN.exp, PLAN.config["experiment"]):
+        print(f"holdfast: {line}")
