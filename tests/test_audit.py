@@ -805,6 +805,86 @@ def test_closing_lines_come_from_an_audit_made_at_the_end_of_the_run(bc_copy: Pa
     assert stored["state"] == "fail" and codes(stored) == ["verdict-changed"]  # rewritten by that audit
 
 
+# --- a run in progress ---------------------------------------------------------------------------------------------
+
+HOLD = """
+import sys
+from holdfast import ledger
+with ledger.locked(sys.argv[1], shared=True):
+    print("holding", flush=True)
+    sys.stdin.readline()
+"""
+
+
+def test_audit_while_a_step_holds_the_experiment_says_in_progress(bc_copy: Path) -> None:
+    """Another process holds the experiment as a step does (shared lock): no false FAIL, a distinct exit code."""
+    from holdfast.cli import AUDIT_IN_PROGRESS
+    from holdfast.layout import STEPS_LOCK
+
+    exp = experiment(bc_copy)
+    (exp / "choice.json").write_text("{ half written", encoding="utf-8")  # what a step in mid-write can leave
+    holder = subprocess.Popen([sys.executable, "-c", HOLD, str(exp / STEPS_LOCK)], stdin=subprocess.PIPE,
+                              stdout=subprocess.PIPE, text=True, env={"PYTHONPATH": str(REPO / "scripts")})
+    try:
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "holding"
+        result = audit(str(exp))
+        assert result["state"] == "in progress" and result["problems"] == [] and result["passed"] is False
+        assert result["verified"] == {}
+        cli = audit_cli(exp)
+        assert cli.returncode == AUDIT_IN_PROGRESS == 75, cli.stdout + cli.stderr
+        assert cli.stdout.startswith("IN PROGRESS: experiment 'bc': a run is in progress")
+    finally:
+        holder.communicate("done\n", timeout=60)
+    assert holder.returncode == 0
+    after = audit(str(exp))
+    assert after["state"] == "fail" and "choice-changed" in codes(after)  # once free, the same files fail
+
+
+def test_audit_during_a_real_run_says_in_progress_and_the_run_ends_with_a_fresh_pass(bc_workdir: Path) -> None:
+    """Freeze a real run while one of its steps holds the experiment; audit; let it finish."""
+    import os
+    import signal
+    import time
+
+    from holdfast import ledger
+    from holdfast.layout import STEPS_LOCK
+
+    exp = experiment(bc_workdir)
+    cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(bc_workdir), "--cores", "2",
+           "--configfile", str(bc_workdir / "config.yaml")]
+    run = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, stdin=subprocess.DEVNULL,
+                           env={**os.environ, "PYTHONPATH": str(REPO / "scripts")}, start_new_session=True)
+
+    def held() -> bool:
+        if not exp.is_dir():
+            return False
+        with ledger.locked_if_free(exp / STEPS_LOCK) as free:
+            return not free
+
+    deadline = time.monotonic() + 600
+    frozen = False
+    try:
+        while not frozen:
+            assert run.poll() is None and time.monotonic() < deadline, "no step was ever seen holding the experiment"
+            if held():
+                os.killpg(run.pid, signal.SIGSTOP)
+                frozen = held()  # the step may have finished between the look and the stop
+                if not frozen:
+                    os.killpg(run.pid, signal.SIGCONT)
+            time.sleep(0.01)
+        cli = audit_cli(exp)
+    finally:
+        os.killpg(run.pid, signal.SIGCONT)
+    out, err = run.communicate(timeout=900)
+    assert cli.returncode == 75 and cli.stdout.startswith("IN PROGRESS"), cli.stdout + cli.stderr
+    assert run.returncode == 0, err[-3000:]
+    closing = [line for line in out.splitlines() if line.startswith("holdfast: ")]
+    assert closing[-1].startswith("holdfast: experiment 'bc': audit PASS (test set opened 1 time(s))"), out[-3000:]
+    assert closing[0].startswith("holdfast: winner ")
+    assert (exp / "logs/audit.log").read_text().startswith("PASS: experiment 'bc'")  # the rule's own audit
+    assert json.loads((exp / "audit.json").read_text())["state"] == "pass"
+
+
 def test_a_one_se_choice_other_than_the_best_mean_is_recognised(bc_finished: Path, tmp_path: Path) -> None:
     """The real tally, run under the one-SE rule on the finished experiment's fits, picks a simpler candidate than
     the best mean; the audit's reading of the rule agrees with it (and its own check then passes)."""

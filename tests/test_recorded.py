@@ -1,11 +1,16 @@
-"""Every hash a step records is in the audit's table, and each record names one file under the experiment."""
+"""Every hash a step records is in the audit's table, and the experiment's lock tells a running step apart."""
 
 from __future__ import annotations
 
 import ast
+import os
+import subprocess
+import sys
+from pathlib import Path
 
 import pytest
 from conftest import REPO
+from holdfast import ledger
 from holdfast.recorded import NOT_FILES, RECORDED, Recorded, file_of, scope_folder
 
 
@@ -74,3 +79,53 @@ def test_a_record_that_names_no_file_is_refused(details: dict[str, object]) -> N
 def test_scope_folders() -> None:
     assert [scope_folder(s) for s in ("main", "outer", "nested", "o0", "o12", "o01", "x", None)] == [
         "", "nested/outer_", "nested/", "nested/o0/", "nested/o12/", None, None, None]
+
+
+HOLD = """
+import sys
+from holdfast import ledger
+with ledger.locked(sys.argv[1], shared=sys.argv[2] == "shared"):
+    print("holding", flush=True)
+    sys.stdin.readline()
+"""
+
+
+@pytest.mark.parametrize("mode", ["shared", "exclusive"])
+def test_the_lock_is_not_free_while_another_process_holds_it(tmp_path: Path, mode: str) -> None:
+    target = tmp_path / "steps"
+    with ledger.locked_if_free(target) as free:
+        assert free is True
+    holder = subprocess.Popen([sys.executable, "-c", HOLD, str(target), mode], stdin=subprocess.PIPE,
+                              stdout=subprocess.PIPE, text=True, env={"PYTHONPATH": str(REPO / "scripts")})
+    try:
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "holding"
+        with ledger.locked_if_free(target) as free:
+            assert free is False
+        if mode == "shared":  # shared holders do not exclude one another
+            with ledger.locked(target, shared=True):
+                pass
+    finally:
+        holder.communicate("done\n", timeout=30)
+    with ledger.locked_if_free(target) as free:
+        assert free is True
+
+
+def test_no_folder_means_nothing_holds_it_and_nothing_is_made(tmp_path: Path) -> None:
+    with ledger.locked_if_free(tmp_path / "missing" / "steps") as free:
+        assert free
+    assert not (tmp_path / "missing").exists()
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root writes through permission bits; needs an ordinary user")
+def test_a_read_only_copy_can_still_be_checked(tmp_path: Path) -> None:
+    folder = tmp_path / "exp"
+    folder.mkdir()
+    with ledger.locked_if_free(folder / "steps") as free:  # makes steps.lock
+        assert free
+    (folder / "steps.lock").chmod(0o444)
+    folder.chmod(0o555)
+    try:
+        with ledger.locked_if_free(folder / "steps") as free:  # opened read-only: flock still works
+            assert free
+    finally:
+        folder.chmod(0o755)

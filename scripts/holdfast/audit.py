@@ -4,7 +4,8 @@ It recomputes the hash chain, then checks every file whose sha256 the ledger rec
 ``recorded.py``), then what those files say: the development/test split, the folds, the ranking against
 the fit records, the choice against the ranking and its declared rule, the nested summary against the
 outer scores, the model and the openings. It reads only the ``row_key`` column of the sealed test file,
-never its features or target.
+never its features or target. It runs only while no step is writing: every step holds the experiment's
+steps lock shared, and the audit takes it exclusively or reports that a run is in progress.
 """
 
 from __future__ import annotations
@@ -31,6 +32,7 @@ from .layout import (
     MODEL,
     NESTED_SUMMARY,
     RANKING,
+    STEPS_LOCK,
     TEST,
     VERDICT,
     fit_file,
@@ -38,7 +40,7 @@ from .layout import (
 from .ledger import Problem
 from .recorded import scope_folder, verify
 
-PASS, FAIL = "pass", "fail"
+PASS, FAIL, IN_PROGRESS = "pass", "fail", "in progress"
 CHECKS = ["hash chain", "seal anchor and experiment name", "every file whose sha256 the ledger records",
           "dev/test overlap", "fold coverage", "fits on the current folds", "ranking against the fit records",
           "choice against the ranking and its rule", "nested summary against the outer scores",
@@ -423,7 +425,7 @@ def _result(exp: Path, state: str, entries: list[dict[str, Any]], problems: list
         "ledger_head": entries[-1]["hash"] if entries else None,
         "test_set_opened": openings,
         "verified": dict(sorted(verified.items())),
-        "checks": CHECKS,
+        "checks": CHECKS if state != IN_PROGRESS else [],
     }
 
 
@@ -453,12 +455,17 @@ def _audit_now(exp: Path) -> dict[str, Any]:
 
 
 def audit(exp_dir: str | os.PathLike[str]) -> dict[str, Any]:
-    """Check one experiment directory; return {'state': 'pass' | 'fail', 'problems': [...], ...}.
+    """Check one experiment directory; return {'state': 'pass' | 'fail' | 'in progress', 'problems': [...], ...}.
 
     'verified' maps every file whose recorded sha256 matched (relative path -> sha256); the headline reads
-    only those.
+    only those. While a step holds the experiment (a run is in progress) nothing is checked: the state is
+    'in progress' with no problems, because files being written would look like tampering.
     """
-    return _audit_now(Path(exp_dir))
+    exp = Path(exp_dir)
+    with ledger.locked_if_free(exp / STEPS_LOCK) as free:
+        if not free:
+            return _result(exp, IN_PROGRESS, [], [], {}, 0)
+        return _audit_now(exp)
 
 
 def audit_to_file(exp_dir: str | os.PathLike[str], out_path: str | os.PathLike[str]) -> dict[str, Any]:
@@ -470,6 +477,9 @@ def audit_to_file(exp_dir: str | os.PathLike[str], out_path: str | os.PathLike[s
 
 def report(result: dict[str, Any]) -> str:
     """The audit as lines of text for a terminal."""
+    if result.get("state") == IN_PROGRESS:
+        return (f"IN PROGRESS: experiment '{result['experiment']}': a run is in progress (a step is writing to it), "
+                "so nothing was checked; audit again when the run has finished")
     head = "PASS" if result["passed"] else "FAIL"
     lines = [f"{head}: experiment '{result['experiment']}', {result['ledger_entries']} ledger entries, "
              f"test set opened {result['test_set_opened']} time(s)"]

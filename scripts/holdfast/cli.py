@@ -10,10 +10,11 @@ from .errors import HoldfastError
 
 # Exit codes of `holdfast audit` (the errors' own codes, 1 to 7, are those of errors.py).
 AUDIT_PASS, AUDIT_FAIL, NOT_AN_EXPERIMENT = 0, 1, 2
+AUDIT_IN_PROGRESS = 75  # a step is writing to the experiment: nothing was checked; try again later
 
 
 def _audit(args: argparse.Namespace) -> int:
-    from .audit import audit, report
+    from .audit import IN_PROGRESS, audit, report
 
     exp = Path(args.experiment_dir)
     if not (exp / "ledger.jsonl").exists() and not (exp / "sealed").exists():
@@ -22,6 +23,8 @@ def _audit(args: argparse.Namespace) -> int:
         return NOT_AN_EXPERIMENT
     result = audit(str(exp))
     print(report(result))
+    if result["state"] == IN_PROGRESS:
+        return AUDIT_IN_PROGRESS
     if not result["passed"]:
         return AUDIT_FAIL  # a failing record vouches for nothing: no numbers
     from .headline import UnverifiedFileError, lines
@@ -53,7 +56,8 @@ def build_parser() -> argparse.ArgumentParser:
     """The argument parser (exposed for tests and documentation)."""
     parser = argparse.ArgumentParser(prog="holdfast", description=__doc__)
     sub = parser.add_subparsers(dest="command", required=True)
-    p_audit = sub.add_parser("audit", help="check an experiment's ledger and files; exit 0 on pass, 1 on fail")
+    p_audit = sub.add_parser("audit", help="check an experiment's ledger and files; exit 0 on pass, 1 on fail, "
+                             f"{AUDIT_IN_PROGRESS} while a run is in progress (nothing checked)")
     p_audit.add_argument("experiment_dir", help="results/<experiment>")
     p_audit.set_defaults(func=_audit)
     p_check = sub.add_parser("check", help="validate a config and its data without running anything")

@@ -89,10 +89,13 @@ def closing_lines(exp_dir: str | os.PathLike[str], experiment: str) -> list[str]
     exp = Path(exp_dir)
     if not (exp / LEDGER).exists():
         return []  # nothing was sealed yet: there is no record to audit
-    from .audit import audit, audit_to_file
+    from .audit import IN_PROGRESS, audit, audit_to_file
 
     result = audit_to_file(exp, exp / AUDIT) if (exp / AUDIT).exists() else audit(exp)
     where = f"details: holdfast audit {exp}"
+    if result["state"] == IN_PROGRESS:
+        return [f"experiment '{experiment}': audit not made: a run is in progress (another step is writing to "
+                f"it); {where} when it has finished"]
     out: list[str] = []
     state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
     if result["passed"]:

@@ -4,6 +4,8 @@ rule audit:
         verdict=PLAN.path("final/verdict.json"),
         choice=PLAN.path("choice.json"),
         folds=PLAN.path("folds.parquet"),
+        # Last of all: no other job of this run may still be writing while the audit reads.
+        nested=PLAN.path("nested/summary.json") if PLAN.config["nested"]["k"] else [],
     output:
         audit=PLAN.path("audit.json"),
     log:
