@@ -501,6 +501,17 @@ def edit_outer_score(exp: Path) -> None:
     edit_json(exp / "nested/o1/score.json", lambda s: s["scores"].__setitem__("roc_auc", 0.99))
 
 
+def forge_outer_score_winner(exp: Path) -> None:
+    """Say outer fold 1 was won by another candidate, recording the score file at a forged score_outer event."""
+    ranking = pd.read_parquet(exp / "nested/o1/ranking.parquet")
+
+    def edit(score: dict[str, Any]) -> None:
+        score["winner"] = sorted(set(ranking["candidate"]) - {score["winner"]})[0]
+
+    edit_json(exp / "nested/o1/score.json", edit)
+    forge_record(exp, "score_outer", scope="o1", score_sha256=sha(exp / "nested/o1/score.json"))
+
+
 def edit_inner_fit(exp: Path) -> None:
     """Improve one validation score inside an outer fold's inner selection."""
     def edit(fits: pd.DataFrame) -> pd.DataFrame:
@@ -625,6 +636,8 @@ NESTED_CASES = [
                  id="nested-summary-forged-with-record"),
     pytest.param(delete_nested_summary, ["nested-summary-missing"], [], id="nested-summary-deleted"),
     pytest.param(edit_outer_score, ["nested-score-changed"], [], id="outer-score-edited"),
+    pytest.param(forge_outer_score_winner, ["nested-score-disagrees", "nested-summary-disagrees"],
+                 ["nested-score-changed"], id="outer-score-forged-with-record"),
     pytest.param(edit_inner_fit, ["fits-changed"], [], id="inner-fit-edited"),
     pytest.param(edit_inner_oof, ["oof-changed"], [], id="inner-oof-edited"),
     pytest.param(edit_outer_folds, ["folds-changed"], [], id="outer-folds-edited"),

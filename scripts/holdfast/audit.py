@@ -349,7 +349,7 @@ def _check_spec(where: Path, winner: dict[str, Any], out: list[Problem]) -> None
 
 def _check_nested_summary(exp: Path, entries: list[dict[str, Any]], verified: dict[str, str],
                           out: list[Problem]) -> None:
-    """nested/summary.json holds what its outer folds' score files give."""
+    """nested/summary.json holds what its outer folds' score files give, and each score is its fold's winner's."""
     summary = _read_verified(exp, NESTED_SUMMARY, verified, read_json, "nested-summary-changed", out)
     if not isinstance(summary, dict):
         return
@@ -358,9 +358,21 @@ def _check_nested_summary(exp: Path, entries: list[dict[str, Any]], verified: di
     if any(name not in verified for name in names):
         return  # a missing or changed score file is already named
     scores = [read_json(exp / name) for name in names]
+    for outer, (name, score) in enumerate(zip(names, scores, strict=True)):
+        choice = _read_verified(exp, f"nested/o{outer}/{CHOICE}", verified, read_json, "choice-changed", out)
+        if not isinstance(choice, dict):
+            continue  # its own problem is already named
+        chosen = (choice["winner"]["candidate"], choice["winner"]["mean"])
+        if (score.get("winner"), score.get("inner_cv_mean")) != chosen:
+            out.append(Problem("nested-score-disagrees", f"'{exp / name}' scores winner {score.get('winner')} "
+                               f"(inner CV mean {score.get('inner_cv_mean')!r}) but nested/o{outer}/choice.json "
+                               f"chose {chosen[0]} ({chosen[1]!r})"))
     where = exp / NESTED_SUMMARY
     try:
         wrong = []
+        claimed = [(w["outer_fold"], w["candidate"], w["inner_cv_mean"]) for w in summary["winners"]]
+        if claimed != [(s["outer_fold"], s["winner"], s["inner_cv_mean"]) for s in scores]:
+            wrong.append(f"winners {claimed} against the score files")
         if summary["outer_folds"] != len(scores):
             wrong.append(f"outer_folds {summary['outer_folds']} against {len(scores)} score files")
         counts: dict[str, int] = {}
