@@ -97,7 +97,8 @@ def closing_lines(exp_dir: str | os.PathLike[str], experiment: str) -> list[str]
         return [f"experiment '{experiment}': audit not made: a run is in progress (another step is writing to "
                 f"it); {where} when it has finished"]
     out: list[str] = []
-    state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
+    codes = dict.fromkeys(p["code"] for p in result["problems"])  # each code once, in the order found
+    state = "PASS" if result["passed"] else "FAIL: " + "; ".join(codes)
     if result["passed"]:
         try:
             out += lines(exp, result["verified"])
