@@ -144,11 +144,54 @@ def demo_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return workdir
 
 
+def nested_config() -> dict[str, Any]:
+    """A small nested experiment on the demo data (2 outer folds, 3 inner folds, two families, one-SE rule)."""
+    return {
+        "experiment": "nested-demo",
+        "data": {"path": "data_demo/shipments.csv", "target": "spoiled", "id": "shipment_id", "group": "route",
+                 "time": "departed_at", "drop": ["shelf_life_days"]},
+        "metrics": ["roc_auc", "accuracy"],
+        "test": {"scheme": "stratified", "salt": "nested"},
+        "folds": {"scheme": "stratified", "k": 3, "seed": 4},
+        "nested": {"k": 2, "seed": 9},
+        "selection": {"rule": "one_standard_error", "family_order": ["tree", "logistic"]},
+        "candidates": {
+            "logistic": {"estimator": "sklearn.linear_model.LogisticRegression",
+                         "preprocess": {"scale": "standard"}, "params": {"max_iter": 1000},
+                         "grid": {"C": [0.01, 1.0]}, "simplicity": {"param": "C", "simpler": "lower"}},
+            "tree": {"estimator": "sklearn.tree.DecisionTreeClassifier", "params": {"random_state": 0},
+                     "grid": {"max_depth": [3, 6]}, "simplicity": {"param": "max_depth", "simpler": "lower"}},
+        },
+        "opening": {"bootstrap": 200},
+    }
+
+
+@pytest.fixture(scope="session")
+def nested_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """One finished nested experiment on the demo data (run once per session; copy it before changing it)."""
+    workdir = tmp_path_factory.mktemp("nested")
+    (workdir / "data_demo").mkdir()
+    shutil.copy(REPO / "data_demo" / "shipments.csv", workdir / "data_demo" / "shipments.csv")
+    write_config(workdir, nested_config())
+    result = run_workflow(workdir)
+    assert result.returncode == 0, result.stderr[-3000:]
+    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)  # beside the experiment, not in it
+    return workdir
+
+
 @pytest.fixture
 def bc_copy(bc_finished: Path, tmp_path: Path) -> Path:
     """A private copy of the finished experiment, times and Snakemake metadata included."""
     target = tmp_path / "work"
     shutil.copytree(bc_finished, target, symlinks=True)
+    return target
+
+
+@pytest.fixture
+def nested_copy(nested_finished: Path, tmp_path: Path) -> Path:
+    """A private copy of the finished nested experiment."""
+    target = tmp_path / "nested-work"
+    shutil.copytree(nested_finished, target, symlinks=True)
     return target
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import shutil
 import subprocess
 import sys
 from collections.abc import Callable
@@ -19,7 +20,7 @@ from holdfast.opening import open_test
 
 pytestmark = pytest.mark.slow
 
-Mutation = Callable[[Path], None]
+Mutation = Callable[[Path], Path | None]  # a new path when it moves the experiment
 
 
 # --- helpers -------------------------------------------------------------------------------------------------------
@@ -321,6 +322,252 @@ def strip_fit_detail(exp: Path) -> None:
     write_lines(exp, lines)
 
 
+# --- mutations of files the ledger records a hash for, and of what those files say ----------------------------------
+
+def forge_record(exp: Path, event: str, scope: str = "main", of: dict[str, Any] | None = None,
+                 **changes: Any) -> None:
+    """Append a properly chained copy of the latest ``event`` of ``scope`` (whose details include ``of``) with
+    ``changes``, as a forger would."""
+    items = [e for e in entries(exp) if e["event"] == event and e["details"].get("scope", "main") == scope
+             and (of or {}).items() <= e["details"].items()]
+    ledger.append(exp / "ledger.jsonl", event, {**items[-1]["details"], **changes})
+
+
+def sha(path: Path) -> str:
+    """The sha256 of a file, as the ledger records it."""
+    from holdfast._io import sha256_file
+
+    return sha256_file(path)
+
+
+def edit_leakage(exp: Path) -> None:
+    """Rewrite the leakage report's summary to say all is well."""
+    edit_json(exp / "leakage.json", lambda r: r.__setitem__("summary", "no leakage found"))
+
+
+def delete_folds_summary(exp: Path) -> None:
+    """Delete folds_summary.parquet."""
+    (exp / "folds_summary.parquet").unlink()
+
+
+def edit_oof(exp: Path) -> None:
+    """Change the out-of-fold predictions of one fit job (they feed the BBC correction)."""
+    def edit(oof: pd.DataFrame) -> pd.DataFrame:
+        return oof.iloc[::-1].reset_index(drop=True)
+
+    edit_parquet(exp / "oof/logistic/r0f1.parquet", edit)
+
+
+def edit_card(exp: Path) -> None:
+    """Change the model card's recorded training rows."""
+    edit_json(exp / "model/card.json", lambda c: c["trained_on"].__setitem__("rows", 10_000))
+
+
+def edit_archive(exp: Path) -> None:
+    """Improve the test score in the archived verdict of the first opening."""
+    edit_json(exp / "final/openings/1.json", lambda v: v["metrics"]["accuracy"].__setitem__("test", 0.999))
+
+
+def delete_archive(exp: Path) -> None:
+    """Delete the archived verdict of the first opening."""
+    (exp / "final/openings/1.json").unlink()
+
+
+def invent_nested_summary(exp: Path) -> None:
+    """Put a nested summary into an experiment that never ran nested CV."""
+    (exp / "nested").mkdir()
+    (exp / "nested/summary.json").write_text(json.dumps({
+        "outer_folds": 5, "winner_counts": {"16b25da3ac": 5}, "winners": [],
+        "metrics": {"accuracy": {"mean": 0.99, "sd": 0.001, "se": 0.0005, "se_corrected": 0.001,
+                                 "by_outer_fold": [0.99] * 5}}}, indent=2), encoding="utf-8")
+
+
+def invent_fit_file(exp: Path) -> None:
+    """Add a fit file for a family that never ran (a copy of another family's)."""
+    (exp / "fits/boost").mkdir()
+    shutil.copy(exp / "fits/tree/r0f0.parquet", exp / "fits/boost/r0f0.parquet")
+
+
+def rename_folder(exp: Path) -> Path:
+    """Rename results/bc to results/bc-final, as if it were another experiment."""
+    target = exp.with_name("bc-final")
+    exp.rename(target)
+    return target
+
+
+def forge_record_outside(exp: Path) -> None:
+    """Append a fit record whose family names a path outside the experiment."""
+    forge_record(exp, "fit", family="../../elsewhere")
+
+
+def choice_names_runner_up(exp: Path) -> None:
+    """Name the runner-up as winner with its true ranking numbers, and record the new choice at a forged tally."""
+    choice = json.loads((exp / "choice.json").read_text())
+    ranking = pd.read_parquet(exp / "ranking.parquet")
+    row = ranking[(ranking["metric"] == choice["metric"])
+                  & (ranking["candidate"] == choice["runner_up"]["candidate"])].iloc[0]
+    old = choice["winner"]
+    from holdfast.candidates import candidate_id
+
+    params = json.loads(row["params"])
+    spec = {**old["spec"], "params": params, "id": row["candidate"]}  # the runner-up is of the winner's family
+    assert candidate_id(spec["estimator"], spec["preprocess"], params) == row["candidate"]
+    choice["winner"] = {"candidate": row["candidate"], "family": row["family"], "mean": float(row["mean"]),
+                        "se": float(row["se"]), "se_corrected": float(row["se_corrected"]),
+                        "folds": int(row["folds"]), "spec": spec}
+    choice["runner_up"] = {"candidate": old["candidate"], "family": old["family"], "mean": old["mean"],
+                           "se": old["se"]}
+    edit_json(exp / "choice.json", lambda c: c.update(choice))
+    forge_record(exp, "tally", winner=row["candidate"], choice_sha256=sha(exp / "choice.json"))
+
+
+def choice_improves_winner_mean(exp: Path) -> None:
+    """Improve the winner's CV mean in choice.json and record the new choice at a forged tally."""
+    edit_json(exp / "choice.json", lambda c: c["winner"].__setitem__("mean", 0.999))
+    forge_record(exp, "tally", choice_sha256=sha(exp / "choice.json"))
+
+
+def choice_claims_one_se_rule(exp: Path) -> None:
+    """Say the choice followed the one-standard-error rule, without its settings, at a forged tally."""
+    def edit(choice: dict[str, Any]) -> None:
+        choice["rule"] = "one_standard_error"
+        choice.pop("rule_settings", None)
+
+    edit_json(exp / "choice.json", edit)
+    forge_record(exp, "tally", rule="one_standard_error", choice_sha256=sha(exp / "choice.json"))
+
+
+def choice_breaks_one_se_rule(exp: Path) -> None:
+    """Declare the one-SE rule with settings under which it picks another candidate than the recorded winner."""
+    def edit(choice: dict[str, Any]) -> None:
+        choice["rule"] = "one_standard_error"
+        choice["rule_settings"] = {"family_order": ["logistic", "tree"],
+                                   "simplicity": {"logistic": {"param": "C", "simpler": "lower"},
+                                                  "tree": {"param": "max_depth", "simpler": "lower"}}}
+
+    edit_json(exp / "choice.json", edit)
+    forge_record(exp, "tally", rule="one_standard_error", choice_sha256=sha(exp / "choice.json"))
+
+
+def winner_spec_changed(exp: Path) -> None:
+    """Change the winner's parameters in its spec (what the refit builds), keeping its id; forge the tally."""
+    edit_json(exp / "choice.json", lambda c: c["winner"]["spec"]["params"].__setitem__("C", 1000.0))
+    forge_record(exp, "tally", choice_sha256=sha(exp / "choice.json"))
+
+
+def ranking_improves_a_loser(exp: Path) -> None:
+    """Raise a losing candidate's mean in ranking.parquet (still below the winner); forge the tally's record."""
+    def edit(ranking: pd.DataFrame) -> pd.DataFrame:
+        last = ranking.index[(ranking["metric"] == "accuracy") & (ranking["rank"] == ranking["rank"].max())][0]
+        ranking.loc[last, "mean"] += 0.01
+        return ranking
+
+    edit_parquet(exp / "ranking.parquet", edit)
+    forge_record(exp, "tally", ranking_sha256=sha(exp / "ranking.parquet"))
+
+
+def garbage_fit_file_with_record(exp: Path) -> None:
+    """Overwrite a fit file with bytes that are not Parquet and record their hash at a forged fit event."""
+    (exp / "fits/tree/r0f0.parquet").write_bytes(b"not a parquet file")
+    forge_record(exp, "fit", of={"family": "tree", "repeat": 0, "fold": 0},
+                 fits_sha256=sha(exp / "fits/tree/r0f0.parquet"))
+
+
+# --- nested experiments: every scope's files are recorded too -----------------------------------------------------
+
+def nested_exp(workdir: Path) -> Path:
+    """The finished nested experiment inside a copied work folder."""
+    return workdir / "results" / "nested-demo"
+
+
+def edit_nested_summary(exp: Path) -> None:
+    """Improve the nested estimate in nested/summary.json."""
+    edit_json(exp / "nested/summary.json", lambda s: s["metrics"]["roc_auc"].__setitem__("mean", 0.99))
+
+
+def forge_nested_summary(exp: Path) -> None:
+    """Improve the nested estimate and record the new summary at a forged nested_summary event."""
+    edit_nested_summary(exp)
+    forge_record(exp, "nested_summary", scope="nested", summary_sha256=sha(exp / "nested/summary.json"))
+
+
+def delete_nested_summary(exp: Path) -> None:
+    """Delete nested/summary.json."""
+    (exp / "nested/summary.json").unlink()
+
+
+def edit_outer_score(exp: Path) -> None:
+    """Improve one outer fold's score file."""
+    edit_json(exp / "nested/o1/score.json", lambda s: s["scores"].__setitem__("roc_auc", 0.99))
+
+
+def forge_outer_score_winner(exp: Path) -> None:
+    """Say outer fold 1 was won by another candidate, recording the score file at a forged score_outer event."""
+    ranking = pd.read_parquet(exp / "nested/o1/ranking.parquet")
+
+    def edit(score: dict[str, Any]) -> None:
+        score["winner"] = sorted(set(ranking["candidate"]) - {score["winner"]})[0]
+
+    edit_json(exp / "nested/o1/score.json", edit)
+    forge_record(exp, "score_outer", scope="o1", score_sha256=sha(exp / "nested/o1/score.json"))
+
+
+def edit_inner_fit(exp: Path) -> None:
+    """Improve one validation score inside an outer fold's inner selection."""
+    def edit(fits: pd.DataFrame) -> pd.DataFrame:
+        fits.loc[0, "val_roc_auc"] = 1.0
+        return fits
+
+    edit_parquet(exp / "nested/o0/fits/tree/r0f1.parquet", edit)
+
+
+def edit_inner_oof(exp: Path) -> None:
+    """Reorder one inner fit job's out-of-fold predictions."""
+    edit_parquet(exp / "nested/o1/oof/logistic/r0f2.parquet", lambda o: o.iloc[::-1].reset_index(drop=True))
+
+
+def edit_outer_folds(exp: Path) -> None:
+    """Move one row to the other outer fold."""
+    def edit(folds: pd.DataFrame) -> pd.DataFrame:
+        folds.loc[0, "fold"] = 1 - folds.loc[0, "fold"]
+        return folds
+
+    edit_parquet(exp / "nested/outer_folds.parquet", edit)
+
+
+def edit_inner_choice(exp: Path) -> None:
+    """Name another winner in an outer fold's choice."""
+    edit_json(exp / "nested/o0/choice.json",
+              lambda c: c["winner"].__setitem__("candidate", c["runner_up"]["candidate"]))
+
+
+def replace_inner_model(exp: Path) -> None:
+    """Replace an outer fold's refit model."""
+    (exp / "nested/o1/model/model.skops").write_bytes(b"a different model")
+
+
+def delete_inner_card(exp: Path) -> None:
+    """Delete an outer fold's model card."""
+    (exp / "nested/o0/model/card.json").unlink()
+
+
+def edit_inner_leakage(exp: Path) -> None:
+    """Rewrite an outer fold's leakage report."""
+    edit_json(exp / "nested/o0/leakage.json", lambda r: r.__setitem__("summary", "no leakage found"))
+
+
+def forge_inner_one_se_choice(exp: Path) -> None:
+    """In outer fold 0, name the candidate the one-SE rule did not pick, and forge that scope's tally record."""
+    choice = json.loads((exp / "nested/o0/choice.json").read_text())
+    ranking = pd.read_parquet(exp / "nested/o0/ranking.parquet")
+    rows = ranking[(ranking["metric"] == choice["metric"]) & (ranking["candidate"] != choice["winner"]["candidate"])]
+    row = rows.sort_values("rank").iloc[0]
+    choice["winner"].update(candidate=row["candidate"], family=row["family"], mean=float(row["mean"]),
+                            se=float(row["se"]), se_corrected=float(row["se_corrected"]), folds=int(row["folds"]))
+    edit_json(exp / "nested/o0/choice.json", lambda c: c.update(choice))
+    forge_record(exp, "tally", scope="o0", winner=row["candidate"], choice_sha256=sha(exp / "nested/o0/choice.json"))
+
+
 # --- the table ---------------------------------------------------------------------------------------------------
 
 CASES = [
@@ -339,7 +586,7 @@ CASES = [
     pytest.param(delete_ledger, ["ledger-missing"], [], id="ledger-deleted"),
     pytest.param(append_second_seal, ["seal-count"], [], id="ledger-second-seal"),
     pytest.param(change_test_cell, ["test-changed"], [], id="test-cell-changed"),
-    pytest.param(delete_test_file, ["test-changed"], [], id="test-file-deleted"),
+    pytest.param(delete_test_file, ["test-missing"], [], id="test-file-deleted"),
     pytest.param(edit_manifest_hash, ["manifest-edited"], [], id="manifest-hash-edited"),
     pytest.param(edit_manifest_hash, ["manifest-edited"], ["dev-changed"], id="manifest-edit-not-blamed-on-dev"),
     pytest.param(overlap_dev_and_test, ["dev-test-overlap", "dev-changed"], [], id="dev-test-overlap"),
@@ -358,6 +605,48 @@ CASES = [
     pytest.param(garble_choice, ["choice-changed"], [], id="choice-garbled"),
     pytest.param(garble_folds, ["folds-changed"], [], id="folds-garbled"),
     pytest.param(strip_fit_detail, ["edited-line"], [], id="ledger-fit-detail-deleted"),
+    pytest.param(edit_leakage, ["leakage-changed"], [], id="leakage-report-edited"),
+    pytest.param(delete_folds_summary, ["folds-summary-missing"], [], id="folds-summary-deleted"),
+    pytest.param(edit_oof, ["oof-changed"], [], id="out-of-fold-predictions-edited"),
+    pytest.param(edit_card, ["card-changed"], [], id="model-card-edited"),
+    pytest.param(edit_archive, ["opening-archive-changed"], [], id="archived-verdict-edited"),
+    pytest.param(delete_archive, ["opening-archive-missing"], [], id="archived-verdict-deleted"),
+    pytest.param(invent_nested_summary, ["nested-summary-unrecorded"], [], id="nested-summary-invented"),
+    pytest.param(invent_fit_file, ["fits-unrecorded"], ["fits-changed"], id="fit-file-invented"),
+    pytest.param(rename_folder, ["folder-renamed"], [], id="folder-renamed"),
+    pytest.param(forge_record_outside, ["record-names-no-file"], [], id="ledger-record-names-outside-path"),
+    pytest.param(choice_names_runner_up, ["choice-breaks-rule", "winner-mismatch"],
+                 ["choice-changed", "choice-not-from-ranking"], id="choice-forged-with-record"),
+    pytest.param(choice_improves_winner_mean, ["choice-not-from-ranking"], ["choice-changed", "choice-breaks-rule"],
+                 id="choice-winner-mean-forged-with-record"),
+    pytest.param(choice_claims_one_se_rule, ["choice-rule-unverifiable"], ["choice-changed"],
+                 id="choice-rule-without-settings"),
+    pytest.param(choice_breaks_one_se_rule, ["choice-breaks-rule"], ["choice-changed", "choice-not-from-ranking"],
+                 id="choice-breaks-declared-one-se-rule"),
+    pytest.param(winner_spec_changed, ["winner-spec-mismatch"], ["choice-changed"], id="winner-spec-edited"),
+    pytest.param(ranking_improves_a_loser, ["ranking-disagrees-with-fits"], ["ranking-changed", "choice-breaks-rule"],
+                 id="ranking-forged-with-record"),
+    pytest.param(garbage_fit_file_with_record, ["check-failed"], ["fits-changed", "oof-changed"],
+                 id="garbage-fit-file-forged"),
+]
+
+NESTED_CASES = [
+    pytest.param(edit_nested_summary, ["nested-summary-changed"], [], id="nested-summary-edited"),
+    pytest.param(forge_nested_summary, ["nested-summary-disagrees"], ["nested-summary-changed"],
+                 id="nested-summary-forged-with-record"),
+    pytest.param(delete_nested_summary, ["nested-summary-missing"], [], id="nested-summary-deleted"),
+    pytest.param(edit_outer_score, ["nested-score-changed"], [], id="outer-score-edited"),
+    pytest.param(forge_outer_score_winner, ["nested-score-disagrees", "nested-summary-disagrees"],
+                 ["nested-score-changed"], id="outer-score-forged-with-record"),
+    pytest.param(edit_inner_fit, ["fits-changed"], [], id="inner-fit-edited"),
+    pytest.param(edit_inner_oof, ["oof-changed"], [], id="inner-oof-edited"),
+    pytest.param(edit_outer_folds, ["folds-changed"], [], id="outer-folds-edited"),
+    pytest.param(edit_inner_choice, ["choice-changed"], [], id="inner-choice-edited"),
+    pytest.param(replace_inner_model, ["model-changed"], [], id="inner-model-replaced"),
+    pytest.param(delete_inner_card, ["card-missing"], [], id="inner-card-deleted"),
+    pytest.param(edit_inner_leakage, ["leakage-changed"], [], id="inner-leakage-report-edited"),
+    pytest.param(forge_inner_one_se_choice, ["choice-breaks-rule"], ["choice-changed"],
+                 id="inner-one-se-choice-forged-with-record"),
 ]
 
 
@@ -374,17 +663,17 @@ def test_untouched_experiment_passes(bc_copy: Path) -> None:
     assert cli.stdout.startswith("PASS: experiment 'bc'") and "test set opened 1 time(s)" in cli.stdout
     from holdfast.headline import verdict_line
 
-    assert f"  {verdict_line(exp)}" in cli.stdout.splitlines()  # the numbers the passing record vouches for
+    assert f"  {verdict_line(exp, result['verified'])}" in cli.stdout.splitlines()  # what the record vouches for
 
 
 @pytest.mark.parametrize(("mutate", "expected", "absent"), CASES)
 def test_each_tampering_is_named(bc_copy: Path, mutate: Mutation, expected: list[str], absent: list[str]) -> None:
     exp = experiment(bc_copy)
     assert audit(str(exp))["passed"] is True, "the copy must pass before it is changed"
-    mutate(exp)
+    exp = mutate(exp) or exp
     result = audit(str(exp))
     found = codes(result)
-    assert result["passed"] is False
+    assert result["passed"] is False and result["state"] == "fail"
     for code in expected:
         assert code in found, (code, result["problems"])
     for code in absent:
@@ -428,3 +717,217 @@ def test_opened_twice_reports_the_recorded_reason(bc_copy: Path) -> None:
     [problem] = result["problems"]
     assert problem["code"] == "opened-more-than-once"
     assert "opened 2 times" in problem["message"] and "one more look" in problem["message"]
+
+
+@pytest.mark.parametrize(("mutate", "expected", "absent"), NESTED_CASES)
+def test_each_nested_tampering_is_named(nested_copy: Path, mutate: Mutation, expected: list[str],
+                                        absent: list[str]) -> None:
+    exp = nested_exp(nested_copy)
+    assert audit(str(exp))["passed"] is True, "the copy must pass before it is changed"
+    mutate(exp)
+    result = audit(str(exp))
+    found = codes(result)
+    assert result["passed"] is False
+    for code in expected:
+        assert code in found, (code, result["problems"])
+    for code in absent:
+        assert code not in found, (code, result["problems"])
+
+
+def _recorded_hashes(details: Any, trail: tuple[str, ...] = ()) -> list[tuple[str, ...]]:
+    """Every place in an event's details that holds a file or key hash (keys ending in _sha256, seal 'files')."""
+    found = []
+    if isinstance(details, dict):
+        for key, value in details.items():
+            here = (*trail, key)
+            if key.endswith("_sha256") or (trail == ("files",) and isinstance(value, str)):
+                found.append(here)
+            found += _recorded_hashes(value, here)
+    return found
+
+
+@pytest.mark.parametrize("which", ["bc", "nested"])
+def test_every_hash_in_a_real_ledger_is_checked_or_says_why_not(which: str, request: pytest.FixtureRequest) -> None:
+    from holdfast.recorded import NOT_FILES, RECORDED
+
+    workdir = request.getfixturevalue("bc_finished" if which == "bc" else "nested_finished")
+    exp = experiment(workdir) if which == "bc" else nested_exp(workdir)
+    checked = {(row.event, row.key) for row in RECORDED}
+    seen = set()
+    for entry in entries(exp):
+        for key in _recorded_hashes(entry["details"]):
+            seen.add((entry["event"], key))
+            assert (entry["event"], key) in checked or (entry["event"], key) in NOT_FILES, (entry["event"], key)
+    result = audit(str(exp))
+    assert result["passed"], result["problems"]
+    # Every file named by a hash was verified: the evidence files, not only the ones the headline reads.
+    on_disk = {p.relative_to(exp).as_posix() for p in exp.rglob("*") if p.is_file()}
+    unverified = on_disk - set(result["verified"])
+    assert all(name.startswith(("logs/", "plots/", "nested/o0/plots/", "nested/o1/plots/")) or name.endswith(".lock")
+               or name in ("ledger.jsonl", "audit.json", "sealed/manifest.json") for name in unverified), unverified
+
+
+@pytest.mark.parametrize(("mutate", "expected"), [
+    pytest.param(edit_verdict, "verdict-changed", id="verdict-edited"),
+    pytest.param(invent_nested_summary, "nested-summary-unrecorded", id="nested-summary-invented"),
+])
+def test_failing_audit_prints_no_numbers(bc_copy: Path, mutate: Mutation, expected: str) -> None:
+    exp = experiment(bc_copy)
+    mutate(exp)
+    cli = audit_cli(exp)
+    assert cli.returncode == 1 and f"[{expected}]" in cli.stdout, cli.stdout + cli.stderr
+    shown = [line for line in cli.stdout.splitlines() if line.startswith(("  winner ", "  nested CV"))]
+    assert shown == []
+
+
+def test_headline_reads_only_files_the_audit_verified(bc_copy: Path) -> None:
+    from holdfast.headline import UnverifiedFileError, lines, verdict_line
+
+    exp = experiment(bc_copy)
+    result = audit(str(exp))
+    assert result["passed"] and "final/verdict.json" in result["verified"]
+    assert lines(exp, result["verified"]) == [verdict_line(exp, result["verified"])]
+    without = {k: v for k, v in result["verified"].items() if k != "choice.json"}
+    with pytest.raises(UnverifiedFileError, match=r"choice\.json' was not verified by this audit"):
+        verdict_line(exp, without)
+    edit_verdict(exp)  # after the audit: the bytes it verified are gone
+    with pytest.raises(UnverifiedFileError, match=r"verdict\.json' changed after the audit verified it"):
+        lines(exp, result["verified"])
+
+
+def test_closing_lines_come_from_an_audit_made_at_the_end_of_the_run(bc_copy: Path) -> None:
+    """A verdict edited after the run, its old time kept, then a run that leaves the audit rule alone (it redoes
+    the fold assignment only): the closing lines come from an audit made then, FAIL, with no numbers."""
+    import os
+
+    from conftest import run_workflow
+
+    exp = experiment(bc_copy)
+    verdict = exp / "final/verdict.json"
+    stat = verdict.stat()
+    low, _ = json.loads(verdict.read_text())["metrics"]["accuracy"]["interval"]
+    edit_json(verdict, lambda v: v["metrics"]["accuracy"].__setitem__("test", low / 2))  # outside its own interval
+    os.utime(verdict, ns=(stat.st_atime_ns, stat.st_mtime_ns))
+    result = run_workflow(bc_copy, "results/bc/folds.parquet", "--forcerun", "assign_folds")
+    assert result.returncode == 0, result.stderr[-3000:]
+    assert "localrule audit:" not in result.stdout + result.stderr  # the stored audit.json was not redone by the rule
+    closing = [line for line in result.stdout.splitlines() if line.startswith("holdfast: ")]
+    assert closing == ["holdfast: experiment 'bc': audit FAIL: verdict-changed (test set opened 1 time(s)); "
+                       "details: holdfast audit results/bc"], result.stdout[-3000:]
+    stored = json.loads((exp / "audit.json").read_text())
+    assert stored["state"] == "fail" and codes(stored) == ["verdict-changed"]  # rewritten by that audit
+
+
+# --- a run in progress ---------------------------------------------------------------------------------------------
+
+HOLD = """
+import sys
+from holdfast import ledger
+with ledger.locked(sys.argv[1], shared=True):
+    print("holding", flush=True)
+    sys.stdin.readline()
+"""
+
+
+def test_audit_while_a_step_holds_the_experiment_says_in_progress(bc_copy: Path) -> None:
+    """Another process holds the experiment as a step does (shared lock): no false FAIL, a distinct exit code."""
+    from holdfast.cli import AUDIT_IN_PROGRESS
+    from holdfast.layout import STEPS_LOCK
+
+    exp = experiment(bc_copy)
+    (exp / "choice.json").write_text("{ half written", encoding="utf-8")  # what a step in mid-write can leave
+    holder = subprocess.Popen([sys.executable, "-c", HOLD, str(exp / STEPS_LOCK)], stdin=subprocess.PIPE,
+                              stdout=subprocess.PIPE, text=True, env={"PYTHONPATH": str(REPO / "scripts")})
+    try:
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "holding"
+        result = audit(str(exp))
+        assert result["state"] == "in progress" and result["problems"] == [] and result["passed"] is False
+        assert result["verified"] == {}
+        cli = audit_cli(exp)
+        assert cli.returncode == AUDIT_IN_PROGRESS == 75, cli.stdout + cli.stderr
+        assert cli.stdout.startswith("IN PROGRESS: experiment 'bc': a run is in progress")
+    finally:
+        holder.communicate("done\n", timeout=60)
+    assert holder.returncode == 0
+    after = audit(str(exp))
+    assert after["state"] == "fail" and "choice-changed" in codes(after)  # once free, the same files fail
+
+
+def test_audit_during_a_real_run_says_in_progress_and_the_run_ends_with_a_fresh_pass(bc_workdir: Path) -> None:
+    """Freeze a real run while one of its steps holds the experiment; audit; let it finish."""
+    import os
+    import signal
+    import time
+
+    from holdfast import ledger
+    from holdfast.layout import STEPS_LOCK
+
+    exp = experiment(bc_workdir)
+    cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(bc_workdir), "--cores", "2",
+           "--configfile", str(bc_workdir / "config.yaml")]
+    run = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, stdin=subprocess.DEVNULL,
+                           env={**os.environ, "PYTHONPATH": str(REPO / "scripts")}, start_new_session=True)
+
+    def held() -> bool:
+        if not exp.is_dir():
+            return False
+        with ledger.locked_if_free(exp / STEPS_LOCK) as free:
+            return not free
+
+    deadline = time.monotonic() + 600
+    frozen = False
+    try:
+        while not frozen:
+            assert run.poll() is None and time.monotonic() < deadline, "no step was ever seen holding the experiment"
+            if held():
+                os.killpg(run.pid, signal.SIGSTOP)
+                frozen = held()  # the step may have finished between the look and the stop
+                if not frozen:
+                    os.killpg(run.pid, signal.SIGCONT)
+            time.sleep(0.01)
+        cli = audit_cli(exp)
+    finally:
+        os.killpg(run.pid, signal.SIGCONT)
+    out, err = run.communicate(timeout=900)
+    assert cli.returncode == 75 and cli.stdout.startswith("IN PROGRESS"), cli.stdout + cli.stderr
+    assert run.returncode == 0, err[-3000:]
+    closing = [line for line in out.splitlines() if line.startswith("holdfast: ")]
+    assert closing[-1].startswith("holdfast: experiment 'bc': audit PASS (test set opened 1 time(s))"), out[-3000:]
+    assert closing[0].startswith("holdfast: winner ")
+    assert (exp / "logs/audit.log").read_text().startswith("PASS: experiment 'bc'")  # the rule's own audit
+    assert json.loads((exp / "audit.json").read_text())["state"] == "pass"
+
+
+def test_a_one_se_choice_other_than_the_best_mean_is_recognised(bc_finished: Path, tmp_path: Path) -> None:
+    """The real tally, run under the one-SE rule on the finished experiment's fits, picks a simpler candidate than
+    the best mean; the audit's reading of the rule agrees with it (and its own check then passes)."""
+    from conftest import small_classification_config
+    from holdfast.audit import _choice_against_ranking
+    from holdfast.candidates import expand
+    from holdfast.config import validate
+    from holdfast.tally import tally
+
+    exp = experiment(bc_finished)
+    candidates = {c["id"]: c for family in expand(validate(small_classification_config())).values() for c in family}
+    simplicity = {"logistic": {"param": "C", "simpler": "lower"}, "tree": {"param": "max_depth", "simpler": "lower"}}
+    fits = sorted(str(p) for p in (exp / "fits").rglob("*.parquet"))
+    oof = sorted(str(p) for p in (exp / "oof").rglob("*.parquet"))
+    choice = tally(fits, oof, str(exp / "dev.parquet"), candidates, ["accuracy", "roc_auc"],
+                   {"rule": "one_standard_error", "family_order": ["logistic", "tree"], "bootstrap": 200, "seed": 0},
+                   simplicity, "target", "classification", 3, str(tmp_path / "ranking.parquet"),
+                   str(tmp_path / "choice.json"), str(tmp_path / "ranking.png"), str(tmp_path / "ledger.jsonl"),
+                   str(exp / "folds.parquet"))
+    assert choice["winner"]["candidate"] != choice["best_mean"]["candidate"]  # the rule did pick another
+    assert choice["rule_settings"] == {"family_order": ["logistic", "tree"], "simplicity": simplicity}
+    problems: list[Any] = []
+    recorded = ledger.read(tmp_path / "ledger.jsonl")[-1]["details"]
+    _choice_against_ranking(tmp_path / "choice.json", json.loads((tmp_path / "choice.json").read_text()),
+                            pd.read_parquet(tmp_path / "ranking.parquet"), recorded, problems)
+    assert problems == []
+    # The recorded settings are what the check applies: with higher C called simpler, the rule keeps the best.
+    edit_json(tmp_path / "choice.json",
+              lambda c: c["rule_settings"]["simplicity"]["logistic"].__setitem__("simpler", "higher"))
+    _choice_against_ranking(tmp_path / "choice.json", json.loads((tmp_path / "choice.json").read_text()),
+                            pd.read_parquet(tmp_path / "ranking.parquet"), recorded, problems)
+    assert [p.code for p in problems] == ["choice-breaks-rule"]
+    assert f"picks {choice['best_mean']['candidate']}" in problems[0].message

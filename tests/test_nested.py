@@ -3,44 +3,18 @@
 from __future__ import annotations
 
 import json
-import shutil
 from pathlib import Path
 
 import pandas as pd
 import pytest
-from conftest import REPO, run_workflow, write_config
 
 pytestmark = pytest.mark.slow
 
 
 @pytest.fixture(scope="module")
-def nested_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The demo data with a small nested configuration (2 outer folds, 3 inner folds, two families)."""
-    workdir = tmp_path_factory.mktemp("nested")
-    (workdir / "data_demo").mkdir()
-    shutil.copy(REPO / "data_demo" / "shipments.csv", workdir / "data_demo" / "shipments.csv")
-    config = {
-        "experiment": "nested-demo",
-        "data": {"path": "data_demo/shipments.csv", "target": "spoiled", "id": "shipment_id", "group": "route",
-                 "time": "departed_at", "drop": ["shelf_life_days"]},
-        "metrics": ["roc_auc", "accuracy"],
-        "test": {"scheme": "stratified", "salt": "nested"},
-        "folds": {"scheme": "stratified", "k": 3, "seed": 4},
-        "nested": {"k": 2, "seed": 9},
-        "candidates": {
-            "logistic": {"estimator": "sklearn.linear_model.LogisticRegression",
-                         "preprocess": {"scale": "standard"}, "params": {"max_iter": 1000},
-                         "grid": {"C": [0.01, 1.0]}},
-            "tree": {"estimator": "sklearn.tree.DecisionTreeClassifier", "params": {"random_state": 0},
-                     "grid": {"max_depth": [3, 6]}},
-        },
-        "opening": {"bootstrap": 200},
-    }
-    write_config(workdir, config)
-    result = run_workflow(workdir)
-    assert result.returncode == 0, result.stderr[-3000:]
-    (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)  # beside the experiment, not in it
-    return workdir / "results" / "nested-demo"
+def nested_run(nested_finished: Path) -> Path:
+    """The finished nested experiment (conftest.nested_config: 2 outer folds, 3 inner folds, two families)."""
+    return nested_finished / "results" / "nested-demo"
 
 
 def test_each_outer_winner_was_chosen_without_its_validation_rows(nested_run: Path) -> None:
@@ -76,14 +50,22 @@ def test_nested_work_never_opens_the_test_set_and_the_audit_passes(nested_run: P
     entries = [json.loads(line) for line in (nested_run / "ledger.jsonl").read_text().splitlines()]
     assert sum(e["event"] == "open_test" for e in entries) == 1
     assert {e["details"]["scope"] for e in entries if e["event"] == "score_outer"} == {"o0", "o1"}
-    assert audit(str(nested_run))["passed"]
+    result = audit(str(nested_run))
+    assert result["passed"], result["problems"]
+    # Every scope's own files were checked against the ledger, not only the experiment's.
+    for name in ("nested/summary.json", "nested/outer_folds.parquet", "nested/outer_leakage.json",
+                 "nested/o0/score.json", "nested/o1/choice.json", "nested/o1/ranking.parquet",
+                 "nested/o0/model/model.skops", "nested/o0/model/card.json", "nested/o1/folds_summary.parquet",
+                 "nested/o0/fits/tree/r0f2.parquet", "nested/o1/oof/logistic/r0f0.parquet"):
+        assert name in result["verified"], name
 
 
 def test_the_run_ends_with_the_nested_estimate(nested_run: Path) -> None:
+    from holdfast.audit import audit
     from holdfast.headline import nested_line as headline
 
     summary = json.loads((nested_run / "nested" / "summary.json").read_text())
-    line = headline(nested_run)
+    line = headline(nested_run, audit(str(nested_run))["verified"])
     assert f"roc_auc: {summary['metrics']['roc_auc']['mean']:.4f}" in line  # the primary metric, first in config
     assert all(f"{candidate} ×{count}" in line for candidate, count in summary["winner_counts"].items())
     workdir = nested_run.parents[1]

@@ -93,12 +93,13 @@ def test_finished_run_reports_uncertainty_comparison_and_optimism(bc_finished: P
 
 @pytest.mark.slow
 def test_a_finished_run_ends_with_the_headline_numbers(bc_finished: Path) -> None:
+    from holdfast.audit import audit
     from holdfast.headline import verdict_line as headline
 
     exp = bc_finished / "results" / "bc"
     verdict = json.loads((exp / "final/verdict.json").read_text())
     block = verdict["metrics"]["accuracy"]
-    line = headline(exp)
+    line = headline(exp, audit(str(exp))["verified"])
     low, high = block["interval"]
     for part in (verdict["winner"]["candidate"], f"CV {block['cv_mean']:.4f}", f"BBC {block['cv_corrected_bbc']:.4f}",
                  f"T&T {block['cv_corrected_tibshirani']:.4f}", f"test {block['test']:.4f}",
@@ -106,4 +107,4 @@ def test_a_finished_run_ends_with_the_headline_numbers(bc_finished: Path) -> Non
         assert part in line
     stdout = (bc_finished.parent / f"{bc_finished.name}.stdout").read_text()
     assert f"holdfast: {line}" in stdout.splitlines()
-    assert headline(bc_finished / "results" / "no-such-experiment") == ""
+    assert headline(bc_finished / "results" / "no-such-experiment", {}) == ""

@@ -21,6 +21,9 @@ SNAKEFILE = REPO / "Snakefile"
 OWN_OPTIONS = ("--configfile", "--configfiles", "--config", "-C", "--snakefile", "-s", "--directory", "-d")
 CORE_OPTIONS = ("--cores", "-c", "--jobs", "-j", "--executor", "-e", "--profile", "--workflow-profile")
 DRY_RUN = ("-n", "--dry-run", "--dryrun")
+# Exit codes of `holdfast audit` (the errors' own codes, 1 to 7, are those of errors.py).
+AUDIT_PASS, AUDIT_FAIL, NOT_AN_EXPERIMENT = 0, 1, 2
+AUDIT_IN_PROGRESS = 75  # a step is writing to the experiment: nothing was checked; try again later
 WORKER_ENV = "HOLDFAST_WORKER"
 
 
@@ -35,11 +38,19 @@ def _experiment_dir(value: str) -> Path:
                           "results/<experiment>")
     return exp
 
+# Exit codes of `holdfast audit` (the errors' own codes, 1 to 7, are those of errors.py).
+AUDIT_PASS, AUDIT_FAIL, NOT_AN_EXPERIMENT = 0, 1, 2
+AUDIT_IN_PROGRESS = 75  # a step is writing to the experiment: nothing was checked; try again later
+
 
 def _audit(args: argparse.Namespace) -> int:
-    from .audit import audit, report
+    from .audit import IN_PROGRESS, audit, report
 
-    exp = _experiment_dir(args.experiment_dir)
+    exp = Path(args.experiment_dir)
+    if not (exp / "ledger.jsonl").exists() and not (exp / "sealed").exists():
+        sys.stderr.write(f"holdfast: error: '{exp}' is not an experiment directory (no ledger.jsonl, no sealed/); "
+                         "pass results/<experiment>\n")
+        return NOT_AN_EXPERIMENT
     expect = _expected_head(args)
     key = None
     if args.public_key:
@@ -48,12 +59,20 @@ def _audit(args: argparse.Namespace) -> int:
         key = read_public_key(args.public_key)
     result = audit(str(exp), expect_head=expect, public_key=key)
     print(report(result))
-    if result["passed"]:  # what the passing record vouches for; a failing one vouches for nothing
-        from .headline import lines
+    if result["state"] == IN_PROGRESS:
+        return AUDIT_IN_PROGRESS
+    if not result["passed"]:
+        return AUDIT_FAIL  # a failing record vouches for nothing: no numbers
+    from .headline import UnverifiedFileError, lines
 
-        for line in lines(exp):
-            print(f"  {line}")
-    return 0 if result["passed"] else 1
+    try:
+        shown = lines(exp, result["verified"])  # only from files this audit verified
+    except UnverifiedFileError as exc:
+        print(f"  numbers withheld: {exc}")
+        return AUDIT_FAIL
+    for line in shown:
+        print(f"  {line}")
+    return AUDIT_PASS
 
 
 def _expected_head(args: argparse.Namespace) -> tuple[int, str] | None:
@@ -334,7 +353,8 @@ def build_parser() -> argparse.ArgumentParser:
     p_open.add_argument("--trust-module", action="append", default=[], metavar="MODULE", help=argparse.SUPPRESS)
     p_open.add_argument("--show-snakemake", action="store_true", help="show Snakemake's job output on the screen")
     p_open.set_defaults(func=_open, takes_extra=True)
-    p_audit = sub.add_parser("audit", help="check an experiment's ledger and files; exit 0 on pass, 1 on fail")
+    p_audit = sub.add_parser("audit", help="check an experiment's ledger and files; exit 0 on pass, 1 on fail, "
+                             f"{AUDIT_IN_PROGRESS} while a run is in progress (nothing checked)")
     p_audit.add_argument("experiment_dir", help="results/<experiment>")
     p_audit.add_argument("--expect-head", metavar="SEQ:HASH", help="fail unless this ledger entry (from a receipt) "
                          "is still in the ledger, unchanged, at that position")

@@ -41,76 +41,50 @@ def write_receipt(result: dict[str, Any], exp: Path) -> Path:
     return path
 
 
-def finish(exp_dir: str | Path, in_progress_ok: bool = False) -> tuple[dict[str, Any], list[str]]:
-    """Audit now, write audit.json and the receipt, and return the result with the closing lines."""
-    from .audit import audit
+def finish(exp_dir: str | Path) -> tuple[dict[str, Any], list[str]]:
+    """Audit now, write audit.json and the receipt, and return the result with the closing lines.
+
+    While another run is writing (the audit says 'in progress'), nothing is written and the lines say so.
+    """
+    from .audit import IN_PROGRESS, audit
 
     exp = Path(exp_dir)
+    if not (exp / "ledger.jsonl").exists():
+        return {"state": "none", "passed": False, "problems": []}, []  # nothing was sealed: nothing to audit
     result = audit(str(exp))
+    if result["state"] == IN_PROGRESS:
+        return result, [f"experiment '{result['experiment']}': audit not made: a run is in progress (another step is "
+                        f"writing to it); holdfast audit {exp} when it has finished"]
     write_json(exp / AUDIT, result)
     receipt = write_receipt(result, exp)
     return result, closing_lines(exp, result, receipt)
 
 
 def closing_lines(exp: Path, result: dict[str, Any], receipt: Path) -> list[str]:
-    """What a person reads at the end of a run: the choice, the verdict or 'sealed, not opened', the audit."""
-    from .headline import lines as headline
+    """What a person reads at the end of a run, every number from a file this audit verified: the ranking's top
+    and the choice (or the verdict), 'sealed, not opened' until the opening, the audit and the ledger head."""
+    from .headline import UnverifiedFileError, choice_line, lines, ranking_lines
 
     out: list[str] = []
     name = result["experiment"]
+    codes = dict.fromkeys(p["code"] for p in result["problems"])  # each code once, in the order found
+    state = "PASS" if result["passed"] else "FAIL: " + "; ".join(codes)
+    opened = (exp / VERDICT).exists()
     if result["passed"]:
-        opened = (exp / VERDICT).exists()
-        if not opened and (exp / CHOICE).exists():
-            out += ranking_lines(exp) + choice_lines(exp)
-        out += headline(exp)
+        try:
+            if not opened and (exp / CHOICE).exists():
+                out += [*ranking_lines(exp, result["verified"]), choice_line(exp, result["verified"])]
+            out += lines(exp, result["verified"])
+        except UnverifiedFileError as exc:
+            state = f"PASS, but numbers withheld: {exc}"
         if not opened and (exp / CHOICE).exists():
             out.append(f"test set sealed, not opened: open it once, when you have decided, with "
                        f"'holdfast open {exp}'")
-    state = "PASS" if result["passed"] else "FAIL: " + "; ".join(p["code"] for p in result["problems"])
     out.append(f"experiment '{name}': audit {state} (test set opened {result.get('test_set_opened', 0)} time(s)); "
                f"details: holdfast audit {exp}")
     out.append(f"ledger head {result.get('ledger_head_seq')}:{str(result.get('ledger_head'))[:16]}… written to "
                f"{receipt}: keep it where the experiment's owner cannot write (a review, a commit)")
     return out
-
-
-CORRECTION_LABELS = (("bbc", "BBC-CV"), ("tibshirani", "Tibshirani–Tibshirani"))
-
-
-def ranking_lines(exp: Path, top: int = 5) -> list[str]:
-    """The top of the ranking on the primary metric: rank, candidate, mean and corrected standard error."""
-    import pyarrow.parquet as pq
-
-    choice = read_json(exp / CHOICE)
-    metric = choice["metric"]
-    rows = [r for r in pq.read_table(exp / "ranking.parquet", columns=[
-        "candidate", "family", "params", "metric", "mean", "se_corrected", "rank", "complete"]).to_pylist()
-        if r["metric"] == metric]
-    rows.sort(key=lambda r: r["rank"])
-    out = [f"ranking by {metric} (greater is better), top {min(top, len(rows))} of {len(rows)}:"]
-    for r in rows[:top]:
-        mark = "  <- winner" if r["candidate"] == choice["winner"]["candidate"] else ""
-        out.append(f"  {r['rank']:>3}. {r['family']} {r['candidate']} {r['params']}: {r['mean']:.4f} "
-                   f"(corrected se {r['se_corrected']:.4f}){mark}")
-    return out
-
-
-def choice_lines(exp: Path) -> list[str]:
-    """The choice in one line: winner, rule, raw and corrected CV estimates, rounds and candidates tried."""
-    choice = read_json(exp / CHOICE)
-    winner, metric = choice["winner"], choice["metric"]
-    optimism = choice.get("optimism") or {}
-    corrected = [f"{label} {optimism[key]['corrected']:.4f}" for key, label in CORRECTION_LABELS
-                 if (optimism.get(key) or {}).get("corrected") is not None]
-    rounds = (choice.get("rounds") or {}).get("text", "")
-    return [f"winner {winner['family']} {winner['candidate']} by {choice['rule']}: CV {metric} {winner['mean']:.4f}"
-            + (f" (corrected for selection: {', '.join(corrected)})" if corrected else "")
-            + (f"; {rounds}" if rounds else "")]
-
-
-def verdict_hash(exp: Path) -> str | None:
-    """sha256 of the verdict, when there is one."""
-    return sha256_file(exp / VERDICT) if (exp / VERDICT).exists() else None
 
 
 def read_audit(exp: Path) -> dict[str, Any] | None:

@@ -26,6 +26,9 @@ RECEIPT = "receipt.txt"
 LEDGER = "ledger.jsonl"
 AUDIT = "audit.json"
 NESTED_SUMMARY = "nested/summary.json"
+# Every step holds this lock shared while it runs; the audit takes it exclusively (ledger.locked_if_free),
+# so an audit never reads files a step is writing. ledger.locked adds the ".lock" suffix.
+STEPS_LOCK = "steps"
 
 
 def fit_file(kind: str, family: str, repeat: int, fold: int) -> str:

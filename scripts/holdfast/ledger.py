@@ -63,16 +63,48 @@ def _signer(ledger: Path) -> Any | None:
 
 
 @contextmanager
-def locked(path: str | os.PathLike[str]) -> Iterator[None]:
-    """Hold an exclusive advisory lock on ``<path>.lock`` for the block."""
+def locked(path: str | os.PathLike[str], shared: bool = False) -> Iterator[None]:
+    """Hold an advisory lock on ``<path>.lock`` for the block: exclusive, or shared with other shared holders."""
     lock_path = Path(str(path) + ".lock")
     lock_path.parent.mkdir(parents=True, exist_ok=True)
     fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644)
     try:
-        fcntl.flock(fd, fcntl.LOCK_EX)
+        fcntl.flock(fd, fcntl.LOCK_SH if shared else fcntl.LOCK_EX)
         yield
     finally:
         fcntl.flock(fd, fcntl.LOCK_UN)
+        os.close(fd)
+
+
+@contextmanager
+def locked_if_free(path: str | os.PathLike[str]) -> Iterator[bool]:
+    """Try the exclusive lock on ``<path>.lock`` without waiting; yield whether it is held for the block.
+
+    Yields False while anyone else holds the lock, shared or exclusive. A lock file that does not exist
+    and cannot be made (a read-only copy) means no holder ever used it, so that counts as free.
+    """
+    lock_path = Path(str(path) + ".lock")
+    try:
+        fd = os.open(lock_path, os.O_RDWR | os.O_CREAT, 0o644) if lock_path.parent.is_dir() else -1
+    except OSError:
+        try:
+            fd = os.open(lock_path, os.O_RDONLY)  # flock works on a read-only descriptor
+        except OSError:
+            fd = -1
+    if fd < 0:
+        yield True
+        return
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            yield False
+            return
+        try:
+            yield True
+        finally:
+            fcntl.flock(fd, fcntl.LOCK_UN)
+    finally:
         os.close(fd)
 
 

@@ -187,11 +187,27 @@ STEPS.update({f"nested_{name}": STEPS[name] for name in ("assign_folds", "fit_fa
 STEPS["assign_outer_folds"] = assign_folds
 
 
+# Steps that do not hold the experiment while they run: the audit takes the same lock exclusively itself.
+UNLOCKED = {"audit"}
+
+
 def run(smk: Any) -> None:
-    """Run the step named by the rule, logging to its log file."""
+    """Run the step named by the rule, logging to its log file.
+
+    Every step but the audit holds the experiment's steps lock shared for its whole run, so an audit
+    started meanwhile says "a run is in progress" instead of reading half-written files.
+    """
     stderr = _redirect_log(smk.log[0])
     try:
-        STEPS[smk.rule](smk)
+        if smk.rule in UNLOCKED:
+            STEPS[smk.rule](smk)
+        else:
+            from . import ledger
+            from .config import experiment_dir
+            from .layout import STEPS_LOCK
+
+            with ledger.locked(experiment_dir(smk.config) / STEPS_LOCK, shared=True):
+                STEPS[smk.rule](smk)
     except HoldfastError as exc:
         print(exc.format_message(), flush=True)
         os.write(stderr, (exc.format_message() + "\n").encode())

@@ -350,6 +350,8 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     ][:10]
     choice: dict[str, Any] = {
         "rule": rule,
+        # What the rule needs besides the ranking, so the audit can re-apply it to ranking.parquet.
+        "rule_settings": {"family_order": list(selection.get("family_order") or []), "simplicity": simplicity},
         "metric": primary,
         "winner": {"candidate": winner["candidate"], "family": winner["family"], "mean": winner["mean"],
                    "se": winner["se"], "se_corrected": winner["se_corrected"], "folds": int(winner["folds"]),

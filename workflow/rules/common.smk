@@ -90,7 +90,8 @@ def verdict_to_restore():
 
 onsuccess:
     # Closing lines from an audit made now (never a stale audit.json), the receipt with the ledger head, and the
-    # headline numbers only when the audit passed. `holdfast run` and `holdfast open` do this themselves.
+    # headline numbers only when the audit passed, from the files it verified. No step runs any more here, so the
+    # audit's exclusive lock does not wait on this run. `holdfast run` and `holdfast open` do this themselves.
     if not os.environ.get("HOLDFAST_CLOSING_BY_CLI"):
         from holdfast.closing import finish
 
