@@ -500,6 +500,26 @@ def _result(exp: Path, state: str, entries: list[dict[str, Any]], problems: list
     }
 
 
+def _check_history(exp: Path, entries: list[dict[str, Any]], verified: dict[str, str], out: list[Problem]) -> None:
+    """Every file the (verified) history index lists is the one it recorded: the optimism counts on them."""
+    name = "history/index.json"
+    if name not in verified:
+        return
+    index = read_json(exp / name)
+    for cid, entry in sorted(index.get("candidates", {}).items()):
+        for kind in ("fits", "oof"):
+            if kind not in entry:
+                continue
+            path = exp / entry[kind]
+            actual = _sha(path)
+            if actual != entry.get(f"{kind}_sha256"):
+                state = "missing" if actual is None else "changed"
+                out.append(Problem(f"history-{state}", f"'{path}' ({kind} of candidate {cid}, kept for the optimism "
+                                   f"estimates of later rounds) is {state} since the tally recorded it"))
+            else:
+                verified[entry[kind]] = actual
+
+
 def _guarded(name: str, check: Any, exp: Path, entries: list[dict[str, Any]], verified: dict[str, str],
              out: list[Problem]) -> None:
     """Run a check of what verified files say; content no holdfast step writes is a problem, not a crash."""
@@ -522,6 +542,7 @@ def _audit_now(exp: Path, expect_head: tuple[int, str] | None, public_key: str |
         _check_folds(exp, entries, dev_keys, test_keys, problems)
         _guarded("ranking and choice", _check_rankings, exp, entries, verified, problems)
         _guarded("nested summary", _check_nested_summary, exp, entries, verified, problems)
+        _guarded("history", _check_history, exp, entries, verified, problems)
         model_sha = _check_choice(exp, entries, problems)
         openings = _check_openings(exp, entries, model_sha, problems)
     extra = {"signed_with": signed_with,

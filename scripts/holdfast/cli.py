@@ -149,7 +149,11 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
            "PYTHONPATH": os.pathsep.join(filter(None, [str(REPO / "scripts"), os.environ.get("PYTHONPATH")]))}
     with _warm_worker(extra, env):
         if show:
-            return subprocess.run(cmd, env=env, stdin=subprocess.DEVNULL).returncode
+            from . import ledger
+            from .layout import STEPS_LOCK
+
+            with ledger.locked(exp / STEPS_LOCK, shared=True):
+                return subprocess.run(cmd, env=env, stdin=subprocess.DEVNULL).returncode
         return _logged(cmd, env, exp, label)
 
 
@@ -192,9 +196,13 @@ def _logged(cmd: list[str], env: dict[str, str], exp: Path, label: str) -> int:
     log = exp / "logs" / f"{label}-{stamp}.log"
     log.parent.mkdir(parents=True, exist_ok=True)
     _say(f"Snakemake's own output goes to {log}")
+    from . import ledger
+    from .layout import STEPS_LOCK
     from .progress import follow
 
-    with open(log, "w", encoding="utf-8") as handle:
+    # The run holds the experiment's steps lock shared from start to end, so an audit made meanwhile says "in
+    # progress" even in the instant between Snakemake deleting a job's old outputs and the job taking the lock.
+    with open(log, "w", encoding="utf-8") as handle, ledger.locked(exp / STEPS_LOCK, shared=True):
         process = subprocess.Popen(cmd, env=env, stdin=subprocess.DEVNULL, stdout=handle, stderr=subprocess.STDOUT)
         follow(exp, process, _say)
     if process.returncode:
