@@ -60,6 +60,8 @@ RECORDED: tuple[Recorded, ...] = (
              "write-ahead marker of that opening", scanned=False),
     Recorded("opening_started", ("test_sha256",), "sealed/test.parquet", "test", "sealed test file", fixed=True),
     Recorded("round", ("round_sha256",), "rounds/{round}.json", "round", "selection round's set-up"),
+    Recorded("round", ("round_sha256",), "rounds/current.json", "round", "current selection round (a copy of the "
+             "latest rounds/<N>.json)", scanned=False),
     Recorded("tally", ("history_index_sha256",), "history/index.json", "history-index",
              "index of every candidate tallied in any round"),
     Recorded("score_outer", ("score_sha256",), "{scope}score.json", "nested-score", "outer fold's score"),
