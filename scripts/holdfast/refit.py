@@ -26,7 +26,7 @@ from .dataset import KEY, split_xy
 from .errors import ModelFileError
 from .fit import limit_threads
 
-PACKAGES = ("holdfast", "scikit-learn", "numpy", "scipy", "pandas", "pyarrow", "skops", "snakemake")
+PACKAGES = ("holdfast-selection", "scikit-learn", "numpy", "scipy", "pandas", "pyarrow", "skops", "snakemake")
 
 # What a model file may hold.
 #
@@ -286,7 +286,7 @@ def package_versions() -> dict[str, str]:
         try:
             out[name] = version(name)
         except PackageNotFoundError:
-            out[name] = __version__ if name == "holdfast" else "not installed"
+            out[name] = __version__ if name == "holdfast-selection" else "not installed"
     return out
 
 
