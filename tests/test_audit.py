@@ -360,7 +360,7 @@ def edit_oof(exp: Path) -> None:
 
 def edit_card(exp: Path) -> None:
     """Change the model card's recorded training rows."""
-    edit_json(exp / "model/card.json", lambda c: c["trained_on"].__setitem__("rows", 10_000))
+    edit_json(exp / "model/provenance.json", lambda c: c["trained_on"].__setitem__("rows", 10_000))
 
 
 def edit_archive(exp: Path) -> None:
@@ -548,7 +548,7 @@ def replace_inner_model(exp: Path) -> None:
 
 def delete_inner_card(exp: Path) -> None:
     """Delete an outer fold's model card."""
-    (exp / "nested/o0/model/card.json").unlink()
+    (exp / "nested/o0/model/provenance.json").unlink()
 
 
 def edit_inner_leakage(exp: Path) -> None:
@@ -608,7 +608,7 @@ CASES = [
     pytest.param(edit_leakage, ["leakage-changed"], [], id="leakage-report-edited"),
     pytest.param(delete_folds_summary, ["folds-summary-missing"], [], id="folds-summary-deleted"),
     pytest.param(edit_oof, ["oof-changed"], [], id="out-of-fold-predictions-edited"),
-    pytest.param(edit_card, ["card-changed"], [], id="model-card-edited"),
+    pytest.param(edit_card, ["provenance-changed"], [], id="model-provenance-edited"),
     pytest.param(edit_archive, ["opening-archive-changed"], [], id="archived-verdict-edited"),
     pytest.param(delete_archive, ["opening-archive-missing"], [], id="archived-verdict-deleted"),
     pytest.param(invent_nested_summary, ["nested-summary-unrecorded"], [], id="nested-summary-invented"),
@@ -643,7 +643,7 @@ NESTED_CASES = [
     pytest.param(edit_outer_folds, ["folds-changed"], [], id="outer-folds-edited"),
     pytest.param(edit_inner_choice, ["choice-changed"], [], id="inner-choice-edited"),
     pytest.param(replace_inner_model, ["model-changed"], [], id="inner-model-replaced"),
-    pytest.param(delete_inner_card, ["card-missing"], [], id="inner-card-deleted"),
+    pytest.param(delete_inner_card, ["provenance-missing"], [], id="inner-provenance-deleted"),
     pytest.param(edit_inner_leakage, ["leakage-changed"], [], id="inner-leakage-report-edited"),
     pytest.param(forge_inner_one_se_choice, ["choice-breaks-rule"], ["choice-changed"],
                  id="inner-one-se-choice-forged-with-record"),

@@ -37,7 +37,7 @@ RUN_TIMEOUT = 900  # ~2.5 min measured on 2 cores
 UNSUPPORTED = 2  # start_cluster.sh's exit status when this machine cannot run a cluster
 DESIGN_FILES = [
     "sealed/manifest.json", "sealed/test.parquet", "dev.parquet", "folds.parquet", "ranking.parquet",
-    "choice.json", "plots/ranking.png", "model/model.skops", "model/card.json", "final/verdict.json",
+    "choice.json", "plots/ranking.png", "model/model.skops", "model/provenance.json", "final/verdict.json",
     "ledger.jsonl", "audit.json",
 ]
 

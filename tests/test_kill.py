@@ -92,7 +92,7 @@ JOBS: dict[str, list[Job]] = {
     "fit_family": [fit_job(family, fold) for fold in FOLDS for family in FAMILIES],
     "record_round": [Job("record_round", ("rounds/current.json",), "logs/record_round.log", "round")],
     "tally": [Job("tally", ("ranking.parquet", "choice.json", "plots/ranking.png"), "logs/tally.log", "tally")],
-    "refit_winner": [Job("refit_winner", ("model/model.skops", "model/card.json"), "logs/refit_winner.log",
+    "refit_winner": [Job("refit_winner", ("model/model.skops", "model/provenance.json"), "logs/refit_winner.log",
                          "refit")],
 }
 # The opening is not part of a run; a killed opening counts as an opening (tests/test_loop.py kills one).
@@ -104,7 +104,7 @@ DONE = {
     "fit_family": [out for job in JOBS["fit_family"] for out in job.outputs],
     "record_round": ["rounds/current.json"],
     "tally": ["choice.json"],
-    "refit_winner": ["model/card.json"],
+    "refit_winner": ["model/provenance.json"],
 }
 
 

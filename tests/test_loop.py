@@ -197,8 +197,8 @@ def opened(work: Path) -> Path:
     return work
 
 
-KEPT = ("model/model.skops", "model/card.json", "final/verdict.json", "sealed/manifest.json", "sealed/test.parquet",
-        "dev.parquet", "choice.json", "ranking.parquet", "folds.parquet", "ledger.jsonl")
+KEPT = ("model/model.skops", "model/provenance.json", "final/verdict.json", "sealed/manifest.json",
+        "sealed/test.parquet", "dev.parquet", "choice.json", "ranking.parquet", "folds.parquet", "ledger.jsonl")
 
 
 @pytest.mark.parametrize("flags", [["--forceall"], ["--delete-all-output"], ["--touch"], ["-R", "tally"]])

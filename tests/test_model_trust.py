@@ -424,7 +424,7 @@ def test_the_workflow_records_the_exact_types_and_the_opening_trusts_only_them(b
     from holdfast.opening import open_test
 
     exp = bc_finished / "results" / "bc"
-    card = json.loads((exp / "model/card.json").read_text())
+    card = json.loads((exp / "model/provenance.json").read_text())
     entries = ledger.read(exp / "ledger.jsonl")
     refit = ledger.events(entries, "refit")[-1]
     types = refit["details"]["model_types"]

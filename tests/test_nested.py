@@ -30,7 +30,7 @@ def test_each_outer_winner_was_chosen_without_its_validation_rows(nested_run: Pa
         assert not set(oof["row_key"]) & held_out  # no held-out row was even predicted inside the selection
         fits = pd.concat(pd.read_parquet(p) for p in (nested_run / f"nested/o{fold}/fits").rglob("*.parquet"))
         assert set(fits["n_train"] + fits["n_val"]) == {len(inner) // 1}
-        card = json.loads((nested_run / f"nested/o{fold}/model/card.json").read_text())
+        card = json.loads((nested_run / f"nested/o{fold}/model/provenance.json").read_text())
         assert card["trained_on"]["rows"] == len(held_out.symmetric_difference(set(dev["row_key"])))
         score = json.loads((nested_run / f"nested/o{fold}/score.json").read_text())
         assert score["rows"] == len(held_out) and score["training_rows"] == len(inner)
@@ -55,7 +55,7 @@ def test_nested_work_never_opens_the_test_set_and_the_audit_passes(nested_run: P
     # Every scope's own files were checked against the ledger, not only the experiment's.
     for name in ("nested/summary.json", "nested/outer_folds.parquet", "nested/outer_leakage.json",
                  "nested/o0/score.json", "nested/o1/choice.json", "nested/o1/ranking.parquet",
-                 "nested/o0/model/model.skops", "nested/o0/model/card.json", "nested/o1/folds_summary.parquet",
+                 "nested/o0/model/model.skops", "nested/o0/model/provenance.json", "nested/o1/folds_summary.parquet",
                  "nested/o0/fits/tree/r0f2.parquet", "nested/o1/oof/logistic/r0f0.parquet"):
         assert name in result["verified"], name
 

@@ -54,7 +54,7 @@ def test_every_appended_hash_names_a_checked_file_or_says_why_not() -> None:
     ({"scope": "outer"}, "assign_folds", "leakage_sha256", "nested/outer_leakage.json"),
     ({"scope": "o1"}, "assign_folds", "summary_sha256", "nested/o1/folds_summary.parquet"),
     ({"scope": "o1"}, "refit", "dev_sha256", "dev.parquet"),
-    ({"scope": "o0"}, "refit", "card_sha256", "nested/o0/model/card.json"),
+    ({"scope": "o0"}, "refit", "provenance_sha256", "nested/o0/model/provenance.json"),
     ({"scope": "o0"}, "score_outer", "score_sha256", "nested/o0/score.json"),
     ({"scope": "nested"}, "nested_summary", "summary_sha256", "nested/summary.json"),
     ({}, "open_test", "test_sha256", "sealed/test.parquet"),

@@ -22,7 +22,7 @@ from conftest import (
 
 DESIGN_FILES = [
     "sealed/manifest.json", "sealed/test.parquet", "dev.parquet", "folds.parquet", "ranking.parquet",
-    "choice.json", "model/model.skops", "model/card.json", "final/verdict.json", "ledger.jsonl", "audit.json",
+    "choice.json", "model/model.skops", "model/provenance.json", "final/verdict.json", "ledger.jsonl", "audit.json",
 ]
 
 pytestmark = pytest.mark.slow

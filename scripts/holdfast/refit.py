@@ -339,10 +339,10 @@ def _write_bytes(path: str, data: bytes) -> None:
 
 
 def refit_winner(choice_path: str, dev_path: str, spec: dict[str, Any], threads: int, allowed: list[str],
-                 model_path: str, card_path: str, ledger_path: str, rule: str | None = None,
+                 model_path: str, provenance_path: str, ledger_path: str, rule: str | None = None,
                  folds_path: str | None = None, scope: str = "main") -> dict[str, Any]:
     """Fit the chosen candidate on all development rows (nested: the rows of ``folds_path``);
-    write model.skops and card.json."""
+    write model.skops and provenance.json (where the model came from: spec, data, files, versions)."""
     import skops.io as sio
 
     limit_threads(threads)
@@ -374,12 +374,12 @@ def refit_winner(choice_path: str, dev_path: str, spec: dict[str, Any], threads:
         "versions": package_versions(),
         "caution": choice["caution"],
     }
-    write_json(card_path, card)
+    write_json(provenance_path, card)
     ledger.append(ledger_path, "refit", {
         "scope": scope, "winner": candidate["id"], "family": candidate["family"], "rows": len(dev),
         "dev_sha256": card["trained_on"]["dev_sha256"], "model_sha256": card["model_file"]["sha256"],
         "model_types": types,
-        "card_sha256": sha256_file(card_path), "choice_sha256": sha256_file(choice_path),
+        "provenance_sha256": sha256_file(provenance_path), "choice_sha256": sha256_file(choice_path),
         "random_state": card["estimator_params"].get("random_state"),
     }, rule=rule)
     return card

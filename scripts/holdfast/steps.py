@@ -132,7 +132,7 @@ def refit_winner(smk: Any) -> None:
     from .refit import refit_winner as run_refit
 
     card = run_refit(smk.input.choice, smk.input.dev, json.loads(smk.params.spec), int(smk.threads),
-                     json.loads(smk.params.allowed), smk.output.model, smk.output.card, smk.params.ledger,
+                     json.loads(smk.params.allowed), smk.output.model, smk.output.provenance, smk.params.ledger,
                      rule=smk.rule, folds_path=getattr(smk.input, "folds", None), scope=_scope(smk))
     print(f"refit {card['candidate']['id']} on {card['trained_on']['rows']} rows")
 

@@ -76,7 +76,7 @@ def all_targets():
         PLAN.path("ranking.parquet"),
         PLAN.path("choice.json"),
         PLAN.path("model/model.skops"),
-        PLAN.path("model/card.json"),
+        PLAN.path("model/provenance.json"),
     ]
     if PLAN.config["nested"]["k"]:
         targets.append(PLAN.path("nested/summary.json"))

@@ -63,7 +63,7 @@ use rule refit_winner as nested_refit_winner with:
         folds=PLAN.path("nested/o{outer}/folds.parquet"),
     output:
         model=PLAN.path("nested/o{outer}/model/model.skops"),
-        card=PLAN.path("nested/o{outer}/model/card.json"),
+        provenance=PLAN.path("nested/o{outer}/model/provenance.json"),
     log:
         PLAN.path("logs/nested/o{outer}/refit_winner.log"),
 

@@ -4,7 +4,7 @@ rule open_test:
     input:
         request=PLAN.path("final/request.json"),
         model=PLAN.path("model/model.skops"),
-        card=PLAN.path("model/card.json"),
+        provenance=PLAN.path("model/provenance.json"),
         choice=PLAN.path("choice.json"),
         ranking=PLAN.path("ranking.parquet"),
     output:

@@ -5,7 +5,7 @@ rule refit_winner:
         dev=PLAN.path("dev.parquet"),
     output:
         model=PLAN.path("model/model.skops"),
-        card=PLAN.path("model/card.json"),
+        provenance=PLAN.path("model/provenance.json"),
     log:
         PLAN.path("logs/refit_winner.log"),
     params:
