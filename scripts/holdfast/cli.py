@@ -63,10 +63,11 @@ def _audit(args: argparse.Namespace) -> int:
         return AUDIT_IN_PROGRESS
     if not result["passed"]:
         return AUDIT_FAIL  # a failing record vouches for nothing: no numbers
+    from .closing import target_unit_of
     from .headline import UnverifiedFileError, lines
 
     try:
-        shown = lines(exp, result["verified"])  # only from files this audit verified
+        shown = lines(exp, result["verified"], target_unit_of(exp))  # only from files this audit verified
     except UnverifiedFileError as exc:
         print(f"  numbers withheld: {exc}")
         return AUDIT_FAIL
@@ -224,11 +225,11 @@ def _show_failure(log: Path) -> None:
 REOPENING_STATES = ("opened-more-than-once", "opened-other-model")
 
 
-def _finish(exp: Path) -> int:
+def _finish(exp: Path, target_unit: str | None = None) -> int:
     """Audit now and print the closing lines; exit 1 for any problem beyond :data:`REOPENING_STATES`."""
     from .closing import finish
 
-    result, lines = finish(exp)
+    result, lines = finish(exp, target_unit)
     for line in lines:
         _say(line)
     return 1 if any(p["code"] not in REOPENING_STATES for p in result["problems"]) else 0
@@ -269,7 +270,7 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
     code = _snakemake(config_copy, extra, plan.exp, args.show_snakemake or dry, "run")
     if code or dry:
         return code
-    return _finish(plan.exp)
+    return _finish(plan.exp, plan.config["data"].get("unit"))
 
 
 def _open(args: argparse.Namespace, extra: list[str]) -> int:
@@ -335,7 +336,7 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
                       targets=(target,))
     if code:
         return code
-    return _finish(exp)
+    return _finish(exp, plan.config["data"].get("unit"))
 
 
 def build_parser() -> argparse.ArgumentParser:

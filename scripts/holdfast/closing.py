@@ -41,7 +41,7 @@ def write_receipt(result: dict[str, Any], exp: Path) -> Path:
     return path
 
 
-def finish(exp_dir: str | Path) -> tuple[dict[str, Any], list[str]]:
+def finish(exp_dir: str | Path, target_unit: str | None = None) -> tuple[dict[str, Any], list[str]]:
     """Audit now, write audit.json and the receipt, and return the result with the closing lines.
 
     While another run is writing (the audit says 'in progress'), nothing is written and the lines say so.
@@ -57,10 +57,10 @@ def finish(exp_dir: str | Path) -> tuple[dict[str, Any], list[str]]:
                         f"writing to it); holdfast audit {exp} when it has finished"]
     write_json(exp / AUDIT, result)
     receipt = write_receipt(result, exp)
-    return result, closing_lines(exp, result, receipt)
+    return result, closing_lines(exp, result, receipt, target_unit)
 
 
-def closing_lines(exp: Path, result: dict[str, Any], receipt: Path) -> list[str]:
+def closing_lines(exp: Path, result: dict[str, Any], receipt: Path, target_unit: str | None = None) -> list[str]:
     """What a person reads at the end of a run, every number from a file this audit verified: the ranking's top
     and the choice (or the verdict), 'sealed, not opened' until the opening, the audit and the ledger head."""
     from .headline import UnverifiedFileError, choice_line, lines, ranking_lines
@@ -73,8 +73,9 @@ def closing_lines(exp: Path, result: dict[str, Any], receipt: Path) -> list[str]
     if result["passed"]:
         try:
             if not opened and (exp / CHOICE).exists():
-                out += [*ranking_lines(exp, result["verified"]), choice_line(exp, result["verified"])]
-            out += lines(exp, result["verified"])
+                out += [*ranking_lines(exp, result["verified"], target_unit=target_unit),
+                        choice_line(exp, result["verified"], target_unit)]
+            out += lines(exp, result["verified"], target_unit)
         except UnverifiedFileError as exc:
             state = f"PASS, but numbers withheld: {exc}"
         if not opened and (exp / CHOICE).exists():
@@ -85,6 +86,16 @@ def closing_lines(exp: Path, result: dict[str, Any], receipt: Path) -> list[str]
     out.append(f"ledger head {result.get('ledger_head_seq')}:{str(result.get('ledger_head'))[:16]}… written to "
                f"{receipt}: keep it where the experiment's owner cannot write (a review, a commit)")
     return out
+
+
+def target_unit_of(exp: Path) -> str | None:
+    """The target's unit from the experiment's stored config (a label for display only), if it names one."""
+    from .layout import CONFIG_COPY
+
+    try:
+        return (read_json(exp / CONFIG_COPY).get("data") or {}).get("unit")
+    except (OSError, ValueError, AttributeError):
+        return None
 
 
 def read_audit(exp: Path) -> dict[str, Any] | None:

@@ -478,7 +478,7 @@ def _selection_part(config: dict[str, Any]) -> dict[str, Any]:
     part["candidates"] = {name: {k: v for k, v in spec.items() if k not in RESOURCE_KEYS}
                           for name, spec in config["candidates"].items()}
     part["test"] = {k: v for k, v in config["test"].items() if k not in ("reopen_reasons", "seen_rows_reason")}
-    part["data"] = {k: v for k, v in config["data"].items() if k not in ("path", "allow_outside_project")}
+    part["data"] = {k: v for k, v in config["data"].items() if k not in ("path", "allow_outside_project", "unit")}
     props = _schema()["properties"]
     return {k: _without_defaults(v, props.get(k, {})) for k, v in part.items()}
 

@@ -14,6 +14,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from . import display
 from .layout import CHOICE, NESTED_SUMMARY, VERDICT
 
 
@@ -33,10 +34,11 @@ def _read(exp: Path, name: str, verified: Mapping[str, str]) -> Any:
     return json.loads(data)
 
 
-def verdict_line(exp_dir: str | Path, verified: Mapping[str, str]) -> str:
+def verdict_line(exp_dir: str | Path, verified: Mapping[str, str], target_unit: str | None = None) -> str:
     """One line for the end of a run: the winner, its CV estimates and its test score on the primary metric.
 
-    Empty when the experiment has no verdict yet (a run stopped before the opening).
+    Empty when the experiment has no verdict yet (a run stopped before the opening). Errors are shown as
+    positive numbers in the target's unit (holdfast.display).
     """
     exp = Path(exp_dir)
     if not (exp / VERDICT).exists():
@@ -46,17 +48,17 @@ def verdict_line(exp_dir: str | Path, verified: Mapping[str, str]) -> str:
     block = verdict["metrics"].get(metric)
     if block is None:
         return ""
-    corrected = [f"{label} {block[key]:.4f}" for key, label in (("cv_corrected_bbc", "BBC-CV"),
-                                                                 ("cv_corrected_tibshirani", "Tibshirani–Tibshirani"))
+    corrected = [f"{name} {display.number(metric, block[key], target_unit)}"
+                 for key, name in (("cv_corrected_bbc", "BBC-CV"), ("cv_corrected_tibshirani", "Tibshirani–Tibshirani"))
                  if block.get(key) is not None]
     low, high = block["interval"]
     if block.get("test") is None:
         test = f"test {block.get('undefined', 'undefined')}"
     else:
-        test = f"test {block['test']:.4f}, {block['level']:.0%} interval " + (
-            f"[{low:.4f}, {high:.4f}]" if low is not None and high is not None else "not available")
-    line = (f"winner {verdict['winner']['family']} {verdict['winner']['candidate']}, {metric}: "
-            f"CV {block['cv_mean']:.4f}"
+        test = (f"test {display.number(metric, block['test'], target_unit)}, {block['level']:.0%} interval "
+                f"{display.interval(metric, low, high, target_unit)}")
+    line = (f"winner {verdict['winner']['family']} {verdict['winner']['candidate']}, {display.label(metric)}: "
+            f"CV {display.number(metric, block['cv_mean'], target_unit)}"
             + (f" (corrected for selection: {', '.join(corrected)})" if corrected else "")
             + f"; {test}; agreement: {block.get('agreement', 'not judged')}")
     if verdict.get("selection"):
@@ -68,26 +70,23 @@ def verdict_line(exp_dir: str | Path, verified: Mapping[str, str]) -> str:
     return line
 
 
-CORRECTIONS = (("bbc", "BBC-CV"), ("tibshirani", "Tibshirani–Tibshirani"))
-
-
-def choice_line(exp_dir: str | Path, verified: Mapping[str, str]) -> str:
+def choice_line(exp_dir: str | Path, verified: Mapping[str, str], target_unit: str | None = None) -> str:
     """Before the opening: the winner, its rule, raw and corrected CV estimates, rounds and candidates tried."""
     exp = Path(exp_dir)
     if not (exp / CHOICE).exists():
         return ""
     choice = _read(exp, CHOICE, verified)
     winner, metric = choice["winner"], choice["metric"]
-    optimism = choice.get("optimism") or {}
-    corrected = [f"{label} {optimism[key]['corrected']:.4f}" for key, label in CORRECTIONS
-                 if (optimism.get(key) or {}).get("corrected") is not None]
+    corrected = display.corrected_list(choice.get("optimism") or {}, metric, target_unit)
     rounds = (choice.get("rounds") or {}).get("text", "")
-    return (f"winner {winner['family']} {winner['candidate']} by {choice['rule']}: CV {metric} {winner['mean']:.4f}"
-            + (f" (corrected for selection: {', '.join(corrected)})" if corrected else "")
+    return (f"winner {winner['family']} {winner['candidate']} by {choice['rule'].replace('_', ' ')}: CV "
+            f"{display.named(metric, winner['mean'], target_unit)}"
+            + (f" (corrected for selection: {corrected})" if corrected else "")
             + (f"; {rounds}" if rounds else ""))
 
 
-def ranking_lines(exp_dir: str | Path, verified: Mapping[str, str], top: int = 5) -> list[str]:
+def ranking_lines(exp_dir: str | Path, verified: Mapping[str, str], top: int = 5,
+                  target_unit: str | None = None) -> list[str]:
     """The top of the ranking on the primary metric: rank, candidate, mean and corrected standard error."""
     import io
 
@@ -106,15 +105,17 @@ def ranking_lines(exp_dir: str | Path, verified: Mapping[str, str], top: int = 5
         "candidate", "family", "params", "metric", "mean", "se_corrected", "rank"]).to_pylist()
         if r["metric"] == metric]
     rows.sort(key=lambda r: r["rank"])
-    out = [f"ranking by {metric} (greater is better), top {min(top, len(rows))} of {len(rows)}:"]
+    out = [f"ranking by cross-validated {display.label(metric)} ({display.direction(metric)}), top "
+           f"{min(top, len(rows))} of {len(rows)}:"]
     for r in rows[:top]:
         mark = "  <- winner" if r["candidate"] == choice["winner"]["candidate"] else ""
-        out.append(f"  {r['rank']:>3}. {r['family']} {r['candidate']} {r['params']}: {r['mean']:.4f} "
-                   f"(corrected se {r['se_corrected']:.4f}){mark}")
+        se = "undefined" if r["se_corrected"] is None else f"{r['se_corrected']:.4f}"
+        out.append(f"  {r['rank']:>3}. {r['family']} {r['candidate']} {r['params']}: "
+                   f"{display.number(metric, r['mean'], target_unit)} (corrected standard error {se}){mark}")
     return out
 
 
-def nested_line(exp_dir: str | Path, verified: Mapping[str, str]) -> str:
+def nested_line(exp_dir: str | Path, verified: Mapping[str, str], target_unit: str | None = None) -> str:
     """One line for the end of a run: the nested estimate of the selection procedure, and who won where."""
     exp = Path(exp_dir)
     if not (exp / NESTED_SUMMARY).exists():
@@ -123,11 +124,12 @@ def nested_line(exp_dir: str | Path, verified: Mapping[str, str]) -> str:
     metric = _read(exp, CHOICE, verified)["metric"] if (exp / CHOICE).exists() else next(iter(summary["metrics"]))
     numbers = {"se_corrected": float("nan"), **summary["metrics"][metric]}  # older summaries lack it
     winners = ", ".join(f"{c} ×{n}" for c, n in summary["winner_counts"].items())
-    return (f"nested CV of the whole selection ({summary['outer_folds']} outer folds), {metric}: "
-            f"{numbers['mean']:.4f} (se {numbers['se']:.4f}, corrected se {numbers['se_corrected']:.4f}); "
-            f"outer-fold winners: {winners}")
+    return (f"nested CV of the whole selection ({summary['outer_folds']} outer folds), {display.label(metric)}: "
+            f"{display.number(metric, numbers['mean'], target_unit)} (se {numbers['se']:.4f}, corrected se "
+            f"{numbers['se_corrected']:.4f}); outer-fold winners: {winners}")
 
 
-def lines(exp_dir: str | Path, verified: Mapping[str, str]) -> list[str]:
+def lines(exp_dir: str | Path, verified: Mapping[str, str], target_unit: str | None = None) -> list[str]:
     """Every headline line the verified files give, in reading order; UnverifiedFileError if one is not verified."""
-    return [line for line in (verdict_line(exp_dir, verified), nested_line(exp_dir, verified)) if line]
+    return [line for line in (verdict_line(exp_dir, verified, target_unit),
+                              nested_line(exp_dir, verified, target_unit)) if line]

@@ -95,5 +95,5 @@ onsuccess:
     if not os.environ.get("HOLDFAST_CLOSING_BY_CLI"):
         from holdfast.closing import finish
 
-        for line in finish(PLAN.exp)[1]:
+        for line in finish(PLAN.exp, PLAN.config["data"].get("unit"))[1]:
             print(f"holdfast: {line}")
