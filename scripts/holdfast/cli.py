@@ -205,7 +205,7 @@ def _logged(cmd: list[str], env: dict[str, str], exp: Path, label: str) -> int:
     # progress" even in the instant between Snakemake deleting a job's old outputs and the job taking the lock.
     with open(log, "w", encoding="utf-8") as handle, ledger.locked(exp / STEPS_LOCK, shared=True):
         process = subprocess.Popen(cmd, env=env, stdin=subprocess.DEVNULL, stdout=handle, stderr=subprocess.STDOUT)
-        follow(exp, process, _say)
+        follow(exp, process, _say, log)
     if process.returncode:
         _show_failure(log)
     return process.returncode

@@ -86,6 +86,15 @@ def oof_frame(keys: np.ndarray, candidate: str, outputs: dict[str, np.ndarray], 
     return frame
 
 
+def _best(fits: pd.DataFrame, metric: str) -> dict[str, Any] | None:
+    """The job's best candidate on its fold by the primary metric (for progress lines; not used to choose)."""
+    scores = fits.loc[fits["status"] == "ok", ["candidate", f"val_{metric}"]].dropna()
+    if scores.empty:
+        return None
+    top = scores.sort_values([f"val_{metric}", "candidate"], ascending=[False, True]).iloc[0]
+    return {"candidate": str(top["candidate"]), "metric": metric, "score": float(top[f"val_{metric}"])}
+
+
 def limit_threads(threads: int) -> None:
     """Cap the numeric libraries' thread pools for this process."""
     for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
@@ -135,5 +144,6 @@ def fit_family(dev_path: str, folds_path: str, family: dict[str, Any], spec: dic
         "folds_sha256": sha256_file(folds_path), "fits": str(Path(fits_path).name),
         "fits_sha256": sha256_file(fits_path), "oof_sha256": sha256_file(oof_path),
         "random_states": seeds, "fit_seconds": round(float(fits["fit_seconds"].sum()), 3),
+        "best": _best(fits, metrics[0]),
     }, rule=rule)
     return fits
