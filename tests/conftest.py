@@ -17,14 +17,47 @@ REPO = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(REPO / "scripts"))
 
 
+_WORKER: dict[str, str] = {}
+
+
+@pytest.fixture(scope="session", autouse=True)
+def warm_worker(tmp_path_factory: pytest.TempPathFactory) -> Any:
+    """One pre-warmed job worker (holdfast.worker) for the session's plain Snakemake runs, as `holdfast run` has.
+
+    Jobs then fork with their imports done instead of starting cold, which is most of what a small test
+    workflow costs. tests/test_kill.py starts Snakemake without it, so the cold path stays tested.
+    """
+    import tempfile
+    import time
+
+    address = os.path.join(tempfile.gettempdir(), f"holdfast-test-{os.getpid()}.sock")
+    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+    worker = subprocess.Popen([sys.executable, "-m", "holdfast.worker", address], env=env,
+                              stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 120
+    while not os.path.exists(address) and worker.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    if os.path.exists(address):
+        _WORKER["HOLDFAST_WORKER"] = address
+    yield address
+    _WORKER.clear()
+    worker.terminate()
+    try:
+        worker.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        worker.kill()
+    if os.path.exists(address):
+        os.unlink(address)
+
+
 def run_workflow(workdir: Path, *args: str, configfile: str | None = "config.yaml",
                  timeout: int = 1200) -> subprocess.CompletedProcess[str]:
-    """Run the real Snakemake on the repository's Snakefile inside ``workdir``."""
+    """Run the real Snakemake on the repository's Snakefile inside ``workdir`` (jobs forked by the warm worker)."""
     cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(workdir), "--cores", "2",
            *args]
     if configfile is not None:  # last: --configfile takes every following word
         cmd += ["--configfile", str(workdir / configfile)]
-    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts"), **_WORKER}
     return subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, env=env,
                           stdin=subprocess.DEVNULL)
 
