@@ -73,8 +73,8 @@ def _restore(exp: Path, verdict_path: Path, last: dict[str, Any], model_sha: str
     return True
 
 
-def _inside(value: float | None, low: float, high: float) -> bool | None:
-    if value is None or not (np.isfinite(low) and np.isfinite(high)):
+def _inside(value: float | None, low: float | None, high: float | None) -> bool | None:
+    if value is None or low is None or high is None or not (np.isfinite(low) and np.isfinite(high)):
         return None
     return bool(low <= value <= high)
 
