@@ -21,12 +21,82 @@ RESPONSES = ("predict", "predict_proba", "decision_function")
 
 
 def model_outputs(model: Any, features: Any) -> dict[str, np.ndarray]:
-    """Every response the fitted model offers for these rows."""
-    out = {}
-    for name in RESPONSES:
-        if hasattr(model, name):
-            out[name] = np.asarray(getattr(model, name)(features))
-    return out
+    """Every response the fitted model offers for these rows, each the array ``model.<response>(features)`` gives.
+
+    A Pipeline's preprocessing runs once for all responses (Pipeline.predict & co. transform the rows
+    and call the last step), and a response that scikit-learn computes from another one is taken from it
+    with the same arithmetic (:data:`DERIVED`): one pass over a forest's trees instead of two, and over
+    a boosted ensemble's instead of three.
+    """
+    from sklearn.pipeline import Pipeline
+
+    final, rows = model, features
+    if isinstance(model, Pipeline) and len(model.steps) > 1:
+        final, rows = model.steps[-1][1], model[:-1].transform(features)
+    rules = _derivations(final) if len(features) else {}
+    out: dict[str, np.ndarray] = {}
+    for name in ("decision_function", "predict_proba", "predict"):  # sources before what is derived from them
+        if name in rules and rules[name][0] in out:
+            source, derive = rules[name]
+            out[name] = derive(final, out[source])
+        elif hasattr(final, name):
+            out[name] = np.asarray(getattr(final, name)(rows))
+    return {name: out[name] for name in RESPONSES if name in out}
+
+
+def _labels_from_decision(estimator: Any, decision: np.ndarray) -> np.ndarray:
+    """Labels as LinearClassifierMixin.predict and HistGradientBoostingClassifier.predict compute them:
+    one column, the second class where the decision is > 0; several, the class of the largest."""
+    indices = (decision > 0).astype(np.intp) if decision.ndim == 1 else np.argmax(decision, axis=1)
+    return np.asarray(estimator.classes_).take(indices, axis=0)
+
+
+def _labels_from_proba(estimator: Any, proba: np.ndarray) -> np.ndarray:
+    """Labels as ForestClassifier.predict computes them for one output: the most probable class."""
+    return np.asarray(estimator.classes_).take(np.argmax(proba, axis=1), axis=0)
+
+
+def _proba_from_raw(estimator: Any, decision: np.ndarray) -> np.ndarray:
+    """Probabilities as HistGradientBoostingClassifier.predict_proba computes them from the raw predictions,
+    which its decision_function returns (one column raveled, which the loss accepts as it is)."""
+    return np.asarray(estimator._loss.predict_proba(decision))
+
+
+_HGB = "sklearn.ensemble._hist_gradient_boosting.gradient_boosting.HistGradientBoostingClassifier"
+# Response -> {the scikit-learn method (module.qualname, so nothing is imported to ask) that only turns another
+# response into this one: (that response, the same arithmetic)}. Read off scikit-learn 1.9's code; each is
+# compared with the real method by tests/test_units.py, and a subclass that overrides the method is not matched.
+DERIVED: dict[str, dict[str, tuple[str, Any]]] = {
+    "predict": {
+        "sklearn.linear_model._base.LinearClassifierMixin.predict": ("decision_function", _labels_from_decision),
+        f"{_HGB}.predict": ("decision_function", _labels_from_decision),
+        "sklearn.ensemble._forest.ForestClassifier.predict": ("predict_proba", _labels_from_proba),
+    },
+    "predict_proba": {f"{_HGB}.predict_proba": ("decision_function", _proba_from_raw)},
+}
+# What a derivation also takes for granted about the source response.
+SOURCE_METHODS = {(f"{_HGB}.predict_proba", "decision_function"): f"{_HGB}.decision_function"}
+
+
+def _method_name(estimator: Any, name: str) -> str:
+    method = getattr(type(estimator), name, None)
+    return f"{getattr(method, '__module__', '')}.{getattr(method, '__qualname__', '')}"
+
+
+def _derivations(estimator: Any) -> dict[str, tuple[str, Any]]:
+    """Response -> (source response, derivation) for the responses of this estimator :data:`DERIVED` covers."""
+    if getattr(estimator, "n_outputs_", 1) != 1 or not hasattr(estimator, "classes_"):
+        return {}
+    found = {}
+    for name, known in DERIVED.items():
+        method = _method_name(estimator, name)
+        if method not in known:
+            continue
+        source = known[method][0]
+        wanted = SOURCE_METHODS.get((method, source))
+        if wanted is None or _method_name(estimator, source) == wanted:
+            found[name] = known[method]
+    return found
 
 
 def _has(name: str) -> Any:
