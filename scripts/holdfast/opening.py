@@ -11,6 +11,7 @@ The verdict puts each test metric, with its interval, beside the winner's CV est
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import shutil
 import warnings
 from pathlib import Path
@@ -258,7 +259,8 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
                                     "run the workflow up to refit_winner first")
         refit = refits[-1]
         model_path = exp / MODEL
-        model_sha = sha256_file(model_path)
+        model_bytes = model_path.read_bytes()  # read once: hashed here, checked and loaded by load_model
+        model_sha = hashlib.sha256(model_bytes).hexdigest()
         if before >= allowed:
             finished = opened(entries)
             if finished and len(finished) == before and _restore(exp, target, finished[-1], model_sha):
@@ -272,7 +274,9 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
         request_sha = _check_request(request_path, number, model_sha, sha256_file(exp / CHOICE), experiment)
         # Trust exactly the types the refit recorded; a ledger older than that record has none (None),
         # and then load_model applies its static policy alone.
-        model = load_model(str(model_path), refit["details"]["model_sha256"], refit["details"].get("model_types"))
+        model = load_model(str(model_path), refit["details"]["model_sha256"], refit["details"].get("model_types"),
+                           data=model_bytes)
+        del model_bytes
         manifest = read_json(exp / MANIFEST)
         test_sha = sha256_file(exp / TEST)
         if test_sha != manifest["files"]["test.parquet"]:
