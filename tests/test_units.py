@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import time
 from pathlib import Path
 from typing import Any
@@ -222,6 +223,49 @@ def test_fold_rows_follow_the_fold_table_by_key_whatever_the_row_order() -> None
     training, validation = fold_rows(dev, folds, 1, 1)
     assert validation.tolist() == [True, False, False, False, True, False]
     assert training.tolist() == [False, True, True, True, False, False]
+
+
+def test_limit_threads_bounds_openmp_and_blas_in_a_child_forked_after_the_imports() -> None:
+    # As the pre-warmed worker (holdfast.worker) does: the numeric libraries are loaded, then each job is a fork.
+    # threadpoolctl's view of the child (threadpoolctl.threadpool_info) must show every pool at the job's threads.
+    import sklearn.ensemble  # noqa: F401  (loads scikit-learn's OpenMP runtime, as the worker's PRELOAD does)
+    from threadpoolctl import threadpool_info
+
+    read, write = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # the child: what a job does first
+        code = 1
+        try:
+            from holdfast.fit import limit_threads
+
+            limit_threads(1)
+            seen = sorted({(pool["user_api"], pool["num_threads"]) for pool in threadpool_info()})
+            os.write(write, json.dumps(seen).encode())
+            code = 0
+        finally:
+            os._exit(code)
+    os.close(write)
+    with os.fdopen(read) as answer:
+        seen = [tuple(pair) for pair in json.loads(answer.read() or "[]")]
+    assert os.waitpid(pid, 0)[1] == 0
+    assert ("openmp", 1) in seen and ("blas", 1) in seen and all(n == 1 for _, n in seen), seen
+
+
+def test_the_opening_bounds_numeric_threads_before_it_reads_anything(tmp_path: Path,
+                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    from holdfast.errors import SealedAccessError
+    from holdfast.opening import open_test
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        monkeypatch.setenv(var, "2")  # restored after the test, as the limits below are
+    ledger.append(tmp_path / "ledger.jsonl", "seal", {})
+    with threadpool_limits(2):
+        with pytest.raises(SealedAccessError, match="no refit winner"):
+            open_test(str(tmp_path), "x", {}, ["accuracy"], "classification", [], 0.95, 10, 0,
+                      str(tmp_path / "final/verdict.json"), threads=1)
+        assert {pool["num_threads"] for pool in threadpool_info()} == {1}
+    assert os.environ["OMP_NUM_THREADS"] == "1"
 
 
 def test_a_failing_candidate_is_recorded_and_the_family_goes_on(tmp_path: Path) -> None:

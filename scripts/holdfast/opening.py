@@ -24,6 +24,7 @@ from . import ledger, openings
 from ._io import read_json, sha256_file, write_json, write_parquet
 from .dataset import split_xy
 from .errors import ModelFileError, SealedAccessError
+from .fit import limit_threads
 from .layout import CHOICE, LEDGER, MANIFEST, MODEL, RANKING, TEST
 from .refit import load_model
 from .scoring import bootstrap_interval, clopper_pearson, model_outputs, replay
@@ -240,12 +241,15 @@ def _cv(mine: pd.DataFrame, metric: str) -> dict[str, Any]:
 def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list[str], task: str,
               reopen_reasons: list[str], level: float, draws: int, seed: int, verdict_path: str,
               fingerprint: str = "", rule: str | None = None,
-              fingerprint_parts: dict[str, str] | None = None, request_path: str | None = None) -> dict[str, Any]:
+              fingerprint_parts: dict[str, str] | None = None, request_path: str | None = None,
+              threads: int = 1) -> dict[str, Any]:
     """Open the sealed test set once, score the refit winner on it, write final/verdict.json.
 
     ``request_path`` is the confirmation ``holdfast open`` wrote; when given, it must name this opening,
-    model and choice, so a stale or copied request cannot open anything else.
+    model and choice, so a stale or copied request cannot open anything else. ``threads`` bounds the
+    numeric libraries (the rule declares none, so Snakemake gives the job one).
     """
+    limit_threads(threads)
     exp = Path(exp_dir)
     ledger_path = exp / LEDGER
     target = Path(verdict_path)
