@@ -166,6 +166,26 @@ def test_model_outputs_are_exactly_the_pipelines_own_responses(estimator: str, l
     assert taken == DERIVED[estimator]  # the shortcuts are still taken where they were checked
 
 
+def test_a_subclass_that_overrides_the_source_response_is_called_not_derived() -> None:
+    # HistGradientBoostingClassifier.predict and predict_proba read its raw predictions, not decision_function:
+    # a subclass that changes decision_function must not have its labels or probabilities derived from it.
+    from holdfast.scoring import _derivations, model_outputs
+    from sklearn.ensemble import HistGradientBoostingClassifier
+
+    class Shifted(HistGradientBoostingClassifier):
+        def decision_function(self, X: Any) -> np.ndarray:  # noqa: N803 - scikit-learn's argument name
+            return super().decision_function(X) + 5.0
+
+    x, y = _labelled_frames()["two"]
+    x = x.drop(columns=["site"])
+    with threadpool_limits(1):
+        model = Shifted(max_iter=10).fit(x, y)
+    assert _derivations(model) == {}
+    got = model_outputs(model, x)
+    assert np.array_equal(got["predict"], model.predict(x)) and np.array_equal(got["predict_proba"],
+                                                                               model.predict_proba(x))
+
+
 def test_model_outputs_of_regressors_and_of_no_rows() -> None:
     from holdfast.scoring import model_outputs
     from sklearn.datasets import load_diabetes

@@ -74,8 +74,10 @@ DERIVED: dict[str, dict[str, tuple[str, Any]]] = {
     },
     "predict_proba": {f"{_HGB}.predict_proba": ("decision_function", _proba_from_raw)},
 }
-# What a derivation also takes for granted about the source response.
-SOURCE_METHODS = {(f"{_HGB}.predict_proba", "decision_function"): f"{_HGB}.decision_function"}
+# Where the method computes from its own raw predictions rather than by calling the source response, the
+# source must be the method that returns those raw predictions (a subclass could override it).
+SOURCE_METHODS = {(f"{_HGB}.predict_proba", "decision_function"): f"{_HGB}.decision_function",
+                  (f"{_HGB}.predict", "decision_function"): f"{_HGB}.decision_function"}
 
 
 def _method_name(estimator: Any, name: str) -> str:
