@@ -164,6 +164,7 @@ INTERVAL_CASES = {
 }
 
 
+@pytest.mark.filterwarnings("ignore:Only one class is present in y_true")  # the one-class cases, on purpose
 @pytest.mark.parametrize(("case", "exact_only"), [(case, False) for case in sorted(INTERVAL_CASES)] + [
     ("auc, many ties", True), ("log loss, a class missing from a few resamples", True), ("absolute error", True)])
 def test_bootstrap_interval_equals_the_one_by_one_loop_to_the_bit(case: str, exact_only: bool,
