@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import time
 from pathlib import Path
 from typing import Any
@@ -20,6 +21,7 @@ from holdfast.fit import fit_family
 from holdfast.seal import sealed_mask
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from threadpoolctl import threadpool_limits
 
 
 def test_candidate_ids_are_stable_and_canonical() -> None:
@@ -113,6 +115,96 @@ def test_preprocessing_is_fitted_on_training_rows_only() -> None:
     assert not np.allclose(scaler.mean_, x.mean().to_numpy())
 
 
+def _labelled_frames() -> dict[str, tuple[pd.DataFrame, pd.Series]]:
+    """scikit-learn's bundled breast cancer (two classes) and wine (three, as text labels) data, with a text column."""
+    from sklearn.datasets import load_wine
+
+    cancer = breast_cancer_frame()
+    x2 = cancer.drop(columns=["patient", "target"]).assign(site=np.where(cancer.index % 3 == 0, "north", "south"))
+    wine = load_wine(as_frame=True)
+    x3 = wine.data.assign(site=np.where(wine.data.index % 2 == 0, "east", "west"))
+    return {"two": (x2, cancer["target"]), "three": (x3, wine.target.map({0: "a", 1: "b", 2: "c"}))}
+
+
+DERIVED = {  # estimator -> what scoring.model_outputs takes from another response instead of calling it
+    "sklearn.linear_model.LogisticRegression": {"predict": "decision_function"},
+    "sklearn.linear_model.SGDClassifier": {"predict": "decision_function"},
+    "sklearn.svm.LinearSVC": {"predict": "decision_function"},
+    "sklearn.ensemble.HistGradientBoostingClassifier": {"predict": "decision_function",
+                                                        "predict_proba": "decision_function"},
+    "sklearn.ensemble.RandomForestClassifier": {"predict": "predict_proba"},
+    "sklearn.ensemble.ExtraTreesClassifier": {"predict": "predict_proba"},
+    "sklearn.linear_model.RidgeClassifier": {},  # overrides predict (multilabel): not derived
+    "sklearn.tree.DecisionTreeClassifier": {},  # normalises probabilities after predict's argmax: not derived
+    "sklearn.neighbors.KNeighborsClassifier": {},
+}
+
+
+@pytest.mark.parametrize("estimator", sorted(DERIVED))
+@pytest.mark.parametrize("labels", ["two", "three"])
+def test_model_outputs_are_exactly_the_pipelines_own_responses(estimator: str, labels: str) -> None:
+    # Reference: scikit-learn's Pipeline.predict / predict_proba / decision_function called one by one (what
+    # model_outputs did before it transformed once and derived predict); the arrays must be equal bit for bit.
+    from holdfast.scoring import RESPONSES, _derivations, model_outputs
+
+    x, y = _labelled_frames()[labels]
+    params = {"max_iter": 2000} if "Logistic" in estimator or "LinearSVC" in estimator else {}
+    params |= {"n_estimators": 30} if "Forest" in estimator or "Trees" in estimator else {}
+    params |= {"max_iter": 30} if "HistGradient" in estimator else {}
+    candidate = {"id": "c", "family": "f", "estimator": estimator, "params": params,
+                 "preprocess": {"impute": "median", "scale": "standard", "categorical": "onehot"}}
+    train = np.arange(len(x)) % 4 != 0
+    with threadpool_limits(1):  # OpenMP on a shared machine: one thread is faster than waiting for cores
+        model = build_pipeline(candidate, x, 1, ["sklearn"]).fit(x[train], y[train])
+    for rows in (x[~train], x[train]):
+        got = model_outputs(model, rows)
+        expected = {name: np.asarray(getattr(model, name)(rows)) for name in RESPONSES if hasattr(model, name)}
+        assert list(got) == list(expected)
+        for name, value in expected.items():
+            assert got[name].dtype == value.dtype and np.array_equal(got[name], value), (estimator, name)
+    taken = {name: source for name, (source, _) in _derivations(model.named_steps["model"]).items()}
+    assert taken == DERIVED[estimator]  # the shortcuts are still taken where they were checked
+
+
+def test_a_subclass_that_overrides_the_source_response_is_called_not_derived() -> None:
+    # HistGradientBoostingClassifier.predict and predict_proba read its raw predictions, not decision_function:
+    # a subclass that changes decision_function must not have its labels or probabilities derived from it.
+    from holdfast.scoring import _derivations, model_outputs
+    from sklearn.ensemble import HistGradientBoostingClassifier
+
+    class Shifted(HistGradientBoostingClassifier):
+        def decision_function(self, X: Any) -> np.ndarray:  # noqa: N803 - scikit-learn's argument name
+            return super().decision_function(X) + 5.0
+
+    x, y = _labelled_frames()["two"]
+    x = x.drop(columns=["site"])
+    with threadpool_limits(1):
+        model = Shifted(max_iter=10).fit(x, y)
+    assert _derivations(model) == {}
+    got = model_outputs(model, x)
+    assert np.array_equal(got["predict"], model.predict(x)) and np.array_equal(got["predict_proba"],
+                                                                               model.predict_proba(x))
+
+
+def test_model_outputs_of_regressors_and_of_no_rows() -> None:
+    from holdfast.scoring import model_outputs
+    from sklearn.datasets import load_diabetes
+
+    data = load_diabetes(as_frame=True)
+    for estimator in ("sklearn.linear_model.Ridge", "sklearn.ensemble.RandomForestRegressor"):
+        candidate = {"id": "c", "family": "f", "estimator": estimator, "params": {}, "preprocess": {}}
+        model = build_pipeline(candidate, data.data, 1, ["sklearn"]).fit(data.data, data.target)
+        assert list(model_outputs(model, data.data)) == ["predict"]
+        assert np.array_equal(model_outputs(model, data.data)["predict"], model.predict(data.data))
+    x, y = _labelled_frames()["two"]
+    candidate = {"id": "c", "family": "f", "estimator": "sklearn.ensemble.RandomForestClassifier",
+                 "params": {"n_estimators": 5}, "preprocess": {}}
+    model = build_pipeline(candidate, x, 1, ["sklearn"]).fit(x, y)
+    for call in (model.predict, lambda rows: model_outputs(model, rows)):  # no rows: the same refusal as before
+        with pytest.raises(ValueError, match=r"Found array with 0 sample\(s\)"):
+            call(x.iloc[:0])
+
+
 def test_text_columns_without_an_encoder_are_refused() -> None:
     x = pd.DataFrame({"n": [1.0, 2.0], "colour": ["red", "blue"]})
     candidate = {"id": "c", "family": "f", "estimator": "sklearn.linear_model.Ridge",
@@ -134,6 +226,66 @@ def _family(name: str, params_list: list[dict[str, object]]) -> dict[str, object
     cands = [{"id": f"c{i}", "family": name, "estimator": "sklearn.linear_model.LogisticRegression",
               "preprocess": {"impute": "median", "scale": "standard"}, "params": p} for i, p in enumerate(params_list)]
     return {"family": name, "candidates": cands}
+
+
+def test_fold_rows_follow_the_fold_table_by_key_whatever_the_row_order() -> None:
+    from holdfast.fit import fold_rows
+
+    dev = pd.DataFrame({"row_key": ["k1", "k2", "k3", "k4", "k5", "k6"]})
+    # shuffled, two repeats, k6 listed in no repeat (a nested outer test row); k4 validated nowhere in repeat 1
+    folds = pd.DataFrame({"row_key": ["k3", "k1", "k5", "k2", "k4", "k1", "k2", "k3", "k4", "k5"],
+                          "repeat": [0, 0, 0, 0, 0, 1, 1, 1, 1, 1],
+                          "fold": pd.array([1, 0, 1, 0, 2, 1, 0, 0, None, 1], dtype="UInt8"),
+                          "train_from": [0] * 10})
+    training, validation = fold_rows(dev, folds, 0, 1)
+    assert validation.tolist() == [False, False, True, False, True, False]
+    assert training.tolist() == [True, True, False, True, False, False]
+    training, validation = fold_rows(dev, folds, 1, 1)
+    assert validation.tolist() == [True, False, False, False, True, False]
+    assert training.tolist() == [False, True, True, True, False, False]
+
+
+def test_limit_threads_bounds_openmp_and_blas_in_a_child_forked_after_the_imports() -> None:
+    # As the pre-warmed worker (holdfast.worker) does: the numeric libraries are loaded, then each job is a fork.
+    # threadpoolctl's view of the child (threadpoolctl.threadpool_info) must show every pool at the job's threads.
+    import sklearn.ensemble  # noqa: F401  (loads scikit-learn's OpenMP runtime, as the worker's PRELOAD does)
+    from threadpoolctl import threadpool_info
+
+    read, write = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # the child: what a job does first
+        code = 1
+        try:
+            from holdfast.fit import limit_threads
+
+            limit_threads(1)
+            seen = sorted({(pool["user_api"], pool["num_threads"]) for pool in threadpool_info()})
+            os.write(write, json.dumps(seen).encode())
+            code = 0
+        finally:
+            os._exit(code)
+    os.close(write)
+    with os.fdopen(read) as answer:
+        seen = [tuple(pair) for pair in json.loads(answer.read() or "[]")]
+    assert os.waitpid(pid, 0)[1] == 0
+    assert ("openmp", 1) in seen and ("blas", 1) in seen and all(n == 1 for _, n in seen), seen
+
+
+def test_the_opening_bounds_numeric_threads_before_it_reads_anything(tmp_path: Path,
+                                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    from holdfast.errors import SealedAccessError
+    from holdfast.opening import open_test
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        monkeypatch.setenv(var, "2")  # restored after the test, as the limits below are
+    ledger.append(tmp_path / "ledger.jsonl", "seal", {})
+    with threadpool_limits(2):
+        with pytest.raises(SealedAccessError, match="no refit winner"):
+            open_test(str(tmp_path), "x", {}, ["accuracy"], "classification", [], 0.95, 10, 0,
+                      str(tmp_path / "final/verdict.json"), threads=1)
+        assert {pool["num_threads"] for pool in threadpool_info()} == {1}
+    assert os.environ["OMP_NUM_THREADS"] == "1"
 
 
 def test_a_failing_candidate_is_recorded_and_the_family_goes_on(tmp_path: Path) -> None:

@@ -31,9 +31,13 @@ def fold_rows(dev: pd.DataFrame, folds: pd.DataFrame, repeat: int, fold: int) ->
     """Boolean masks over dev rows: (training, validation) for one fold."""
     part = folds[folds["repeat"] == repeat].reset_index(drop=True)
     train_mask, val_mask = fold_masks(part, fold)
-    validation = dev[KEY].isin(set(part.loc[val_mask, KEY])).to_numpy()
-    training = dev[KEY].isin(set(part.loc[train_mask, KEY])).to_numpy()
-    return training, validation
+    keys = pd.Index(part[KEY])
+    if not keys.is_unique:  # never in a checked fold table; kept for the meaning "any listing of the key"
+        return (dev[KEY].isin(set(part.loc[train_mask, KEY])).to_numpy(),
+                dev[KEY].isin(set(part.loc[val_mask, KEY])).to_numpy())
+    where = keys.get_indexer(dev[KEY])  # one hash look-up per dev row; -1: not in the fold table
+    listed = where >= 0
+    return listed & train_mask[where], listed & val_mask[where]
 
 
 def fit_one(candidate: dict[str, Any], x_train: pd.DataFrame, y_train: pd.Series, x_val: pd.DataFrame,

@@ -11,6 +11,7 @@ The verdict puts each test metric, with its interval, beside the winner's CV est
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import shutil
 import warnings
 from pathlib import Path
@@ -23,6 +24,7 @@ from . import ledger, openings
 from ._io import read_json, sha256_file, write_json, write_parquet
 from .dataset import split_xy
 from .errors import ModelFileError, SealedAccessError
+from .fit import limit_threads
 from .layout import CHOICE, LEDGER, MANIFEST, MODEL, RANKING, TEST
 from .refit import load_model
 from .scoring import bootstrap_interval, clopper_pearson, model_outputs, replay
@@ -239,12 +241,15 @@ def _cv(mine: pd.DataFrame, metric: str) -> dict[str, Any]:
 def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list[str], task: str,
               reopen_reasons: list[str], level: float, draws: int, seed: int, verdict_path: str,
               fingerprint: str = "", rule: str | None = None,
-              fingerprint_parts: dict[str, str] | None = None, request_path: str | None = None) -> dict[str, Any]:
+              fingerprint_parts: dict[str, str] | None = None, request_path: str | None = None,
+              threads: int = 1) -> dict[str, Any]:
     """Open the sealed test set once, score the refit winner on it, write final/verdict.json.
 
     ``request_path`` is the confirmation ``holdfast open`` wrote; when given, it must name this opening,
-    model and choice, so a stale or copied request cannot open anything else.
+    model and choice, so a stale or copied request cannot open anything else. ``threads`` bounds the
+    numeric libraries (the rule declares none, so Snakemake gives the job one).
     """
+    limit_threads(threads)
     exp = Path(exp_dir)
     ledger_path = exp / LEDGER
     target = Path(verdict_path)
@@ -258,7 +263,8 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
                                     "run the workflow up to refit_winner first")
         refit = refits[-1]
         model_path = exp / MODEL
-        model_sha = sha256_file(model_path)
+        model_bytes = model_path.read_bytes()  # read once: hashed here, checked and loaded by load_model
+        model_sha = hashlib.sha256(model_bytes).hexdigest()
         if before >= allowed:
             finished = opened(entries)
             if finished and len(finished) == before and _restore(exp, target, finished[-1], model_sha):
@@ -272,7 +278,9 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
         request_sha = _check_request(request_path, number, model_sha, sha256_file(exp / CHOICE), experiment)
         # Trust exactly the types the refit recorded; a ledger older than that record has none (None),
         # and then load_model applies its static policy alone.
-        model = load_model(str(model_path), refit["details"]["model_sha256"], refit["details"].get("model_types"))
+        model = load_model(str(model_path), refit["details"]["model_sha256"], refit["details"].get("model_types"),
+                           data=model_bytes)
+        del model_bytes
         manifest = read_json(exp / MANIFEST)
         test_sha = sha256_file(exp / TEST)
         if test_sha != manifest["files"]["test.parquet"]:

@@ -296,17 +296,20 @@ def trusted_types(path: str, trusted: list[str] | None = None) -> list[str]:
         return _checked_types(handle.read(), path, trusted)
 
 
-def load_model(path: str, expected_sha256: str | None = None, trusted: list[str] | None = None) -> Any:
+def load_model(path: str, expected_sha256: str | None = None, trusted: list[str] | None = None,
+               data: bytes | None = None) -> Any:
     """Load a saved model after checking its hash and every type it names, trusting only ``trusted``.
 
     ``trusted`` is normally the list the ledger's refit event recorded; it can only narrow the static
     policy, never widen it. None (ledgers written before the list was recorded) applies the policy alone.
-    The file is read once, so the bytes checked are the bytes loaded.
+    The file is read once, so the bytes checked are the bytes loaded; ``data`` is that read when the
+    caller has already made it (the opening hashes the same bytes for its records).
     """
     import skops.io as sio
 
-    with open(path, "rb") as handle:
-        data = handle.read()
+    if data is None:
+        with open(path, "rb") as handle:
+            data = handle.read()
     if expected_sha256 is not None:
         actual = hashlib.sha256(data).hexdigest()
         if actual != expected_sha256:
@@ -361,13 +364,14 @@ def refit_winner(choice_path: str, dev_path: str, spec: dict[str, Any], threads:
                              f"({candidate['estimator']}) cannot be saved as a model file holdfast will load: it "
                              f"would hold {_describe(refused)}; choose another estimator for that family")
     write_atomic(model_path, lambda tmp: _write_bytes(tmp, data))
+    model_sha = hashlib.sha256(data).hexdigest()  # the bytes just written: no second read of a large file
     card = {
         "candidate": candidate,
         "trained_on": {"rows": len(dev), "dev_sha256": sha256_file(dev_path), "features": list(x.columns),
                        "target": spec["target"], "key_column": KEY},
         "classes": [str(c) for c in getattr(model, "classes_", [])],
         "estimator_params": {k: repr(v) for k, v in sorted(model.named_steps["model"].get_params(deep=False).items())},
-        "model_file": {"format": "skops", "sha256": sha256_file(model_path), "types": types,
+        "model_file": {"format": "skops", "sha256": model_sha, "types": types,
                        "load_with": "holdfast.refit.load_model(path, expected_sha256, types)"},
         "selected_by": {"rule": choice["rule"], "metric": choice["metric"], "cv_mean": choice["winner"]["mean"],
                         "cv_se": choice["winner"]["se"]},
