@@ -148,7 +148,7 @@ def open_test(smk: Any) -> None:
                        opening["confidence"], opening["bootstrap"], opening["seed"], smk.output.verdict,
                        fingerprint=smk.params.fingerprint,
                        fingerprint_parts=json.loads(smk.params.fingerprint_parts), rule=smk.rule,
-                       request_path=smk.input.request)
+                       request_path=smk.input.request, threads=int(smk.threads))
     print(json.dumps(verdict["metrics"], indent=2))
 
 

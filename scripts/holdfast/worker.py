@@ -30,7 +30,7 @@ PRELOAD = ("numpy", "pandas", "pyarrow", "pyarrow.parquet", "scipy.stats", "skle
            "sklearn.compose", "sklearn.impute", "sklearn.preprocessing", "sklearn.metrics", "sklearn.linear_model",
            "sklearn.ensemble", "sklearn.tree", "sklearn.neighbors", "sklearn.model_selection", "threadpoolctl",
            "snakemake.iocontainers", "holdfast.steps", "holdfast.fit", "holdfast.folds", "holdfast.seal",
-           "holdfast.tally", "holdfast.refit", "holdfast.rounds")
+           "holdfast.tally", "holdfast.refit", "holdfast.rounds", "skops.io", "holdfast.opening")
 
 
 def _recv_exact(conn: socket.socket, size: int) -> bytes:
