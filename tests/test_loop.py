@@ -162,7 +162,7 @@ def test_a_plain_snakemake_target_cannot_open_without_the_request(work: Path) ->
 
 def test_a_killed_opening_counts_and_is_named_by_the_audit(work: Path) -> None:
     """SIGKILL after the write-ahead marker and before the verdict: the opening counts everywhere."""
-    edit(work, lambda c: c.update(opening={"bootstrap": 20000, "seed": 1}))  # a long read: seconds to kill in
+    edit(work, lambda c: c.update(opening={"bootstrap": 300000, "seed": 1}))  # a long read: seconds to kill in
     ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
     exp = work / "results" / "bc"
     marker = exp / "final" / "openings" / "started-1.json"
