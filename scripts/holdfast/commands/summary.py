@@ -56,8 +56,11 @@ class Summary:
     ledger_broken: bool = False
     data_path: str = "-"
     data_sha256: str = ""
+    seal_spec: dict[str, Any] = field(default_factory=dict)
     test_scheme: str = "-"
+    split: str = "-"  # the test scheme in a few characters, for tables
     folds: str = "-"
+    folds_short: str = "-"
     fits: FitJobs = field(default_factory=FitJobs)
     rounds: int = 0
     candidates_tried: int | None = None
@@ -78,7 +81,7 @@ class Summary:
     def winner(self) -> str:
         """'family candidate' of the winner, or '-'."""
         if not self.choice:
-            return "-"
+            return "withheld" if self.withheld else "-"
         return f"{self.choice['winner']['family']} {self.choice['winner']['candidate']}"
 
     def cv(self) -> str:
@@ -114,23 +117,26 @@ class Summary:
         return self.audit_state.upper()
 
 
-def _fold_text(details: dict[str, Any]) -> str:
+def _fold_text(details: dict[str, Any]) -> tuple[str, str]:
+    """The fold scheme of an assign_folds line, in words and in a few characters."""
     scheme = str(details.get("scheme"))
     used = KEYS.get(scheme, ())
+    k, repeats = details.get("k"), details.get("repeats")
     if "k" in used and "repeats" in used:
-        return f"{scheme}, {details.get('k')} folds x {details.get('repeats')} repeat(s)"
+        return f"{scheme}, {k} folds x {repeats} repeat(s)", f"{scheme} {k}x{repeats}"
     if "k" in used:
-        return f"{scheme}, {details.get('k')} windows"
+        return f"{scheme}, {k} windows", f"{scheme} {k}"
     if "repeats" in used:
-        return f"{scheme}, {details.get('repeats')} repeat(s)"
-    return scheme
+        return f"{scheme}, {repeats} repeat(s)", f"{scheme} x{repeats}"
+    return scheme, scheme
 
 
-def _test_text(details: dict[str, Any]) -> str:
+def _test_text(details: dict[str, Any]) -> tuple[str, str]:
+    """The test split of the seal line, in words and in a few characters."""
     spec, counts = details.get("spec") or {}, details.get("counts") or {}
     fraction = spec.get("fraction")
-    share = f" {fraction:.0%}" if isinstance(fraction, int | float) else ""
-    return f"{spec.get('scheme')}{share}: {counts.get('test')} test / {counts.get('dev')} development rows"
+    scheme = f"{spec.get('scheme')}" + (f" {fraction:.0%}" if isinstance(fraction, int | float) else "")
+    return f"{scheme}: {counts.get('test')} test / {counts.get('dev')} development rows", scheme
 
 
 def _planned(exp: Path) -> tuple[Any, str]:
@@ -217,12 +223,13 @@ def summarize(exp: Path) -> Summary:
     seals = ledger.events(entries, "seal")
     if seals:
         out.data_sha256 = str(seals[0]["details"].get("data_sha256") or "")
-        out.test_scheme = _test_text(seals[0]["details"])
+        out.test_scheme, out.split = _test_text(seals[0]["details"])
+        out.seal_spec = dict(seals[0]["details"].get("spec") or {})
     with contextlib.suppress(OSError, ValueError, KeyError, TypeError):  # only a label; the fingerprint is above
         out.data_path = str(read_json(exp / MANIFEST)["data"]["path"])
     folds = ledger.events(entries, "assign_folds")
     if folds:
-        out.folds = _fold_text(folds[-1]["details"])
+        out.folds, out.folds_short = _fold_text(folds[-1]["details"])
     out.fits = fit_jobs(exp, entries)
     out.rounds = max((int(e["details"].get("round", 0)) for e in ledger.events(entries, "round")), default=0)
     tallies = ledger.events(entries, "tally")
