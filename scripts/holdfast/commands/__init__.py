@@ -11,7 +11,7 @@ from typing import Any
 
 def add_parsers(sub: Any) -> None:
     """Add every everyday command to the subcommand parser, in the order `holdfast --help` lists them."""
-    from . import listing, predict, status, timeline
+    from . import listing, predict, starter, status, timeline
 
-    for module in (status, predict, timeline, listing):
+    for module in (status, predict, starter, timeline, listing):
         module.add_parser(sub)
