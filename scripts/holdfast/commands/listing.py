@@ -75,6 +75,8 @@ def list_main(args: argparse.Namespace) -> int:
 
 def compare_main(args: argparse.Namespace) -> int:
     """Print the experiments as columns, one row per field, then what makes them not comparable."""
+    if len(args.experiments) < 2:
+        raise ConfigError("holdfast compare needs two or more experiment folders; for one, use holdfast status")
     folders = [experiment_folder(p) for p in args.experiments]
     summaries = [summarize(p) for p in folders]
     cells = [row(s) for s in summaries]
