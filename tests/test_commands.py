@@ -140,7 +140,7 @@ def test_status_of_an_opened_experiment_shows_the_files_numbers_and_writes_nothi
     choice, verdict = read(exp, "choice.json"), read(exp, "final/verdict.json")
     metric = choice["metric"]
     # 2 families x 3 stratified folds in the config (conftest.small_classification_config)
-    assert fields["fit jobs"][0].startswith("6 of 6 done (2 families x 3 folds")
+    assert fields["fit jobs"][0].startswith("6 of 6 done (2 family(ies) x 3 fold(s)")
     assert fields["rounds"] == [f"{choice['rounds']['count']} selection round(s), "
                                 f"{choice['rounds']['candidates_tried']} candidate(s) tried in all"]
     winner = choice["winner"]
@@ -183,7 +183,7 @@ def test_status_counts_planned_jobs_of_a_changed_config_and_a_failing_audit(fres
     dry = run_cli(fresh_copy, "run", "config.yaml", "-n")  # stores the checked config, runs nothing
     assert dry.returncode == 0, dry.stdout + dry.stderr
     fields = status_fields(run_cli(fresh_copy, "status", "results/diab").stdout)
-    assert fields["fit jobs"][0].startswith("6 of 9 done (3 families x 3 folds")
+    assert fields["fit jobs"][0].startswith("6 of 9 done (3 family(ies) x 3 fold(s)")
     # A changed choice.json: the audit fails, and no number of the edited file is shown.
     exp = fresh_copy / "results" / "diab"
     choice = read(exp, "choice.json")
@@ -314,6 +314,19 @@ def new_rows(exp: Path, n: int, extra: bool = True) -> pd.DataFrame:
     if extra:
         rows["comment"] = "unused"
     return rows[list(reversed(rows.columns))]
+
+
+def test_predict_reads_true_false_columns_with_blanks_and_names_other_values(tmp_path: Path) -> None:
+    from holdfast.commands.predict import NUMBERS, TEXT, TRUTH, check_columns
+    from holdfast.errors import DataError
+
+    (tmp_path / "n.csv").write_text("flag,size,kind\nTrue,1,x\n,2,y\nFalse,3,\n", encoding="utf-8")
+    frame = pd.read_csv(tmp_path / "n.csv", dtype={"kind": str})
+    x = check_columns(frame, {"flag": TRUTH, "size": NUMBERS, "kind": TEXT}, tmp_path / "n.csv")
+    assert x["flag"].tolist()[0::2] == [1.0, 0.0] and np.isnan(x["flag"].iloc[1])
+    frame["flag"] = ["yes", "no", "no"]
+    with pytest.raises(DataError, match=r"column 'flag' of .* holds other values \(e.g. 'yes' in data row 1\)"):
+        check_columns(frame, {"flag": TRUTH}, tmp_path / "n.csv")
 
 
 @pytest.mark.slow

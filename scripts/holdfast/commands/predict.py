@@ -107,6 +107,7 @@ def _first_bad(values: Any, ok: Any) -> str:
 
 def check_columns(frame: Any, kinds: dict[str, str], source: Path) -> Any:
     """The feature frame in the model's column order; DataError naming a missing column or one of the wrong kind."""
+    import numpy as np
     import pandas as pd
 
     missing = [c for c in kinds if c not in frame.columns]
@@ -128,10 +129,11 @@ def check_columns(frame: Any, kinds: dict[str, str], source: Path) -> Any:
                                 "numbers in it; fix those values or leave them blank")
         elif kind == TRUTH:
             if not pd.api.types.is_bool_dtype(values):
-                if numeric and set(values.dropna().unique()) <= {0, 1}:
-                    values = values.astype("float64")  # 0/1 are what true/false become inside the model
+                present = values.dropna()
+                if all(isinstance(v, bool | np.bool_) for v in present) or (numeric and set(present) <= {0, 1}):
+                    values = values.astype("float64")  # 1/0 are what true/false become inside the model; blanks NaN
                 else:
-                    where = _first_bad(values, lambda v: isinstance(v, bool))
+                    where = _first_bad(values, lambda v: isinstance(v, bool | np.bool_))
                     raise DataError(f"column '{name}' of '{source}' holds other values{where} but the model was "
                                     "trained on true/false values in it; write True or False")
         elif kind == TEXT:

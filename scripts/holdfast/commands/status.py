@@ -18,7 +18,7 @@ def _fit_line(s: Summary) -> str:
     fits = s.fits
     if fits.planned is None:
         return f"{fits.done} fit job(s) recorded; {fits.unknown}"
-    return (f"{fits.done} of {fits.planned} done ({fits.families} families x {fits.folds} folds, counting jobs "
+    return (f"{fits.done} of {fits.planned} done ({fits.families} family(ies) x {fits.folds} fold(s), counting jobs "
             "fitted on the current folds for the current candidates)")
 
 

@@ -76,7 +76,7 @@ def _what(entry: dict[str, Any], fits_done: int) -> str:
         text = str(entry.get("event"))
         if entry.get("event") == "fit":
             text += f" {details.get('family')} r{details.get('repeat')}f{details.get('fold')}"
-        elif entry.get("event") == "tally":
+        elif entry.get("event") in ("tally", "refit"):
             text += f": winner {details.get('winner')}"
     if scope != "main":
         text += f" [nested scope {scope}]"
