@@ -511,6 +511,8 @@ def test_init_bad_inputs_are_one_line_and_replace_nothing(tmp_path: Path) -> Non
     one_error_line(run_cli(tmp_path, "init", "ok.csv", "--target", "y", "-o", "mine.yaml"), 2,
                    "'mine.yaml' exists; holdfast init never replaces a file")
     assert (tmp_path / "mine.yaml").read_text(encoding="utf-8") == "keep: me\n"
+    one_error_line(run_cli(tmp_path, "init", "ok.csv", "--target", "y", "-o", "no/such/dir.yaml"), 2,
+                   "folder 'no/such' of 'no/such/dir.yaml' does not exist")
 
 
 def test_init_refuses_data_no_config_can_use(tmp_path: Path) -> None:

@@ -181,7 +181,8 @@ def _keys(frame: Any, id_column: str | None) -> tuple[str, Any, str]:
     return KEY, content_keys(frame), f"'{KEY}' made from each row's content ({why})"
 
 
-def test_status(exp: Path, entries: list[dict[str, Any]], model_sha: str, metric: str, unit: str | None) -> list[str]:
+def estimate_lines(exp: Path, entries: list[dict[str, Any]], model_sha: str, metric: str,
+                   unit: str | None) -> list[str]:
     """What is known of how this model does on new rows: the test estimate of its own opening, or why none exists."""
     from .. import openings
 
@@ -272,8 +273,8 @@ def predict(exp: Path, new_path: Path, out_path: Path) -> list[str]:
     if spec.get("task") == "classification" and not probabilities:
         lines.append(f"note: {candidate['estimator']} gives no class probabilities; only the predicted class is "
                      "written")
-    return lines + test_status(exp, entries, str(refit.get("model_sha256")), provenance["selected_by"]["metric"],
-                               target_unit_of(exp))
+    return lines + estimate_lines(exp, entries, str(refit.get("model_sha256")), provenance["selected_by"]["metric"],
+                                  target_unit_of(exp))
 
 
 def main(args: argparse.Namespace) -> int:

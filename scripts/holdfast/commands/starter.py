@@ -130,11 +130,15 @@ def _comment(line: str, why: str, column: int = 34) -> str:
     return f"{line.ljust(column)} # {why}" if why else line
 
 
-def experiment_name(data: Path, results: Path) -> str:
-    """A valid experiment name from the data file's name, not yet used under ``results``."""
+def base_name(data: Path) -> str:
+    """A valid experiment name made from the data file's name ('shipments' for data/shipments.csv)."""
     base = re.sub(r"[^A-Za-z0-9_.-]+", "-", data.stem).strip("-.") or "experiment"
-    base = base if re.match(r"[A-Za-z0-9_]", base) else f"x{base}"
-    base = base[:70]
+    return (base if re.match(r"[A-Za-z0-9_]", base) else f"x{base}")[:70]
+
+
+def experiment_name(data: Path, results: Path) -> str:
+    """The data file's name as an experiment name not yet used under ``results``."""
+    base = base_name(data)
     name, number = base, 1
     while (results / name).exists():
         number += 1
@@ -383,9 +387,11 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
 def main(args: argparse.Namespace) -> int:
     """Write the starter config, refusing to replace an existing file."""
     data = Path(args.data)
-    out = Path(args.output) if args.output else Path(f"{experiment_name(data, Path('/nonexistent'))}.yaml")
+    out = Path(args.output) if args.output else Path(f"{base_name(data)}.yaml")
     if out.exists():
         raise ConfigError(f"'{out}' exists; holdfast init never replaces a file: choose another name with -o")
+    if not out.parent.is_dir():
+        raise ConfigError(f"folder '{out.parent}' of '{out}' does not exist; create it or choose another -o")
     text, said = starter(data, args.target, out)
     try:
         with open(out, "x", encoding="utf-8") as handle:  # "x": fails rather than replace a file made meanwhile
