@@ -227,6 +227,8 @@ def test_log_is_one_line_per_entry_naming_files_read_and_written(bc_finished: Pa
         d = entry["details"]
         if entry["event"] == "fit":
             f = f"r{d['repeat']}f{d['fold']}.parquet"
+            best = d["best"]
+            assert f"best on this fold {display.named(best['metric'], best['score'])} ({best['candidate']})" in line
             assert f"read folds.parquet ({d['folds_sha256'][:8]})" in line
             assert (f"wrote fits/{d['family']}/{f} ({d['fits_sha256'][:8]}), oof/{d['family']}/{f} "
                     f"({d['oof_sha256'][:8]})") in line
@@ -243,6 +245,18 @@ def test_log_is_one_line_per_entry_naming_files_read_and_written(bc_finished: Pa
     for entry in entries:
         assert f'hash: "{entry["hash"]}"' in every.stdout
         assert f'prev: "{entry["prev"]}"' in every.stdout
+
+
+def test_a_fit_line_written_before_best_scores_were_recorded_is_not_called_failed() -> None:
+    from holdfast.commands.timeline import line
+    from holdfast.progress import Tracker
+
+    entry = {"seq": 3, "time": "2026-01-02T03:04:05.000001Z", "event": "fit",
+             "details": {"scope": "main", "family": "tree", "repeat": 0, "fold": 1, "candidates": 2, "failed": 0,
+                         "folds_sha256": "a" * 64, "fits_sha256": "b" * 64, "oof_sha256": "c" * 64}}
+    assert line(entry, Tracker()) == (
+        "   3  2026-01-02 03:04:05 UTC  fit              fit tree r0f1: 2 candidate(s), 0 failed | read "
+        "folds.parquet (aaaaaaaa) | wrote fits/tree/r0f1.parquet (bbbbbbbb), oof/tree/r0f1.parquet (cccccccc)")
 
 
 @pytest.mark.slow

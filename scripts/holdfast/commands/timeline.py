@@ -15,7 +15,7 @@ from typing import Any
 
 from .. import ledger
 from ..layout import LEDGER, MANIFEST
-from ..progress import describe
+from ..progress import Tracker, describe
 from ..recorded import RECORDED, file_of
 from ._common import experiment_folder, short, when
 
@@ -68,10 +68,16 @@ def files_of(entry: dict[str, Any], data_path: str = "data file") -> dict[str, d
     return out
 
 
-def _what(entry: dict[str, Any], fits_done: int) -> str:
+def _what(entry: dict[str, Any], tracker: Tracker) -> str:
     details = entry.get("details") if isinstance(entry.get("details"), dict) else {}
     scope = details.get("scope", "main")
-    text = describe(entry, fits_done, None)
+    if entry.get("event") == "fit" and "best" not in details:
+        # Fit lines written before holdfast recorded each job's best score: progress.describe would read the
+        # missing score as "every candidate failed".
+        text = (f"fit {details.get('family')} r{details.get('repeat')}f{details.get('fold')}: "
+                f"{details.get('candidates')} candidate(s), {details.get('failed', 0)} failed")
+    else:
+        text = describe(entry, tracker)
     if text is None:
         text = str(entry.get("event"))
         if entry.get("event") == "fit":
@@ -83,13 +89,13 @@ def _what(entry: dict[str, Any], fits_done: int) -> str:
     return text
 
 
-def line(entry: dict[str, Any], fits_done: int = 0, data_path: str = "data file") -> str:
-    """One readable line for one ledger entry."""
-    parts = [_what(entry, fits_done)]
+def line(entry: dict[str, Any], tracker: Tracker, data_path: str = "data file") -> str:
+    """One readable line for one ledger entry (``tracker`` carries the fit jobs seen so far, as in a run's lines)."""
+    parts = [_what(entry, tracker)]
     for verb, found in files_of(entry, data_path).items():
         if found:
             parts.append(f"{verb} " + ", ".join(f"{' + '.join(names)} ({sha})" for sha, names in found.items()))
-    return f"{entry.get('seq', '?'):>4}  {when(entry.get('time'))}  {entry.get('event', '?'):<15}  " + "; ".join(parts)
+    return f"{entry.get('seq', '?'):>4}  {when(entry.get('time'))}  {entry.get('event', '?'):<15}  " + " | ".join(parts)
 
 
 def _flat(value: Any, prefix: str) -> list[str]:
@@ -113,11 +119,9 @@ def timeline(exp: Path, every_field: bool = False) -> list[str]:
     state = "chain intact" if not problems else f"chain BROKEN ({len(problems)} problem(s))"
     out = [f"ledger of '{exp}': {len(entries)} entries, {state}; times in UTC, hashes shortened to sha256 prefixes"]
     out += [f"  - {p}" for p in problems]
-    fits_done = 0
+    tracker = Tracker()
     for entry in entries:
-        if entry.get("event") == "fit" and (entry.get("details") or {}).get("scope", "main") == "main":
-            fits_done += 1
-        out.append(line(entry, fits_done, data_path))
+        out.append(line(entry, tracker, data_path))
         if every_field:
             out += [f"        {text}" for text in _flat(entry, "")]
     return out
