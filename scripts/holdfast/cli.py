@@ -374,6 +374,9 @@ def build_parser() -> argparse.ArgumentParser:
     p_check.add_argument("configfile", nargs="?", default="config/config.yaml")
     p_check.add_argument("--results", default="results", help="results folder (default: results)")
     p_check.set_defaults(func=_check, takes_extra=False)
+    from .commands import add_parsers
+
+    add_parsers(sub)  # status, predict, init, log, list, compare (holdfast/commands/)
     return parser
 
 

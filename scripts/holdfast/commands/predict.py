@@ -1,0 +1,295 @@
+"""`holdfast predict results/<experiment> NEW.csv -o predictions.csv`: use the refit winner on new rows.
+
+The model is loaded only through the trusted loader, with the sha256 and the exact types the ledger's refit
+line recorded. The new file must hold every feature the model was trained on (model/provenance.json names
+them) with the kind of values the development set had (numbers, text or true/false, read from dev.parquet's
+schema without loading rows); other columns are ignored with a note. The output holds the id column (or a
+row key made from each row's content), the prediction and, for classifiers, one proba_<class> column per
+class. Whether an honest estimate of how the predictions will do exists is said plainly: only an opening of
+the sealed test set for this very model gives one.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import hashlib
+import json
+from pathlib import Path
+from typing import Any
+
+from .. import display, ledger
+from .._io import sha256_file, write_atomic
+from ..errors import ConfigError, DataError, ModelFileError
+from ..layout import DEV, LEDGER, MODEL, PROVENANCE, VERDICT
+from ._common import experiment_folder, short, when
+
+NUMBERS, TEXT, TRUTH = "numbers", "text", "true/false values"
+NEVER_OPENED = ("the test set of this experiment was never opened: no honest estimate of how these predictions "
+                "will do exists yet")
+OUTPUT_SUFFIXES = (".csv", ".parquet")
+
+
+def _say(line: str) -> None:
+    print(f"holdfast: {line}", flush=True)
+
+
+def trained_kinds(dev_path: Path, features: list[str]) -> dict[str, str]:
+    """Each feature's kind of values in the development set (numbers, text, true/false), from the Parquet schema."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    schema = pq.read_schema(dev_path)
+    kinds = {}
+    for name in features:
+        kind = schema.field(name).type
+        if pa.types.is_dictionary(kind):
+            kind = kind.value_type
+        if pa.types.is_boolean(kind):
+            kinds[name] = TRUTH
+        elif pa.types.is_integer(kind) or pa.types.is_floating(kind) or pa.types.is_decimal(kind):
+            kinds[name] = NUMBERS
+        elif pa.types.is_string(kind) or pa.types.is_large_string(kind):
+            kinds[name] = TEXT
+        else:
+            kinds[name] = str(kind)
+    return kinds
+
+
+def _csv_header(path: Path) -> list[str]:
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as handle:
+            header = next(csv.reader(handle), [])
+    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+        raise DataError(f"file '{path}' cannot be read as UTF-8 CSV ({type(exc).__name__}); save it as "
+                        "comma-separated UTF-8 text or as Parquet") from exc
+    repeated = sorted({name for name in header if header.count(name) > 1})
+    if repeated:
+        raise DataError(f"file '{path}' repeats column name '{repeated[0]}'; give every column a unique name")
+    return header
+
+
+def read_new(path: Path, kinds: dict[str, str]) -> Any:
+    """The new rows; a CSV's columns the model read as text are read as text whatever their values look like."""
+    import pandas as pd
+
+    if not path.is_file():
+        raise DataError(f"file of new rows '{path}' does not exist; pass a CSV or Parquet file with the model's "
+                        "feature columns")
+    suffix = path.suffix.lower()
+    if suffix not in (".csv", ".txt", ".parquet", ".pq"):
+        raise DataError(f"file of new rows '{path}' has suffix '{suffix}'; use a .csv or .parquet file")
+    try:
+        if suffix in (".parquet", ".pq"):
+            frame = pd.read_parquet(path)
+        else:
+            header = _csv_header(path)
+            frame = pd.read_csv(path, encoding="utf-8-sig",
+                                dtype={c: str for c in header if kinds.get(c) == TEXT})
+    except DataError:
+        raise
+    except Exception as exc:  # pandas and pyarrow raise many kinds for unreadable files
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        raise DataError(f"file of new rows '{path}' could not be read ({type(exc).__name__}: {first}); check its "
+                        "format") from exc
+    if len(frame) == 0:
+        raise DataError(f"file of new rows '{path}' has no rows; nothing to predict")
+    return frame
+
+
+def _first_bad(values: Any, ok: Any) -> str:
+    """' (e.g. 'abc' in data row 3)' for the first present value that ``ok`` refuses ('' when none is found)."""
+    for position, value in enumerate(values):
+        if value is not None and value == value and not ok(value):  # value == value: not NaN
+            return f" (e.g. {value!r} in data row {position + 1})"
+    return ""
+
+
+def check_columns(frame: Any, kinds: dict[str, str], source: Path) -> Any:
+    """The feature frame in the model's column order; DataError naming a missing column or one of the wrong kind."""
+    import numpy as np
+    import pandas as pd
+
+    missing = [c for c in kinds if c not in frame.columns]
+    if missing:
+        shown = ", ".join(f"'{c}'" for c in missing[:5]) + (f" and {len(missing) - 5} more" if len(missing) > 5 else "")
+        raise DataError(f"file of new rows '{source}' lacks feature column(s) {shown} that the model was trained on; "
+                        "add them (blank values are allowed where a value is unknown)")
+    out = {}
+    for name, kind in kinds.items():
+        values = frame[name]
+        numeric = pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values)
+        if kind == NUMBERS:
+            if pd.api.types.is_bool_dtype(values):
+                raise DataError(f"column '{name}' of '{source}' holds true/false values but the model was trained on "
+                                "numbers in it; write numbers")
+            if not numeric:
+                where = _first_bad(values, lambda v: not isinstance(v, str) or _is_number(v))
+                raise DataError(f"column '{name}' of '{source}' holds text{where} but the model was trained on "
+                                "numbers in it; fix those values or leave them blank")
+        elif kind == TRUTH:
+            if not pd.api.types.is_bool_dtype(values):
+                present = values.dropna()
+                if all(isinstance(v, bool | np.bool_) for v in present) or (numeric and set(present) <= {0, 1}):
+                    values = values.astype("float64")  # 1/0 are what true/false become inside the model; blanks NaN
+                else:
+                    where = _first_bad(values, lambda v: isinstance(v, bool | np.bool_))
+                    raise DataError(f"column '{name}' of '{source}' holds other values{where} but the model was "
+                                    "trained on true/false values in it; write True or False")
+        elif kind == TEXT:
+            if numeric or pd.api.types.is_bool_dtype(values):
+                raise DataError(f"column '{name}' of '{source}' holds {values.dtype} values but the model was trained "
+                                "on text in it; store the column as text")
+        else:
+            import pyarrow as pa
+
+            actual = pa.Schema.from_pandas(frame[[name]], preserve_index=False).field(name).type
+            if str(actual) != kind:
+                raise DataError(f"column '{name}' of '{source}' holds {actual} values but the model was trained on "
+                                f"{kind} values in it; give the column that type (a Parquet file keeps it)")
+        out[name] = values
+    return pd.DataFrame(out, index=frame.index)
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
+def _read_recorded(path: Path, sha: Any, what: str) -> bytes:
+    """A file's bytes, only when they are what the ledger's refit line recorded."""
+    if not path.exists():
+        raise ModelFileError(f"'{path}' is missing; the {what} the ledger recorded at the refit is needed: run "
+                             "'holdfast audit' on the experiment")
+    data = path.read_bytes()
+    if hashlib.sha256(data).hexdigest() != sha:
+        raise ModelFileError(f"'{path}' is not the {what} the ledger's refit line recorded (sha256 differs); run "
+                             "'holdfast audit' on the experiment")
+    return data
+
+
+def _keys(frame: Any, id_column: str | None) -> tuple[str, Any, str]:
+    """The output's key column: the experiment's id column when the new file has it, else a content row key."""
+    from ..dataset import KEY, content_keys
+
+    if id_column and id_column in frame.columns:
+        return id_column, frame[id_column], f"id column '{id_column}'"
+    why = f"the id column '{id_column}' is not in the file" if id_column else "the experiment names no id column"
+    return KEY, content_keys(frame), f"'{KEY}' made from each row's content ({why})"
+
+
+def estimate_lines(exp: Path, entries: list[dict[str, Any]], model_sha: str, metric: str,
+                   unit: str | None) -> list[str]:
+    """What is known of how this model does on new rows: the test estimate of its own opening, or why none exists."""
+    from .. import openings
+
+    started = openings.records(exp).count
+    finished = ledger.events(entries, "open_test")
+    if not started:
+        return [NEVER_OPENED, "(the CV estimate is not such an estimate: it chose the model, so it is optimistic; "
+                              f"'holdfast open {exp}' is the one look at the sealed test set)"]
+    mine = [e for e in finished if e["details"].get("model_sha256") == model_sha]
+    if not mine:
+        if finished:
+            other = finished[-1]["details"]
+            return [f"the test set of this experiment was opened for another model ({other.get('winner')}, model file "
+                    f"sha256 {short(other.get('model_sha256'))}), not this one: no honest estimate of how these "
+                    "predictions will do exists yet"]
+        return ["an opening of the test set was recorded but never finished: no honest estimate of how these "
+                "predictions will do exists yet"]
+    last = mine[-1]
+    verdict_path = exp / VERDICT
+    if not verdict_path.exists() or sha256_file(verdict_path) != last["details"].get("verdict_sha256"):
+        return [f"the test set was opened for this model at {when(last['time'])}, but '{verdict_path}' is not the "
+                "verdict that opening wrote; run 'holdfast audit' on the experiment"]
+    verdict = json.loads(verdict_path.read_text(encoding="utf-8"))
+    block = verdict["metrics"][metric]
+    if block.get("test") is None:
+        shown = f"test {display.label(metric)} {block.get('undefined', 'undefined')}"
+    else:
+        shown = (f"test {display.named(metric, block['test'], unit)}, {block['level']:.0%} interval "
+                 f"{display.interval(metric, *block['interval'], unit)}")
+    line = (f"the test set was opened for this model at {when(last['time'])}: {shown} on {verdict.get('test_rows')} "
+            "sealed rows, an estimate for rows like the development data")
+    if verdict.get("compromised"):
+        line += f"; {verdict['test_set_opened']}: the test estimate is compromised"
+    return [line]
+
+
+def predict(exp: Path, new_path: Path, out_path: Path) -> list[str]:
+    """Write the predictions of the experiment's refit winner for the rows of ``new_path``; return what to say."""
+    if out_path.suffix.lower() not in OUTPUT_SUFFIXES:
+        raise ConfigError(f"output '{out_path}' has suffix '{out_path.suffix}'; name a .csv or .parquet file with -o")
+    if out_path.exists():
+        raise ConfigError(f"output '{out_path}' exists; choose another name with -o or remove it (predict never "
+                          "overwrites a file)")
+    entries = ledger.read(exp / LEDGER)
+    refits = ledger.events(entries, "refit")
+    if not refits:
+        raise ModelFileError(f"experiment '{exp}' has no refit winner (no refit line in its ledger); run 'holdfast run "
+                             "CONFIG' first")
+    refit = refits[-1]["details"]
+    provenance = json.loads(_read_recorded(exp / PROVENANCE, refit.get("provenance_sha256"), "provenance record"))
+    features = list(provenance["trained_on"]["features"])
+    _read_recorded(exp / DEV, refit.get("dev_sha256"), "development set")  # the schema read next is the right one
+    kinds = trained_kinds(exp / DEV, features)
+    frame = read_new(new_path, kinds)
+    x = check_columns(frame, kinds, new_path)
+    seals = ledger.events(entries, "seal")
+    spec = (seals[0]["details"].get("spec") or {}) if seals else {}
+    key_name, keys, key_text = _keys(frame, spec.get("id"))
+
+    from ..closing import target_unit_of
+    from ..refit import load_model
+
+    model = load_model(str(exp / MODEL), refit.get("model_sha256"), refit.get("model_types"))
+    import pandas as pd
+
+    out = pd.DataFrame({key_name: keys.to_numpy(), "prediction": model.predict(x)})
+    probabilities = spec.get("task") == "classification" and hasattr(model, "predict_proba")
+    if probabilities:
+        proba = model.predict_proba(x)
+        for i, label in enumerate(model.classes_):
+            out[f"proba_{label}"] = proba[:, i]
+
+    def write(tmp: str) -> None:
+        if out_path.suffix.lower() == ".parquet":
+            out.to_parquet(tmp, index=False, engine="pyarrow")
+        else:
+            out.to_csv(tmp, index=False)
+
+    write_atomic(out_path, write)
+    candidate = provenance["candidate"]
+    lines = [f"wrote {len(out)} prediction(s) of model {candidate['family']} {candidate['id']} (refit on "
+             f"{provenance['trained_on']['rows']} development rows) to {out_path}: {key_text}, prediction"
+             + (", " + ", ".join(c for c in out.columns if c.startswith("proba_")) if probabilities else "")]
+    extra = [c for c in frame.columns if c not in kinds and c != key_name]
+    if extra:
+        shown = ", ".join(f"'{c}'" for c in extra[:8]) + (f" and {len(extra) - 8} more" if len(extra) > 8 else "")
+        lines.append(f"note: ignored column(s) the model does not use: {shown}")
+    if spec.get("task") == "classification" and not probabilities:
+        lines.append(f"note: {candidate['estimator']} gives no class probabilities; only the predicted class is "
+                     "written")
+    return lines + estimate_lines(exp, entries, str(refit.get("model_sha256")), provenance["selected_by"]["metric"],
+                                  target_unit_of(exp))
+
+
+def main(args: argparse.Namespace) -> int:
+    """Predict and say what the predictions rest on."""
+    for line in predict(experiment_folder(args.experiment_dir), Path(args.new), Path(args.output)):
+        _say(line)
+    return 0
+
+
+def add_parser(sub: Any) -> None:
+    """Register `holdfast predict`."""
+    p = sub.add_parser("predict", help="predict new rows with the refit winner (loaded through the trusted loader)",
+                       description=__doc__.split("\n\n")[1])
+    p.add_argument("experiment_dir", help="results/<experiment>")
+    p.add_argument("new", metavar="NEW", help="CSV or Parquet file of new rows with the model's feature columns")
+    p.add_argument("-o", "--output", required=True, help="where to write the predictions (.csv or .parquet); an "
+                   "existing file is never overwritten")
+    p.set_defaults(func=main, takes_extra=False)
