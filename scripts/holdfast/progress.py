@@ -38,8 +38,10 @@ class Tracker:
             if self.best is None or best["score"] > self.best["score"]:
                 self.best = best
             text += f"; best fold score so far {display.number(metric, self.best['score'])}"
-        else:
+        elif details.get("candidates") and details.get("failed") == details.get("candidates"):
             text += " every candidate failed"
+        else:
+            text += f" {details.get('candidates')} candidate(s) fitted"  # a ledger line older than 'best'
         if details.get("failed"):
             text += f"; {details['failed']} candidate(s) failed"
         if self.fits_total is not None and self.fits_total >= self.fits_done:
