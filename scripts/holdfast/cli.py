@@ -1,4 +1,4 @@
-"""The ``holdfast`` command: run the development loop, open the sealed test set once, audit it, and the everyday
+"""The holdfast command: run the development loop, open the sealed test set once, audit it, and the everyday
 commands around it (status, predict, init, log, list, compare, check)."""
 
 from __future__ import annotations
