@@ -374,6 +374,9 @@ def build_parser() -> argparse.ArgumentParser:
     p_check.add_argument("configfile", nargs="?", default="config/config.yaml")
     p_check.add_argument("--results", default="results", help="results folder (default: results)")
     p_check.set_defaults(func=_check, takes_extra=False)
+    from .preflight import add_command
+
+    add_command(sub)
     return parser
 
 
