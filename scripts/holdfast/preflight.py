@@ -170,17 +170,51 @@ def _pairs(value: Any, key: str, source: Path) -> dict[str, str]:
                       "NAME=VALUE")
 
 
+PROFILE_FILE = re.compile(r"(?:profile|config)(?:\.v(\d+)\+)?\.yaml")
+
+
+def _profile_file(folder: Path) -> Path | None:
+    """The file Snakemake reads in a profile folder: (profile|config)[.vN+].yaml with the highest N it runs."""
+    from importlib.metadata import version
+
+    major = int(version("snakemake").split(".")[0])
+    found = []
+    for path in sorted(folder.iterdir()):
+        match = PROFILE_FILE.fullmatch(path.name)
+        if match and path.is_file() and int(match.group(1) or 0) <= major:
+            found.append((int(match.group(1) or 0), path))
+    return max(found, key=lambda item: item[0])[1] if found else None
+
+
+def find_profile(name: str) -> Path | None:
+    """Where Snakemake's --profile NAME finds its YAML: a file, a folder, or a folder of that name in the
+    current folder, ~/.config/snakemake or /etc/xdg/snakemake (Snakemake's own search, without importing it:
+    importing Snakemake's command line loads every executor plugin)."""
+    given = Path(name).expanduser()
+    if given.is_file():
+        return given
+    if given.exists():
+        return _profile_file(given) if given.is_dir() else None
+    config_home = Path(os.environ.get("XDG_CONFIG_HOME") or Path.home() / ".config")
+    for base in (Path.cwd(), config_home / "snakemake", Path("/etc/xdg/snakemake")):
+        candidate = base / name
+        if candidate.is_file():
+            return candidate
+        if candidate.is_dir():
+            found = _profile_file(candidate)
+            if found is not None:
+                return found
+    return None
+
+
 def read_profile(name: str) -> Profile:
     """Find the profile's YAML as Snakemake does (a folder's config.yaml, or a file) and read it as plain data."""
-    from snakemake.cli import get_profile_dir
-
     from .config import parse_yaml
 
-    found = get_profile_dir(name)
-    if found is None:
+    path = find_profile(name)
+    if path is None:
         raise ConfigError(f"profile '{name}' has no config.yaml (nor profile.yaml); pass the folder that holds "
                           "the profile's config.yaml, e.g. workflow/profiles/slurm")
-    path = found[1]
     data = parse_yaml(path.read_text(encoding="utf-8"), str(path))
     if not isinstance(data, dict):
         raise ConfigError(f"profile '{path}' is not a mapping of Snakemake options; write 'option: value' lines")
