@@ -55,6 +55,30 @@ def test_a_resource_entry_without_a_value_is_refused(tmp_path: Path) -> None:
         preflight.read_profile(str(tmp_path)).pairs("default-resources")
 
 
+@pytest.mark.parametrize(("resources", "sizes"), [
+    ({"runtime": 30, "mem_mb": 1000}, (30, 1000)),
+    ({"runtime": "1h", "mem": "2GB"}, (60, 2000)),  # Snakemake's human-friendly sizes, as the plugin gets them
+    ({"slurm_partition": "debug"}, (None, None)),  # the rules' own runtime and memory apply
+])
+def test_default_sizes_read_as_snakemake_reads_them(tmp_path: Path, resources: dict, sizes: tuple) -> None:
+    profile = preflight.Profile(tmp_path / "config.yaml", {"executor": "slurm", "default-resources": resources})
+    assert preflight.default_sizes(profile) == sizes
+
+
+def test_unreadable_runtime_is_refused(tmp_path: Path) -> None:
+    profile = preflight.Profile(tmp_path / "config.yaml", {"default-resources": {"runtime": "soon"}})
+    with pytest.raises(ConfigError, match=r"default-resources runtime or mem is not a size Snakemake reads"):
+        preflight.default_sizes(profile)
+
+
+def test_each_partition_of_a_list_is_checked(tmp_path: Path) -> None:
+    profile = preflight.Profile(tmp_path / "config.yaml", {
+        "default-resources": {"slurm_partition": "short,long"},
+        "set-resources": {"fit_family": {"slurm_partition": "long"}}})
+    assert preflight.resource_values(profile, "slurm_partition") == {
+        "short": ["default-resources"], "long": ["default-resources", "set-resources: fit_family"]}
+
+
 @pytest.mark.parametrize(("usage", "path_python"), [
     (None, False),  # Snakemake's default: the software is on a shared file system
     (["persistence", "software-deployment"], False),

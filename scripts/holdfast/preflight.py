@@ -6,8 +6,9 @@ first submission, and a job whose environment lacks holdfast fails minutes later
 node. This module asks the cluster the same questions first, in seconds: do ``sbatch``, ``squeue`` and
 ``sinfo`` answer, can the plugin learn job states (``sacct``, or ``squeue`` with a long enough MinJobAge),
 are the profile's partition and account accepted, and does one tiny probe job write under the results
-folder and import holdfast and Snakemake with the ``python`` on its PATH. Each problem is one line with its
-fix; the summary line says whether the cluster is ready.
+folder and import holdfast and Snakemake with the Python that jobs run (the submitting interpreter, or the
+``python`` on the job's PATH when the profile keeps software off the shared file system). Each problem is one
+line with its fix; the summary line says whether the cluster is ready.
 
 Only the standard library is imported at module level (the CLI imports this module to list the command).
 """
@@ -349,15 +350,16 @@ def _check_job_states(profile: Profile, found: Findings) -> None:
     found.ok(f"job states: the plugin asks {used} (MinJobAge {age_text}, first check after {init} s{extra})")
 
 
-def _named(profile: Profile, resource: str) -> dict[str, list[str]]:
+def resource_values(profile: Profile, resource: str) -> dict[str, list[str]]:
     """Each value of a resource in the profile -> where it is set (default-resources, set-resources: RULE)."""
     where: dict[str, list[str]] = {}
-    default = profile.pairs("default-resources").get(resource)
-    if default:
-        where.setdefault(default, []).append("default-resources")
-    for rule, resources in profile.rule_resources().items():
-        if resources.get(resource):
-            where.setdefault(resources[resource], []).append(f"set-resources: {rule}")
+    places = [("default-resources", profile.pairs("default-resources"))]
+    places += [(f"set-resources: {rule}", resources) for rule, resources in profile.rule_resources().items()]
+    for place, resources in places:
+        # SLURM takes a comma-separated list of partitions (the first that can start the job runs it)
+        for value in re.split(r"[,\s]+", resources.get(resource, "")):
+            if value:
+                where.setdefault(value, []).append(place)
     return where
 
 
@@ -368,7 +370,8 @@ def _in_service(state: str) -> bool:
 
 def _check_partitions(profile: Profile, cluster: Cluster, found: Findings) -> bool:
     """Each partition the profile names (or else the cluster's default) exists, is up and has a node in service."""
-    named = {p: f"{'; '.join(where)}: slurm_partition" for p, where in _named(profile, "slurm_partition").items()}
+    values = resource_values(profile, "slurm_partition")
+    named = {p: f"{'; '.join(where)}: slurm_partition" for p, where in values.items()}
     listed = ", ".join(cluster.partitions) or "none"
     if not named:
         if cluster.default_partition is None:
@@ -398,7 +401,7 @@ def _check_partitions(profile: Profile, cluster: Cluster, found: Findings) -> bo
 
 def _check_accounts(profile: Profile, found: Findings) -> bool:
     """Check each account as the plugin does: sacctmgr's list for this user, else sshare's."""
-    named = _named(profile, "slurm_account")
+    named = resource_values(profile, "slurm_account")
     if not named:
         found.ok("account: none set, SLURM charges your default account")
         return True
@@ -437,16 +440,36 @@ def _request(profile: Profile) -> list[str]:
     return options
 
 
-def _check_test_submission(profile: Profile, env: dict[str, str], found: Findings) -> bool:
+def default_sizes(profile: Profile) -> tuple[int | None, int | None]:
+    """The default runtime (minutes) and memory (MB) as Snakemake reads them ('1h', '2GB' included), or None."""
+    from snakemake.resources import Resource
+    from snakemake_interface_common.exceptions import WorkflowError
+
     resources = profile.pairs("default-resources")
-    runtime, mem = resources.get("runtime", "30"), resources.get("mem_mb", "1000")
-    test = _ask(["sbatch", "--test-only", "--job-name=holdfast-preflight", *_request(profile), f"--time={runtime}",
-                 f"--mem={mem}", "--wrap=true"], env=env)
+    try:
+        runtime = Resource.parse_human_friendly("runtime", resources["runtime"]) if "runtime" in resources else None
+        if "mem_mb" in resources:
+            mem = Resource.parse_human_friendly("mem_mb", resources["mem_mb"])
+        else:
+            mem = Resource.parse_human_friendly("mem", resources["mem"]) if "mem" in resources else None
+        return (None if runtime is None else int(runtime)), (None if mem is None else int(mem))
+    except (WorkflowError, ValueError, TypeError) as exc:
+        raise ConfigError(f"profile '{profile.path}': default-resources runtime or mem is not a size Snakemake "
+                          f"reads ({exc}); write minutes and MB (runtime: 30, mem_mb: 1000) or '1h', '2GB'") from exc
+
+
+def _check_test_submission(profile: Profile, env: dict[str, str], found: Findings) -> bool:
+    runtime, mem = default_sizes(profile)
+    options = [f"--time={runtime}"] if runtime else []
+    options += [f"--mem={mem}"] if mem else []
+    test = _ask(["sbatch", "--test-only", "--job-name=holdfast-preflight", *_request(profile), *options,
+                 "--wrap=true"], env=env)
+    size = " and ".join(filter(None, [runtime and f"{runtime} min", mem and f"{mem} MB"])) or "the default size"
     if not test.fine:
-        found.problem(f"sbatch --test-only refuses a job with the profile's default-resources (runtime {runtime} min, "
-                      f"mem_mb {mem}): {test.why()}; change those default-resources")
+        found.problem(f"sbatch --test-only refuses a job of {size} with the profile's default-resources: "
+                      f"{test.why()}; change those default-resources")
         return False
-    found.ok(f"sbatch --test-only accepts a job of {runtime} min and {mem} MB")
+    found.ok(f"sbatch --test-only accepts a job of {size}")
     return True
 
 
@@ -510,20 +533,8 @@ def _check_probe(profile: Profile, results: Path, timeout: float, env: dict[str,
         shutil.rmtree(folder, ignore_errors=True)
 
 
-def _probe(profile: Profile, folder: Path, timeout: float, env: dict[str, str], found: Findings,
-           results: Path) -> None:
-    resources = profile.pairs("default-resources")
-    mem = resources.get("mem_mb", str(PROBE_MEM_MB))
-    submitted = _ask(["sbatch", "--parsable", "--job-name=holdfast-preflight", *_request(profile),
-                      f"--time={PROBE_MINUTES}", f"--mem={mem}", f"--output={folder}/slurm-%j.out",
-                      f"--chdir={Path.cwd()}", "--export=ALL"], stdin=probe_script(folder), env=env)
-    jobid = submitted.out.strip().split(";")[0]
-    if not submitted.fine or not jobid.isdigit():
-        found.problem(f"sbatch cannot submit the probe job ({submitted.why()}); fix the profile's "
-                      "default-resources (slurm_partition, slurm_account, mem_mb)")
-        return
-    start = time.monotonic()
-    latency = profile.number("latency-wait", LATENCY_DEFAULT)
+def _wait(jobid: str, folder: Path, deadline: float, latency: float) -> tuple[str, str, bool]:
+    """Wait for the probe's last file, or its end plus ``latency`` s; its last state, reason and whether it ended."""
     state, reason, ended_at = "PENDING", "", None
     while not (folder / "done").exists():
         now = time.monotonic()
@@ -534,13 +545,35 @@ def _probe(profile: Profile, folder: Path, timeout: float, env: dict[str, str], 
             ended_at = now  # ended (or gone from squeue): give a shared file system latency-wait to show files
         if ended_at is not None and now - ended_at > latency:
             break
-        if now - start > timeout:
-            _ask(["scancel", jobid])
-            waiting = f"still {state}" + (f" (reason: {reason})" if reason and reason != "None" else "")
-            found.problem(f"probe job {jobid} is {waiting} after {timeout:g} s and was cancelled; run preflight "
-                          "again when the queue is shorter, or give it longer with --timeout SECONDS")
-            return
+        if now > deadline:
+            return state, reason, False
         time.sleep(1.0)
+    return state, reason, True
+
+
+def _probe(profile: Profile, folder: Path, timeout: float, env: dict[str, str], found: Findings,
+           results: Path) -> None:
+    mem = default_sizes(profile)[1] or PROBE_MEM_MB
+    submitted = _ask(["sbatch", "--parsable", "--job-name=holdfast-preflight", *_request(profile),
+                      f"--time={PROBE_MINUTES}", f"--mem={mem}", f"--output={folder}/slurm-%j.out",
+                      f"--chdir={Path.cwd()}", "--export=ALL"], stdin=probe_script(folder), env=env)
+    jobid = submitted.out.strip().split(";")[0]
+    if not submitted.fine or not jobid.isdigit():
+        found.problem(f"sbatch cannot submit the probe job ({submitted.why()}); fix the profile's "
+                      "default-resources (slurm_partition, slurm_account, mem_mb)")
+        return
+    start = time.monotonic()
+    try:
+        state, reason, ended = _wait(jobid, folder, start + timeout, profile.number("latency-wait", LATENCY_DEFAULT))
+    except BaseException:  # interrupted: the probe must not run on after preflight is gone
+        _ask(["scancel", jobid])
+        raise
+    if not ended:
+        _ask(["scancel", jobid])
+        waiting = f"still {state}" + (f" (reason: {reason})" if reason and reason != "None" else "")
+        found.problem(f"probe job {jobid} is {waiting} after {timeout:g} s and was cancelled; run preflight "
+                      "again when the queue is shorter, or give it longer with --timeout SECONDS")
+        return
     seconds = time.monotonic() - start
     said = _last_line(_read(folder / f"slurm-{jobid}.out"))
     said = f" (the job said: {said})" if said else ""
@@ -625,6 +658,10 @@ def preflight(profile_name: str, results: str = "results", timeout: float = 300.
               say: Callable[[str], None] = print) -> Findings:
     """Run every check against ``profile_name`` (a profile folder or file); print each finding as it comes."""
     profile = read_profile(profile_name)
+    default_sizes(profile)  # settings it cannot read stop it here, before any check
+    for key, default in (("latency-wait", LATENCY_DEFAULT),
+                         ("slurm-init-seconds-before-status-checks", PLUGIN_INIT_DEFAULT)):
+        profile.number(key, default)
     found = Findings(say)
     say(f"holdfast: preflight of profile '{profile.path}' (results folder '{results}')")
     if not _check_profile(profile, found):
@@ -658,9 +695,10 @@ def command(args: argparse.Namespace) -> int:
 def add_command(sub: Any) -> None:
     """Register ``holdfast preflight`` on the CLI's subcommands."""
     p = sub.add_parser("preflight", help="before a cluster run: check SLURM, the profile and one probe job",
-                       description="Check that SLURM answers, that the profile's partition and account are accepted, "
-                       "and that one probe job can write under the results folder and import holdfast from the "
-                       "python on its PATH. One line per problem, with its fix; exit 0 when all pass.")
+                       description="Check that SLURM answers, that Snakemake's SLURM plugin can learn job states, "
+                       "that the profile's partition and account are accepted, and that one probe job can write under "
+                       "the results folder and import holdfast and Snakemake with the Python jobs run. One line per "
+                       "problem, with its fix; exit 0 when all pass, 1 otherwise.")
     p.add_argument("--profile", required=True, help="the Snakemake profile for the cluster (folder or file)")
     p.add_argument("--results", default="results", help="results folder the run will write (default: results)")
     p.add_argument("--timeout", type=float, default=300.0, metavar="SECONDS",
