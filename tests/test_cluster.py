@@ -1,4 +1,6 @@
-"""The workflow on a real SLURM cluster: the fixture starts slurmctld and slurmd on this machine.
+"""holdfast on a real SLURM cluster: preflight, a run and an opening there, checked against a local run.
+
+The fixture starts slurmctld and slurmd on this machine.
 
 ``tests/cluster/start_cluster.sh`` installs the Debian packages it lacks, writes /etc/slurm/slurm.conf
 and starts munged, slurmctld and slurmd; ``stop_cluster.sh`` stops them by PID and removes the
@@ -11,6 +13,8 @@ Run it alone with ``pytest -m cluster``; leave it out with ``-m "not cluster"``.
 from __future__ import annotations
 
 import fcntl
+import hashlib
+import json
 import os
 import re
 import shutil
@@ -21,8 +25,10 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
+import pandas as pd
 import pytest
-from conftest import REPO, breast_cancer_frame, small_classification_config, write_config
+from conftest import REPO, breast_cancer_frame, planned_jobs, small_classification_config, write_config
+from holdfast.config import parse_yaml
 
 pytestmark = [pytest.mark.cluster, pytest.mark.slow]
 
@@ -33,8 +39,9 @@ OURS = "# written by start_cluster.sh"  # first line of the configs the start sc
 LOCK = Path("/tmp/holdfast-slurm.lock")  # one cluster test per machine at a time (shared config, ports)
 LOCK_WAIT = 1800  # seconds to wait for another session's cluster test
 START_TIMEOUT = 600  # a fresh machine installs the packages first (~25 s measured)
-RUN_TIMEOUT = 900  # ~2.5 min measured on 2 cores
+RUN_TIMEOUT = 900  # one holdfast command; the longest, the first cluster run, took ~2.5 min on 2 busy cores
 UNSUPPORTED = 2  # start_cluster.sh's exit status when this machine cannot run a cluster
+COMPARED = ["folds.parquet", "ranking.parquet", "choice.json", "final/verdict.json"]  # byte for byte
 DESIGN_FILES = [
     "sealed/manifest.json", "sealed/test.parquet", "dev.parquet", "folds.parquet", "ranking.parquet",
     "choice.json", "plots/ranking.png", "model/model.skops", "model/provenance.json", "final/verdict.json",
@@ -116,61 +123,202 @@ def slurm_cluster() -> Iterator[Cluster]:
             assert not left, f"stop_cluster.sh left {SLURM_CONF} behind: every Snakemake call would wait ~10 s"
 
 
-def _submitted(output: str) -> dict[str, tuple[str, Path]]:
-    """The plugin's 'submitted with SLURM jobid' lines: 'rule_<name>/<wildcards>' -> (job id, SLURM log)."""
-    found = {}
-    for jobid, log in re.findall(r"submitted with SLURM jobid (\d+) \(log: (\S+?)\)", output):
-        path = Path(log)
-        found["/".join(path.parts[path.parts.index("slurm_logs") + 1:-1])] = (jobid, path)
-    return found
+# The test's copy of the shipped profile: its groups and comments as shipped, settings for this cluster.
+TEST_SETTINGS = {
+    "jobs": 4,  # the test node offers 4 CPUs
+    "latency-wait": 5,  # one machine: outputs are there at once
+    # The plugin's first status check 1 s after a submission, then 10 s later each time: a step of ~15 s
+    # is seen finished after ~33 s (40 s first wait, the plugin's default, makes it ~90 s).
+    "slurm-init-seconds-before-status-checks": 1,
+    "slurm-status-command": "squeue",  # the test cluster has no accounting database (sacct cannot answer)
+}
 
 
-def test_workflow_runs_on_slurm(slurm_cluster: Cluster, tmp_path: Path) -> None:
-    config = small_classification_config()
-    folds = config["folds"]
-    expected_fits = {f"{family}_{repeat}_{fold}" for family in config["candidates"]
-                     for repeat in range(folds["repeats"]) for fold in range(folds["k"])}
-    workdir = tmp_path / "work"
+def _test_profile(folder: Path, partition: str = "debug") -> Path:
+    """A copy of workflow/profiles/slurm/config.yaml with the test cluster's settings (a user's edited copy)."""
+    shipped = parse_yaml((PROFILE / "config.yaml").read_text(encoding="utf-8"), "profile")
+    profile = {**shipped, **TEST_SETTINGS,
+               "default-resources": {**shipped["default-resources"], "slurm_partition": partition, "runtime": 10,
+                                     "mem_mb": 500}}
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "config.yaml").write_text(json.dumps(profile, indent=1), encoding="utf-8")  # JSON is YAML
+    return folder
+
+
+def _holdfast(workdir: Path, env: dict[str, str], *args: str) -> subprocess.CompletedProcess[str]:
+    """The real holdfast command in ``workdir``; ``timeout -k`` ends the whole process group if it hangs."""
+    return subprocess.run(["timeout", "-k", "15", str(RUN_TIMEOUT), sys.executable, "-m", "holdfast", *args],
+                          cwd=workdir, env=env, stdin=subprocess.DEVNULL, capture_output=True, text=True,
+                          check=False)
+
+
+def _ok(result: subprocess.CompletedProcess[str], what: str) -> str:
+    output = result.stdout + result.stderr
+    assert result.returncode == 0, f"{what} exited {result.returncode}:\n{output[-6000:]}"
+    return output
+
+
+def _problems(output: str) -> list[str]:
+    return [line.strip()[len("problem: "):] for line in output.splitlines() if line.strip().startswith("problem: ")]
+
+
+def _edited(config: dict) -> dict:
+    """The same experiment with one family edited: the tree's depth grid (a new selection round)."""
+    candidates = {**config["candidates"], "tree": {**config["candidates"]["tree"], "grid": {"max_depth": [2, 3]}}}
+    return {**config, "candidates": candidates}
+
+
+def _ledger(workdir: Path) -> list[dict]:
+    lines = (workdir / "results" / "bc" / "ledger.jsonl").read_text(encoding="utf-8").splitlines()
+    return [json.loads(line) for line in lines]
+
+
+def _sha256(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+@dataclass(frozen=True)
+class Experiment:
+    """One work folder taken through: run (config A), run (one family edited), open; what each step left."""
+
+    workdir: Path
+    outputs: dict[str, str]  # step -> holdfast's output
+    first: dict[str, str]  # sha256 of COMPARED files (the verdict excepted) after the first run
+    before_edit: int  # ledger lines before the run with the edited family
+    before_open: int  # ledger lines before the opening
+
+
+def _take_through(workdir: Path, env: dict[str, str], *options: str) -> Experiment:
+    """Run config A, then A with the tree family edited, then open the test set; ``options`` go to each."""
     workdir.mkdir()
     breast_cancer_frame().to_csv(workdir / "data.csv", index=False)
+    config = small_classification_config()
     write_config(workdir, config)
-    cmd = ["timeout", "-k", "15", str(RUN_TIMEOUT),
-           sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(workdir),
-           "--executor", "slurm", "--profile", str(PROFILE), "--jobs", "4",
-           # the test cluster has no accounting database: squeue (MinJobAge=3600) instead of sacct
-           "--slurm-status-command", "squeue",
-           "--slurm-keep-successful-logs",  # evidence below that each fit ran as a SLURM job
-           "--configfile", str(workdir / "config.yaml")]
-    run = subprocess.run(cmd, cwd=workdir, env=slurm_cluster.env, stdin=subprocess.DEVNULL,
-                         capture_output=True, text=True, check=False)
-    output = run.stdout + run.stderr
-    assert run.returncode == 0, f"snakemake exited {run.returncode}:\n{output[-6000:]}"
-
-    # 1. The plugin submitted one SLURM job per family x fold, and each ran as a SLURM job step ...
-    fits = {key.split("/", 1)[1]: value for key, value in _submitted(output).items()
-            if key.startswith("rule_fit_family/")}
-    assert set(fits) == expected_fits, output[-4000:]
-    for jobid, log in fits.values():
-        assert log.name == f"{jobid}.log" and log.is_file(), log
-        assert "--executor slurm-jobstep" in log.read_text(), f"{log} is not the log of a SLURM job step"
-    # 2. ... which the controller ran to completion, named by this run and labelled with its rule.
-    run_id = re.search(r"SLURM run ID: (\S+)", output)
-    assert run_id is not None, output[-4000:]
-    history = subprocess.run(["squeue", "--states=all", "--noheader", "--name", run_id.group(1),
-                              "--format=%i|%T|%k"], env=slurm_cluster.env, capture_output=True, text=True,
-                             timeout=30, check=True).stdout
-    controller = {line.split("|")[0]: line.split("|", 2)[1:] for line in history.splitlines() if line}
-    for wildcards, (jobid, _) in fits.items():
-        assert controller.get(jobid) == ["COMPLETED", f"rule_fit_family_wildcards_{wildcards}"], history
-
-    # 3. Every file the design names, and an audit that passes.
+    outputs = {"first run": _ok(_holdfast(workdir, env, "run", "config.yaml", *options), "holdfast run")}
     exp = workdir / "results" / "bc"
-    missing = [name for name in DESIGN_FILES if not (exp / name).is_file()]
-    missing += [f"{kind}/{family}/r{repeat}f{fold}.parquet" for kind in ("fits", "oof")
-                for family, repeat, fold in (w.rsplit("_", 2) for w in expected_fits)
-                if not (exp / kind / family / f"r{repeat}f{fold}.parquet").is_file()]
+    first = {name: _sha256(exp / name) for name in COMPARED[:-1]}
+    write_config(workdir, _edited(config))
+    outputs["plan"] = _ok(_holdfast(workdir, env, "run", "config.yaml", "-n", *options), "holdfast run -n")
+    before_edit = len(_ledger(workdir))
+    outputs["edited run"] = _ok(_holdfast(workdir, env, "run", "config.yaml", *options), "holdfast run (edited)")
+    before_open = len(_ledger(workdir))
+    outputs["open"] = _ok(_holdfast(workdir, env, "open", "results/bc", "--yes", *options), "holdfast open")
+    return Experiment(workdir, outputs, first, before_edit, before_open)
+
+
+@pytest.fixture(scope="module")
+def local_experiment(tmp_path_factory: pytest.TempPathFactory) -> Experiment:
+    """The reference: the same steps on this machine (pre-warmed worker, 2 cores), no cluster involved."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith(("SLURM_", "SBATCH_", "SRUN_"))}
+    env["PYTHONPATH"] = str(REPO / "scripts")
+    return _take_through(tmp_path_factory.mktemp("local") / "work", env, "--cores", "2")
+
+
+@pytest.fixture(scope="module")
+def cluster_experiment(slurm_cluster: Cluster, tmp_path_factory: pytest.TempPathFactory) -> Experiment:
+    """The same steps on the cluster, with preflight first, through the test's copy of the shipped profile."""
+    root = tmp_path_factory.mktemp("cluster")
+    profile = _test_profile(root / "profile")
+    workdir = root / "work"
+    workdir.mkdir()
+    checked = _holdfast(workdir, slurm_cluster.env, "preflight", "--profile", str(profile), "--timeout", "120")
+    assert checked.returncode == 0 and not _problems(checked.stdout), checked.stdout + checked.stderr
+    assert not list((workdir / "results").iterdir()), "preflight left its probe folder behind"
+    shutil.rmtree(workdir)
+    experiment = _take_through(workdir, slurm_cluster.env, "--profile", str(profile))
+    experiment.outputs["preflight"] = checked.stdout
+    return experiment
+
+
+def test_preflight_passes_on_the_cluster(cluster_experiment: Experiment) -> None:
+    lines = cluster_experiment.outputs["preflight"].splitlines()
+    assert lines[-1].startswith("holdfast: preflight: all ") and "checks passed" in lines[-1], lines
+    checks = [line.strip() for line in lines[1:-1]]
+    assert checks and all(line.startswith("ok: ") for line in checks), lines
+    text = "\n".join(checks)
+    assert "job states: the plugin asks squeue (MinJobAge 3600 s" in text, text
+    assert "partition: debug (default-resources: slurm_partition; up)" in text, text
+    assert re.search(r"probe job \d+ ran on node \S+ and wrote under 'results'", text), text
+    assert f"in jobs {sys.executable} (the interpreter that submits them) imports holdfast (from {REPO / 'scripts'})" \
+        in text, text
+
+
+@pytest.mark.parametrize(("case", "expected"), [
+    # A copied profile still names another cluster's partition: refused before any job is submitted.
+    ("wrong partition", "partition 'gpu' (default-resources: slurm_partition) does not exist on this cluster; set "
+                        "slurm_partition to one of: debug (as 'sinfo' lists them)"),
+    # The shipped profile as it is, on a cluster without an accounting database: the plugin would ask sacct.
+    ("shipped profile", "sacct does not answer (Slurm accounting storage is disabled), and the plugin asks it for "
+                        "job states, so a run would wait for ever; add the line 'slurm-status-command: squeue' to "
+                        "the profile"),
+])
+def test_preflight_names_a_broken_profile(slurm_cluster: Cluster, tmp_path: Path, case: str, expected: str) -> None:
+    profile = _test_profile(tmp_path / "profile", "gpu") if case == "wrong partition" else PROFILE
+    before = subprocess.run(["squeue", "--noheader", "--states=all", "-o", "%i"], env=slurm_cluster.env,
+                            capture_output=True, text=True, timeout=30, check=True).stdout.split()
+    result = _holdfast(tmp_path, slurm_cluster.env, "preflight", "--profile", str(profile), "--timeout", "120")
+    assert result.returncode == 1, result.stdout + result.stderr
+    assert _problems(result.stdout) == [expected], result.stdout
+    assert result.stdout.splitlines()[-1].startswith("holdfast: preflight: 1 problem in "), result.stdout
+    after = subprocess.run(["squeue", "--noheader", "--states=all", "-o", "%i"], env=slurm_cluster.env,
+                           capture_output=True, text=True, timeout=30, check=True).stdout.split()
+    probed = len(set(after) - set(before))
+    # The wrong partition stops the checks before the probe job; the shipped profile's probe still runs.
+    assert probed == (0 if case == "wrong partition" else 1), (before, after)
+
+
+def test_cluster_run_gives_the_local_bytes(local_experiment: Experiment, cluster_experiment: Experiment) -> None:
+    local, cluster = (e.workdir / "results" / "bc" for e in (local_experiment, cluster_experiment))
+    assert cluster_experiment.first == local_experiment.first, "the first run's folds, ranking or choice differ"
+    for name in COMPARED:
+        assert _sha256(cluster / name) == _sha256(local / name), name
+    # Fits: the same rows and numbers; only the measured fit time differs. Out-of-fold predictions: the same bytes.
+    fits = sorted(p.relative_to(local) for p in (local / "fits").rglob("*.parquet"))
+    assert len(fits) == 6 and fits == sorted(p.relative_to(cluster) for p in (cluster / "fits").rglob("*.parquet"))
+    for name in fits:
+        pd.testing.assert_frame_equal(pd.read_parquet(cluster / name).drop(columns="fit_seconds"),
+                                      pd.read_parquet(local / name).drop(columns="fit_seconds"))
+        oof = Path("oof", *name.parts[1:])
+        assert _sha256(cluster / oof) == _sha256(local / oof), oof
+    missing = [name for name in DESIGN_FILES if not (cluster / name).is_file()]
     assert not missing, missing
-    audit = subprocess.run([sys.executable, "-m", "holdfast", "audit", "results/bc"], cwd=workdir,
-                           env=slurm_cluster.env, capture_output=True, text=True, timeout=300, check=False)
-    assert audit.returncode == 0, audit.stdout + audit.stderr
-    assert audit.stdout.startswith("PASS"), audit.stdout
+    audit = json.loads((cluster / "audit.json").read_text(encoding="utf-8"))
+    assert audit["passed"] is True, audit["problems"]
+
+
+@pytest.mark.parametrize("where", ["local", "cluster"])
+def test_an_edit_reruns_only_its_family(local_experiment: Experiment, cluster_experiment: Experiment,
+                                        where: str) -> None:
+    experiment = local_experiment if where == "local" else cluster_experiment
+    tree_fits = [f"fit_family[tree,0,{fold}]" for fold in range(3)]
+    # Snakemake's plan for the edited config: the tree's fit jobs, and no logistic one.
+    planned = planned_jobs(subprocess.CompletedProcess([], 0, experiment.outputs["plan"], ""))
+    assert sorted(job for job in planned if job.startswith("fit_family")) == tree_fits, experiment.outputs["plan"]
+    # What ran: fit events recorded by the edited run.
+    ran = _ledger(experiment.workdir)[experiment.before_edit:experiment.before_open]
+    fits = sorted(f"fit_family[{e['details']['family']},{e['details']['repeat']},{e['details']['fold']}]"
+                  for e in ran if e["event"] == "fit")
+    assert fits == tree_fits, [e["event"] for e in ran]
+
+
+def test_cluster_jobs_ran_under_slurm(local_experiment: Experiment, cluster_experiment: Experiment,
+                                      slurm_cluster: Cluster) -> None:
+    by_rule = [e for e in _ledger(cluster_experiment.workdir) if e["actor"]["rule"]]
+    assert {e["event"] for e in by_rule} >= {"seal", "assign_folds", "round", "fit", "tally", "refit", "open_test"}
+    # Every step a rule ran records the SLURM job it ran in, and the controller knows each as completed ...
+    jobs = {e["actor"].get("slurm_job") for e in by_rule}
+    assert None not in jobs, [e["event"] for e in by_rule if "slurm_job" not in e["actor"]]
+    shown = subprocess.run(["squeue", "--noheader", "--states=all", "-j", ",".join(sorted(jobs)), "-o", "%i|%T"],
+                           env=slurm_cluster.env, capture_output=True, text=True, timeout=30, check=True).stdout
+    states = dict(line.split("|") for line in shown.split())
+    assert states == dict.fromkeys(jobs, "COMPLETED"), shown
+    # ... the grouped steps of the first run shared a job (the profile's groups: seal and fold assignment; round
+    # record, tally and refit), and each fit job was a SLURM job of its own ...
+    job_of: dict[str, str] = {}
+    for entry in by_rule:
+        job_of.setdefault(entry["event"], entry["actor"]["slurm_job"])
+    assert job_of["seal"] == job_of["assign_folds"] and job_of["round"] == job_of["tally"] == job_of["refit"], job_of
+    fit_jobs = [e["actor"]["slurm_job"] for e in by_rule if e["event"] == "fit"]
+    assert len(fit_jobs) == 6 + 3 and len(set(fit_jobs)) == len(fit_jobs), fit_jobs
+    # ... while the local run's steps ran on this machine, outside any SLURM job.
+    assert all("slurm_job" not in e["actor"] for e in _ledger(local_experiment.workdir)), "a local step ran in SLURM"

@@ -378,6 +378,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .commands import add_parsers
 
     add_parsers(sub)  # status, predict, init, log, list, compare (holdfast/commands/)
+    from .preflight import add_command
+
+    add_command(sub)
     return parser
 
 
