@@ -208,6 +208,8 @@ def nested_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
     write_config(workdir, nested_config())
     result = run_workflow(workdir)
     assert result.returncode == 0, result.stderr[-3000:]
+    opened = open_experiment(workdir, nested_config()["experiment"])
+    assert opened.returncode == 0, opened.stdout[-3000:] + opened.stderr[-3000:]
     (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)  # beside the experiment, not in it
     return workdir
 

@@ -108,17 +108,19 @@ def unchanged(exp: Path) -> None:
 def edit_ledger_value(exp: Path) -> None:
     """Change one number inside the fold-assignment line, keeping its recorded hash."""
     lines = read_lines(exp)
-    entry = json.loads(lines[1])
+    at = position_of(entries(exp), "assign_folds")
+    entry = json.loads(lines[at])
     entry["details"]["rows"] += 1
-    lines[1] = canonical_json(entry)
+    lines[at] = canonical_json(entry)
     write_lines(exp, lines)
 
 
 def edit_ledger_text(exp: Path) -> None:
     """Edit the raw text of a ledger line (k 3 -> 4) with a text editor."""
     lines = read_lines(exp)
-    assert '"k":3' in lines[1]
-    lines[1] = lines[1].replace('"k":3', '"k":4')
+    at = position_of(entries(exp), "assign_folds")
+    assert '"k":3' in lines[at]
+    lines[at] = lines[at].replace('"k":3', '"k":4')
     write_lines(exp, lines)
 
 
@@ -148,13 +150,13 @@ def insert_forged_line(exp: Path) -> None:
 
 
 def drop_opening_line(exp: Path) -> None:
-    """Truncate the ledger just before the opening (drop its last line)."""
-    write_lines(exp, read_lines(exp)[:-1])
+    """Truncate the ledger just before the opening (drop its two lines: the write-ahead one and the verdict's)."""
+    write_lines(exp, read_lines(exp)[:position_of(entries(exp), "opening_started")])
 
 
 def drop_refit_and_opening(exp: Path) -> None:
-    """Truncate the ledger before the refit (drop its last two lines)."""
-    write_lines(exp, read_lines(exp)[:-2])
+    """Truncate the ledger before the refit (drop it and the opening's lines)."""
+    write_lines(exp, read_lines(exp)[:position_of(entries(exp), "refit")])
 
 
 def rewrite_whole_chain(exp: Path) -> None:
@@ -576,8 +578,9 @@ CASES = [
     pytest.param(delete_middle_line, ["broken-link", "sequence-gap"], [], id="ledger-middle-line-deleted"),
     pytest.param(swap_two_lines, ["broken-link", "sequence-gap"], [], id="ledger-lines-swapped"),
     pytest.param(insert_forged_line, ["broken-link"], [], id="ledger-forged-line-inserted"),
-    pytest.param(drop_opening_line, ["opening-unrecorded"], [], id="ledger-truncated-before-opening"),
-    pytest.param(drop_refit_and_opening, ["model-unrecorded", "opening-unrecorded"], [],
+    pytest.param(drop_opening_line, ["opening-unrecorded", "opening-records-disagree"], [],
+                 id="ledger-truncated-before-opening"),
+    pytest.param(drop_refit_and_opening, ["model-unrecorded", "opening-unrecorded", "opening-records-disagree"], [],
                  id="ledger-truncated-before-refit"),
     pytest.param(rewrite_whole_chain, ["anchor-mismatch"], [], id="ledger-rewritten-consistently"),
     pytest.param(tear_final_newline, ["torn-append"], [], id="ledger-torn-newline"),
@@ -796,11 +799,11 @@ def test_headline_reads_only_files_the_audit_verified(bc_copy: Path) -> None:
 
 
 def test_closing_lines_come_from_an_audit_made_at_the_end_of_the_run(bc_copy: Path) -> None:
-    """A verdict edited after the run, its old time kept, then a run that leaves the audit rule alone (it redoes
-    the fold assignment only): the closing lines come from an audit made then, FAIL, with no numbers."""
+    """A verdict edited after the opening, its old time kept, then `holdfast run` (the experiment is closed: no
+    step runs): the closing lines come from an audit made then, FAIL, with no numbers, and audit.json is rewritten."""
     import os
 
-    from conftest import run_workflow
+    from conftest import run_cli
 
     exp = experiment(bc_copy)
     verdict = exp / "final/verdict.json"
@@ -808,12 +811,12 @@ def test_closing_lines_come_from_an_audit_made_at_the_end_of_the_run(bc_copy: Pa
     low, _ = json.loads(verdict.read_text())["metrics"]["accuracy"]["interval"]
     edit_json(verdict, lambda v: v["metrics"]["accuracy"].__setitem__("test", low / 2))  # outside its own interval
     os.utime(verdict, ns=(stat.st_atime_ns, stat.st_mtime_ns))
-    result = run_workflow(bc_copy, "results/bc/folds.parquet", "--forcerun", "assign_folds")
-    assert result.returncode == 0, result.stderr[-3000:]
-    assert "localrule audit:" not in result.stdout + result.stderr  # the stored audit.json was not redone by the rule
+    result = run_cli(bc_copy, "run", "config.yaml", "--cores", "2")
+    assert result.returncode == 1, result.stdout[-3000:] + result.stderr[-3000:]
     closing = [line for line in result.stdout.splitlines() if line.startswith("holdfast: ")]
-    assert closing == ["holdfast: experiment 'bc': audit FAIL: verdict-changed (test set opened 1 time(s)); "
-                       "details: holdfast audit results/bc"], result.stdout[-3000:]
+    assert "holdfast: experiment 'bc': audit FAIL: verdict-changed (test set opened 1 time(s)); details: holdfast " \
+           "audit results/bc" in closing, result.stdout[-3000:]
+    assert not any(line.startswith("holdfast: winner") for line in closing)  # no numbers under a failing audit
     stored = json.loads((exp / "audit.json").read_text())
     assert stored["state"] == "fail" and codes(stored) == ["verdict-changed"]  # rewritten by that audit
 
@@ -892,10 +895,10 @@ def test_audit_during_a_real_run_says_in_progress_and_the_run_ends_with_a_fresh_
     assert cli.returncode == 75 and cli.stdout.startswith("IN PROGRESS"), cli.stdout + cli.stderr
     assert run.returncode == 0, err[-3000:]
     closing = [line for line in out.splitlines() if line.startswith("holdfast: ")]
-    assert closing[-1].startswith("holdfast: experiment 'bc': audit PASS (test set opened 1 time(s))"), out[-3000:]
-    assert closing[0].startswith("holdfast: winner ")
-    assert (exp / "logs/audit.log").read_text().startswith("PASS: experiment 'bc'")  # the rule's own audit
-    assert json.loads((exp / "audit.json").read_text())["state"] == "pass"
+    assert closing[-2].startswith("holdfast: experiment 'bc': audit PASS (test set opened 0 time(s))"), out[-3000:]
+    assert closing[-1].startswith("holdfast: ledger head ")
+    assert any(line.startswith("holdfast: winner ") for line in closing)
+    assert json.loads((exp / "audit.json").read_text())["state"] == "pass"  # written by the run's closing audit
 
 
 def test_a_one_se_choice_other_than_the_best_mean_is_recognised(bc_finished: Path, tmp_path: Path) -> None:

@@ -51,8 +51,8 @@ FOLDS = (0, 1, 2)
 # Outputs whose bytes do not depend on the run: no timestamps, no object ids (model.skops and its card
 # carry the model's hash, the manifest the first ledger line's hash, which holds the seal's time).
 COMPARED = ("sealed/test.parquet", "dev.parquet", "folds.parquet", "folds_summary.parquet", "leakage.json",
-            "rounds/1.json", "ranking.parquet", "choice.json", "plots/ranking.png", "history/index.json",
-            "final/verdict.json", "final/openings/1.json")
+            "rounds/1.json", "ranking.parquet", "choice.json", "plots/ranking.png", "final/verdict.json",
+            "final/openings/1.json")  # history/index.json holds the fits' hashes, and fits hold their timings
 POLL = 0.05  # seconds between looks at the experiment while waiting for a stage
 WAIT = 600  # seconds a run may take before the test gives up
 HANG_GRACE = 5  # seconds a run may live on after one of its jobs died inside Snakemake's worker thread

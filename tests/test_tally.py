@@ -101,8 +101,9 @@ def test_a_finished_run_ends_with_the_headline_numbers(bc_finished: Path) -> Non
     block = verdict["metrics"]["accuracy"]
     line = headline(exp, audit(str(exp))["verified"])
     low, high = block["interval"]
-    for part in (verdict["winner"]["candidate"], f"CV {block['cv_mean']:.4f}", f"BBC {block['cv_corrected_bbc']:.4f}",
-                 f"T&T {block['cv_corrected_tibshirani']:.4f}", f"test {block['test']:.4f}",
+    for part in (verdict["winner"]["candidate"], f"CV {block['cv_mean']:.4f}",
+                 f"BBC-CV {block['cv_corrected_bbc']:.4f}",
+                 f"Tibshirani–Tibshirani {block['cv_corrected_tibshirani']:.4f}", f"test {block['test']:.4f}",
                  f"[{low:.4f}, {high:.4f}]", f"agreement: {block['agreement']}"):
         assert part in line
     stdout = (bc_finished.parent / f"{bc_finished.name}.stdout").read_text()

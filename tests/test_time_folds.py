@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import breast_cancer_frame, run_workflow, small_classification_config, write_config
+from conftest import breast_cancer_frame, open_experiment, run_workflow, small_classification_config, write_config
 from holdfast.audit import audit
 from holdfast.folds import fold_masks
 
@@ -38,6 +38,9 @@ def test_holdout_and_forward_folds_run_end_to_end(tmp_path: Path, folds: dict[st
     config["folds"] = folds
     write_config(tmp_path, config)
     result = run_workflow(tmp_path)
+    assert result.returncode == 0, result.stderr[-3000:]
+    opened = open_experiment(tmp_path, "bc")
+    assert opened.returncode == 0, opened.stdout[-3000:] + opened.stderr[-3000:]
     assert result.returncode == 0, result.stderr[-3000:]
     exp = tmp_path / "results" / "bc"
     table = pd.read_parquet(exp / "folds.parquet")

@@ -60,6 +60,7 @@ RECORDED: tuple[Recorded, ...] = (
     Recorded("open_test", ("marker_sha256",), "final/openings/started-{opening}.json", "opening-marker",
              "write-ahead marker of that opening", scanned=False),
     Recorded("opening_started", ("test_sha256",), "sealed/test.parquet", "test", "sealed test file", fixed=True),
+    Recorded("opening_started", ("model_sha256",), "{scope}model/model.skops", "model", "refit model"),
     Recorded("round", ("round_sha256",), "rounds/{round}.json", "round", "selection round's set-up"),
     Recorded("round", ("round_sha256",), "rounds/current.json", "round", "current selection round (a copy of the "
              "latest rounds/<N>.json)", scanned=False),
