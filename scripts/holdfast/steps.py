@@ -61,11 +61,11 @@ def assign_folds(smk: Any) -> None:
     import pandas as pd
 
     from . import ledger
-    from ._io import read_json, sha256_file, write_json, write_parquet
+    from ._io import read_json, read_parquet, sha256_file, write_json, write_parquet
     from .folds import assign, check, leakage_report
 
     spec, fold_spec = json.loads(smk.params.spec), json.loads(smk.params.folds)
-    dev = pd.read_parquet(smk.input.dev)
+    dev = read_parquet(smk.input.dev)
     scope = _scope(smk)
     if scope != "main":
         from .nested import outer_rows
@@ -75,7 +75,7 @@ def assign_folds(smk: Any) -> None:
     table = assign(dev, fold_spec, spec["target"], spec["group"], spec.get("time"), spec.get("time_unit"))
     groups = dev[spec["group"]] if spec["group"] else None
     times = dev[spec["time"]] if spec.get("time") else None
-    test_keys = set(pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"])
+    test_keys = pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"]
     check(table, dev["row_key"], test_keys, fold_spec, groups, times, spec.get("time_unit"))
     report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
                             read_json(smk.params.manifest), smk.output.summary, fold_spec)
