@@ -28,7 +28,7 @@ from .dataset import (
 )
 from .errors import ConfigError, DataError, SealedAccessError
 from .layout import DEV, LEDGER, MANIFEST, TEST
-from .leakage import duplicates_across, single_feature_alarms
+from .leakage import feature_identity, single_feature_alarms
 
 
 def data_fingerprint(path: str | os.PathLike[str]) -> dict[str, Any]:
@@ -56,13 +56,31 @@ def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any],
     if spec["scheme"] == "stratified":
         assert target is not None
         mask = np.zeros(len(keys), dtype=bool)
-        for _, positions in pd.Series(np.arange(len(keys))).groupby(target.to_numpy()).groups.items():
-            idx = np.asarray(list(positions))
-            order = idx[np.lexsort((keys.to_numpy()[idx], units[idx]))]
-            take = round(fraction * len(idx))
-            mask[order[:take]] = True
+        classes = pd.factorize(target.to_numpy())[0]
+        for label in range(int(classes.max()) + 1 if len(classes) else 0):
+            idx = np.flatnonzero(classes == label)
+            mask[_first_by_unit(idx, units[idx], keys, round(fraction * len(idx)))] = True
         return mask
     raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; see config/README.md")
+
+
+def _first_by_unit(idx: np.ndarray, units: np.ndarray, keys: pd.Series, take: int) -> np.ndarray:
+    """The ``take`` rows of ``idx`` that come first in the order (hash unit, then key).
+
+    The same rows as sorting them all by (unit, key) and taking the head, in linear time: rows below the
+    take-th smallest unit all go, and the rows tied at that unit (almost never more than one) go in key order.
+    """
+    if take <= 0:
+        return idx[:0]
+    if take >= len(idx):
+        return idx
+    cut = np.partition(units, take - 1)[take - 1]
+    below = idx[units < cut]
+    tied = idx[units == cut]
+    if len(tied) > 1:
+        text = keys.to_numpy()
+        tied = tied[np.argsort(np.array([str(text[i]) for i in tied], dtype=object), kind="stable")]
+    return np.concatenate([below, tied[: take - len(below)]])
 
 
 def _stratified_groups(groups: pd.Series, target: pd.Series, spec: dict[str, Any]) -> np.ndarray:
@@ -194,6 +212,26 @@ def check_before_seal(config: dict[str, Any], frame: pd.DataFrame, test_rows: np
     check_test_partition(dev_target, target[test_rows], metrics, config["data"]["path"])
 
 
+def _split(frame: pd.DataFrame, keys: pd.Series, test_rows: np.ndarray,
+           dev_rows: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(test, dev): the rows of each side with the row key in front, column by column.
+
+    Each column of ``frame`` is dropped as soon as both sides have their copy of it, so the data is held
+    about twice at the peak (frame plus the two sides), not three times (frame, a keyed copy, the sides).
+    """
+    sides: list[dict[Any, Any]] = [{}, {}]
+    positions = [np.flatnonzero(test_rows), np.flatnonzero(dev_rows)]
+    for column in [KEY, *frame.columns]:
+        values = keys if column == KEY else frame.pop(column)
+        plain = isinstance(values.dtype, np.dtype)
+        for side, rows in zip(sides, positions, strict=True):
+            side[column] = (pd.Series(np.take(values.to_numpy(), rows), name=values.name) if plain
+                            else values.take(rows).reset_index(drop=True))
+        del values
+    test, dev = (pd.DataFrame(side, copy=False) for side in sides)
+    return test, dev
+
+
 def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd.DataFrame, str]:
     """Read the data file, check the declared columns and return it with the task."""
     frame = read_table(path)
@@ -273,11 +311,12 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         check_development_classes(frame[spec["target"]][~mask & ~dropped], str(data_path))
         check_test_partition(frame[spec["target"]][~mask & ~dropped], frame[spec["target"]][mask], None,
                              str(data_path))
-    keyed = frame.copy()
-    keyed.insert(0, KEY, keys.to_numpy())
-    test, dev = keyed[mask].reset_index(drop=True), keyed[~mask & ~dropped].reset_index(drop=True)
     guards = {"duplicates": "warn", "single_feature_threshold": 0.98, **(leakage or {})}
-    duplicates = duplicates_across(dev, test, spec)
+    development = ~mask & ~dropped
+    duplicates = feature_identity(frame, spec).repeated(development, mask)
+    n_rows, columns = len(frame), [str(c) for c in frame.columns]
+    test, dev = _split(frame, keys, mask, development)
+    del frame  # from here on only the two sides are kept, not a third copy of every row
     if duplicates and guards["duplicates"] == "error":
         raise DataError(f"{duplicates} sealed test row(s) of '{data_path}' repeat the features of a development row "
                         "(exact duplicates); remove them or set leakage.duplicates: warn")
@@ -301,8 +340,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         write_parquet(out / DEV, dev)
         manifest: dict[str, Any] = {
             "experiment": experiment,
-            "data": {"path": str(data_path), "rows": len(frame), "columns": [str(c) for c in frame.columns],
-                     **fingerprint},
+            "data": {"path": str(data_path), "rows": n_rows, "columns": columns, **fingerprint},
             "spec": sealed_spec,
             "counts": {"dev": n_dev, "test": n_test, "left_out_in_gap": int(dropped.sum()),
                        **({"dev_groups": int(dev[spec["group"]].nunique())} if spec.get("group") else {})},
