@@ -204,20 +204,39 @@ def hash_unit(keys: pd.Series, salt: str) -> np.ndarray:
     return np.ascontiguousarray(digests[:, :8]).view(">u8")[:, 0].astype(np.float64) / 2.0**64
 
 
-def keys_digest(keys: Any) -> str:
-    """One hash for a set of row keys (order does not matter): SHA-256 of the sorted keys, each ending in a newline."""
+def key_order(keys: pd.Series) -> np.ndarray | None:
+    """Positions of the keys in sorted order (code points, as Python sorts text), or None if they are not text.
+
+    Arrow sorts strings by their UTF-8 bytes, which is the same order.
+    """
+    import pyarrow.compute as pc
+
+    strings = _strings(keys)
+    return None if strings is None else pc.sort_indices(strings).to_numpy()
+
+
+def keys_digest(keys: Any, order: np.ndarray | None = None, rows: np.ndarray | None = None) -> str:
+    """One hash for a set of row keys (order does not matter): SHA-256 of the sorted keys, each ending in a newline.
+
+    With ``order`` (:func:`key_order` of ``keys``) and a boolean mask ``rows``: the digest of ``keys[rows]``,
+    without sorting again (the sorted order of a subset is the subset of the sorted order).
+    """
     import pyarrow as pa
     import pyarrow.compute as pc
 
-    strings = _strings(keys if isinstance(keys, pd.Series) else pd.Series(list(keys), dtype=object))
+    series = keys if isinstance(keys, pd.Series) else pd.Series(list(keys), dtype=object)
+    strings = _strings(series)
     digest = hashlib.sha256()
     if strings is None:
-        for key in sorted(map(str, keys)):
+        for key in sorted(map(str, series[rows] if rows is not None else series)):
             digest.update(key.encode("utf-8") + b"\n")
         return digest.hexdigest()
-    # Arrow sorts strings by their UTF-8 bytes, which is the code-point order Python's sorted() uses.
+    if order is None:
+        order = pc.sort_indices(strings).to_numpy()
+    if rows is not None:
+        order = order[rows[order]]
     blank, newline = pa.scalar("", pa.large_string()), pa.scalar("\n", pa.large_string())
-    lines = pc.binary_join_element_wise(strings.take(pc.sort_indices(strings)), blank, newline)
+    lines = pc.binary_join_element_wise(strings.take(order), blank, newline)
     offsets = np.frombuffer(lines.buffers()[1], dtype=np.int64)
     start, stop = int(offsets[lines.offset]), int(offsets[lines.offset + len(lines)])
     digest.update(memoryview(lines.buffers()[2])[start:stop])

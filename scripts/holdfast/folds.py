@@ -232,13 +232,24 @@ def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: 
     return table
 
 
+class RepeatFolds:
+    """One repeat's rows of the fold table, read once, giving each fold's (training, validation) masks."""
+
+    def __init__(self, part: pd.DataFrame) -> None:
+        self.validated = part["fold"].to_numpy(dtype="float64", na_value=np.nan)
+        self.train_from = (part["train_from"].to_numpy() if "train_from" in part
+                           else np.zeros(len(part), dtype=np.int64))
+
+    def masks(self, fold: int) -> tuple[np.ndarray, np.ndarray]:
+        """(training, validation) of one fold: validated there; trained on when not, and train_from <= fold."""
+        validation = self.validated == fold
+        training = ~validation & (self.train_from <= fold)
+        return training, validation
+
+
 def fold_masks(part: pd.DataFrame, fold: int) -> tuple[np.ndarray, np.ndarray]:
     """(training, validation) masks over one repeat's rows of the fold table for one fold."""
-    validated = part["fold"].to_numpy(dtype="float64", na_value=np.nan)
-    validation = validated == fold
-    train_from = part["train_from"].to_numpy() if "train_from" in part else np.zeros(len(part), dtype=np.int64)
-    training = ~validation & (train_from <= fold)
-    return training, validation
+    return RepeatFolds(part).masks(fold)
 
 
 def _positions(dev_keys: pd.Series, keys: pd.Series) -> np.ndarray:
@@ -293,8 +304,9 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: Any, spec: dict[s
             raise DataError(f"folds ({scheme}), repeat {repeat}: {never} development row(s) are never validated; "
                             "rebuild the folds")
         part_groups = group_codes[where] if group_codes is not None else None
+        folds_of = RepeatFolds(part)
         for fold in range(k):
-            training, validation = fold_masks(part, fold)
+            training, validation = folds_of.masks(fold)
             if not validation.any():
                 raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold} is empty (0 rows); lower folds.k")
             if not training.any():
@@ -344,8 +356,9 @@ def time_overlap(dev: pd.DataFrame, table: pd.DataFrame, time_col: str,
     for repeat, part in table.groupby("repeat", sort=True):
         part = part.reset_index(drop=True)
         stamps = times[_positions(dev[KEY], part[KEY])]
+        folds_of = RepeatFolds(part)
         for fold in sorted(part["fold"].dropna().unique()):
-            training, validation = fold_masks(part, int(fold))
+            training, validation = folds_of.masks(int(fold))
             later = int((stamps[training] > stamps[validation].min()).sum())
             if later:
                 out.append({"repeat": int(repeat), "fold": int(fold), "training_rows_later": later,
@@ -368,8 +381,9 @@ def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], t
     for repeat, part in folds.groupby("repeat", sort=True):
         part = part.reset_index(drop=True)
         where = _positions(dev[KEY], part[KEY])
+        folds_of = RepeatFolds(part)
         for fold in sorted(int(f) for f in part["fold"].dropna().unique()):
-            training, validation = fold_masks(part, fold)
+            training, validation = folds_of.masks(fold)
             val, train = where[validation], where[training]
             row: dict[str, Any] = {"repeat": int(repeat), "fold": fold, "rows": len(val), "training_rows": len(train),
                                    "duplicates_with_training": identity.repeated(train, val)}

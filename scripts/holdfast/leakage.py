@@ -41,8 +41,11 @@ def _column_values(values: pd.Series) -> np.ndarray:
     if isinstance(dtype, np.dtype) and dtype.kind in "fiubMm":
         raw = values.to_numpy()
         if dtype.kind == "f":
-            bits = raw.view(f"u{dtype.itemsize}").astype(np.uint64)
-            bits[np.isnan(raw)] = _CANONICAL_NAN
+            bits = raw.view(f"u{dtype.itemsize}")
+            blank = np.isnan(raw)
+            if dtype.itemsize < 8 or blank.any():
+                bits = bits.astype(np.uint64)
+                bits[blank] = _CANONICAL_NAN
             return bits
         if dtype.kind in "Mm":
             return raw.view(np.int64).view(np.uint64)

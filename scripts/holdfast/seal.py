@@ -8,6 +8,7 @@ written read-only and its fingerprint goes into the manifest and the ledger.
 from __future__ import annotations
 
 import os
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -22,6 +23,7 @@ from .dataset import (
     check_target_for_task,
     hash_unit,
     infer_task,
+    key_order,
     keys_digest,
     parse_times,
     row_keys,
@@ -225,11 +227,18 @@ def _split(frame: pd.DataFrame, keys: pd.Series, test_rows: np.ndarray,
         values = keys if column == KEY else frame.pop(column)
         plain = isinstance(values.dtype, np.dtype)
         for side, rows in zip(sides, positions, strict=True):
-            side[column] = (pd.Series(np.take(values.to_numpy(), rows), name=values.name) if plain
+            side[column] = (pd.Series(np.take(values.to_numpy(), rows), name=values.name, copy=False) if plain
                             else values.take(rows).reset_index(drop=True))
         del values
     test, dev = (pd.DataFrame(side, copy=False) for side in sides)
     return test, dev
+
+
+def _written(path: Path, frame: pd.DataFrame | None, mode: int | None) -> str:
+    """Write ``frame`` to ``path`` (unless None: already there) and return the file's SHA-256."""
+    if frame is not None:
+        write_parquet(path, frame, mode=mode)
+    return sha256_file(path)
 
 
 def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd.DataFrame, str]:
@@ -304,16 +313,22 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                                 "the seal never re-runs: name a new experiment to draw a new test set")
     frame, task = load_checked(data_path, spec)
     keys = row_keys(frame, spec.get("id"))
-    mask, dropped = split_masks(frame, keys, spec, task)
-    n_test, n_dev = int(mask.sum()), int((~mask & ~dropped).sum())
-    check_sides(n_test, n_dev, spec, str(data_path))
-    if task == "classification":
-        check_development_classes(frame[spec["target"]][~mask & ~dropped], str(data_path))
-        check_test_partition(frame[spec["target"]][~mask & ~dropped], frame[spec["target"]][mask], None,
-                             str(data_path))
+    with ThreadPoolExecutor(max_workers=1) as helper:
+        # Sorting the keys and the feature identity release the GIL: they run beside the hash units,
+        # whose SHA-256 per key holds it.
+        ordered = helper.submit(key_order, keys)
+        identity = helper.submit(feature_identity, frame, spec)
+        mask, dropped = split_masks(frame, keys, spec, task)
+        n_test, n_dev = int(mask.sum()), int((~mask & ~dropped).sum())
+        check_sides(n_test, n_dev, spec, str(data_path))
+        if task == "classification":
+            check_development_classes(frame[spec["target"]][~mask & ~dropped], str(data_path))
+            check_test_partition(frame[spec["target"]][~mask & ~dropped], frame[spec["target"]][mask], None,
+                                 str(data_path))
+        development = ~mask & ~dropped
+        duplicates = identity.result().repeated(development, mask)
+        order = ordered.result()
     guards = {"duplicates": "warn", "single_feature_threshold": 0.98, **(leakage or {})}
-    development = ~mask & ~dropped
-    duplicates = feature_identity(frame, spec).repeated(development, mask)
     n_rows, columns = len(frame), [str(c) for c in frame.columns]
     test, dev = _split(frame, keys, mask, development)
     del frame  # from here on only the two sides are kept, not a third copy of every row
@@ -335,18 +350,20 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         sealed_spec = {**spec, "task": task}
         public_key = _start_signing(out, signing_key) if signing_key else None
         earlier = _interrupted_seal(out, test, fingerprint["sha256"], sealed_spec, experiment)
-        if not (out / TEST).exists():
-            write_parquet(out / TEST, test, mode=0o444)
-        write_parquet(out / DEV, dev)
+        with ThreadPoolExecutor(max_workers=2) as writers:  # Parquet writing releases the GIL
+            test_file = writers.submit(_written, out / TEST, None if (out / TEST).exists() else test, 0o444)
+            dev_file = writers.submit(_written, out / DEV, dev, None)
+            digests = {"dev_sha256": keys_digest(keys, order, development),
+                       "test_sha256": keys_digest(keys, order, mask)}
+            files = {"test.parquet": test_file.result(), "dev.parquet": dev_file.result()}
         manifest: dict[str, Any] = {
             "experiment": experiment,
             "data": {"path": str(data_path), "rows": n_rows, "columns": columns, **fingerprint},
             "spec": sealed_spec,
             "counts": {"dev": n_dev, "test": n_test, "left_out_in_gap": int(dropped.sum()),
                        **({"dev_groups": int(dev[spec["group"]].nunique())} if spec.get("group") else {})},
-            "keys": {"dev_sha256": keys_digest(dev[KEY]), "test_sha256": keys_digest(test[KEY]),
-                     "from": "id column" if spec.get("id") else "row content"},
-            "files": {"test.parquet": sha256_file(out / TEST), "dev.parquet": sha256_file(out / DEV)},
+            "keys": {**digests, "from": "id column" if spec.get("id") else "row content"},
+            "files": files,
             "holdfast": __version__,
             "leakage": {"duplicate_feature_rows_dev_test": duplicates, "single_feature": alarms,
                         "single_feature_threshold": float(guards["single_feature_threshold"]),
