@@ -160,6 +160,26 @@ def content_keys(frame: pd.DataFrame) -> pd.Series:
     return keys.astype(str)
 
 
+def key_positions(index_keys: pd.Series, keys: pd.Series) -> np.ndarray:
+    """Position of each of ``keys`` among ``index_keys`` (which are unique), −1 where absent; exact.
+
+    Looks the 64-bit :func:`key_hashes` up in a table and confirms every hit on the text itself (pandas'
+    lookup of ten million Arrow strings took 30 s, this well under 2).
+    """
+    import pyarrow.compute as pc
+
+    a, b = _strings(index_keys), _strings(keys)
+    table = pd.Index(key_hashes(a)) if a is not None and b is not None else None
+    if table is None or not table.is_unique:
+        return pd.Index(pd.Series(index_keys).astype(str)).get_indexer(pd.Series(keys).astype(str))
+    assert a is not None and b is not None
+    where = table.get_indexer(key_hashes(b))
+    hit = np.flatnonzero(where >= 0)
+    same = pc.equal(b.take(hit), a.take(where[hit])).to_numpy(zero_copy_only=False)
+    where[hit[~same]] = -1  # another string with the same hash: the only candidate, so the key is absent
+    return where
+
+
 def _has_duplicates(keys: pd.Series, ids: pd.Series) -> bool:
     """True when some key occurs twice. Integer ids are compared as integers (their text is one-to-one);
     text through :func:`key_hashes`, each shared hash confirmed on the text."""

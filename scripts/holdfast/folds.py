@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .dataset import KEY, parse_times, shared_keys
+from .dataset import KEY, key_positions, parse_times, shared_keys
 from .errors import ConfigError, DataError
 from .foldspec import COMPLETE, FORWARD, GROUPED, HOLDOUT, STRATIFIED, effective_k, repeats
 from .leakage import feature_identity
@@ -257,7 +257,7 @@ def _positions(dev_keys: pd.Series, keys: pd.Series) -> np.ndarray:
     dev_keys, keys = dev_keys.reset_index(drop=True), keys.reset_index(drop=True)
     if len(keys) == len(dev_keys) and keys.dtype == dev_keys.dtype and keys.equals(dev_keys):
         return np.arange(len(keys))  # the table lists the rows in development order, as assign writes it
-    return pd.Index(dev_keys).get_indexer(keys)
+    return key_positions(dev_keys, keys)
 
 
 def _utc_values(times: pd.Series) -> np.ndarray:
