@@ -41,7 +41,7 @@ def collect(fit_paths: list[str]) -> pd.DataFrame:
 def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd.DataFrame:
     """Per candidate and metric: mean, sd, se, se_corrected, folds, rank (1 = best)."""
     sizes = fits.groupby(["repeat", "fold"])[["n_train", "n_val"]].first()
-    ratio = float(sizes["n_val"].mean() / sizes["n_train"].mean())
+    n_train, n_val = float(sizes["n_train"].mean()), float(sizes["n_val"].mean())
     rows = []
     for (candidate, family, params), part in fits.groupby(["candidate", "family", "params"], sort=True):
         ok = part[part["status"] == "ok"]
@@ -55,7 +55,7 @@ def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd
                 "candidate": candidate, "family": family, "params": params, "metric": metric,
                 "mean": float(np.mean(values)) if n else float("nan"), "sd": sd,
                 "se": sd / math.sqrt(n) if n > 1 else float("nan"),
-                "se_corrected": math.sqrt((1.0 / n + ratio) * sd**2) if n > 1 else float("nan"),
+                "se_corrected": corrected_se(values, n_train, n_val),
                 "folds": n, "train_mean": float(np.mean(ok[f"train_{metric}"])) if n else float("nan"),
                 "complete": complete, "error": errors[0] if errors else "",
             })
@@ -68,6 +68,16 @@ def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd
     table["rank"] = table["rank"].astype("int32")
     table["folds"] = table["folds"].astype("int32")
     return table.sort_values(["metric", "rank"], kind="stable").reset_index(drop=True)
+
+
+def corrected_se(values: np.ndarray, n_train: float, n_val: float) -> float:
+    """The Nadeau–Bengio corrected standard error of a candidate's CV mean (:func:`stats.corrected_variance`,
+    holdfast's one formula for it), or NaN where it is undefined: fewer than two fold scores, or a fold
+    score that is NaN or infinite (a metric undefined on that fold), which ``corrected_variance`` refuses.
+    """
+    if len(values) < 2 or not np.all(np.isfinite(values)):
+        return float("nan")
+    return stats.corrected_variance(values, n_train, n_val).corrected_se
 
 
 def complexity_ranks(candidates: dict[str, dict[str, Any]], selection: dict[str, Any],
