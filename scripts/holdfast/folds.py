@@ -17,7 +17,7 @@ import pandas as pd
 from .dataset import KEY, key_positions, parse_times, shared_keys
 from .errors import ConfigError, DataError
 from .foldspec import COMPLETE, FORWARD, GROUPED, HOLDOUT, STRATIFIED, effective_k, repeats
-from .leakage import feature_identity
+from .leakage import RowIdentity, feature_identity
 
 
 def _holdout_sizes(fraction: float, n: int) -> tuple[int, int]:
@@ -366,10 +366,11 @@ def time_overlap(dev: pd.DataFrame, table: pd.DataFrame, time_col: str,
     return out
 
 
-def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], task: str) -> pd.DataFrame:
+def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], task: str,
+                 identity: RowIdentity | None = None) -> pd.DataFrame:
     """Per repeat and fold: validation rows, groups (and how many also train), class counts or target mean/sd,
-    time range, duplicates."""
-    identity = feature_identity(dev, spec)
+    time range, duplicates. ``identity``: :func:`leakage.feature_identity` of ``dev``, if already computed."""
+    identity = identity if identity is not None else feature_identity(dev, spec)
     target = dev[spec["target"]].reset_index(drop=True)
     group_codes = (pd.factorize(dev[spec["group"]].reset_index(drop=True), use_na_sentinel=False)[0]
                    if spec.get("group") else None)
@@ -455,12 +456,15 @@ def group_overlap(dev: pd.DataFrame, summary: pd.DataFrame, spec: dict[str, Any]
 
 def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any], task: str,
                    settings: dict[str, Any], manifest: dict[str, Any], summary_path: str,
-                   fold_spec: dict[str, Any] | None = None) -> dict[str, Any]:
-    """Write folds_summary.parquet and return leakage.json's content; duplicates and group overlap may be errors."""
+                   fold_spec: dict[str, Any] | None = None, identity: RowIdentity | None = None) -> dict[str, Any]:
+    """Write folds_summary.parquet and return leakage.json's content; duplicates and group overlap may be errors.
+
+    ``identity``: :func:`leakage.feature_identity` of ``dev``, if already computed.
+    """
     from ._io import write_parquet
 
     fold_spec = fold_spec or {"scheme": "kfold"}
-    summary = fold_summary(dev, table, spec, task)
+    summary = fold_summary(dev, table, spec, task, identity)
     within = int(summary["duplicates_with_training"].sum())
     if within and settings.get("duplicates") == "error":
         worst = summary.sort_values("duplicates_with_training").iloc[-1]
