@@ -107,11 +107,12 @@ config = validate(json.loads(config_json))
 spec = {**seal_spec(config), "task": config["task"]}
 # The fields the assign_folds rule (workflow/rules/folds.smk) hands its job, with the same values.
 job = Job(rule="assign_folds", wildcards=Job(), log=[str(exp / "logs" / "assign_folds.log")],
-          input=Job(dev=str(exp / "dev.parquet"), manifest=str(exp / "sealed" / "manifest.json")),
+          input=Job(dev=str(exp / "dev.parquet")),
           output=Job(folds=str(exp / "folds.parquet"), summary=str(exp / "folds_summary.parquet"),
                      leakage=str(exp / "leakage.json")),
           params=Job(spec=json.dumps(spec, sort_keys=True), folds=json.dumps(config["folds"], sort_keys=True),
-                     test=str(exp / "sealed" / "test.parquet"), task=config["task"],
+                     test=str(exp / "sealed" / "test.parquet"), manifest=str(exp / "sealed" / "manifest.json"),
+                     task=config["task"],
                      leakage=json.dumps(config["leakage"], sort_keys=True), ledger=str(exp / "ledger.jsonl")))
 before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 t0 = time.perf_counter()

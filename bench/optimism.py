@@ -69,7 +69,7 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "scripts"))
 
 import numpy as np  # imported after the thread settings above
-from holdfast.stats import accuracy_scorer, bbc_cv, tibshirani_bias
+from holdfast.optimism import accuracy_scorer, bbc_cv, tibshirani_bias
 from scipy.stats import norm
 
 BASE_ERROR = 0.30

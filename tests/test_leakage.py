@@ -13,8 +13,8 @@ import pytest
 import yaml
 from conftest import REPO, breast_cancer_frame, diabetes_frame, run_workflow, write_config
 from holdfast.errors import DataError
-from holdfast.folds import assign, leakage_report
-from holdfast.leakage import fold_summary, single_feature_alarms
+from holdfast.folds import assign, fold_summary, leakage_report
+from holdfast.leakage import single_feature_alarms
 from holdfast.seal import seal
 
 SPEC = {"target": "target", "id": "patient", "group": None, "time": None, "drop": [], "task": "classification",

@@ -1,4 +1,5 @@
-"""holdfast.stats against hand-worked examples, scipy/scikit-learn, and the rules as their sources state them.
+"""holdfast.stats and holdfast.optimism against hand-worked examples, scipy/scikit-learn, and the rules as their
+sources state them.
 
 Every reference sits in a comment beside its check. Scores follow scikit-learn: greater is better.
 """
@@ -12,26 +13,31 @@ import numpy as np
 import pandas as pd
 import pytest
 from holdfast.errors import DataError
-from holdfast.stats import (
+from holdfast.optimism import (
     BinaryAUCScorer,
+    OofCollector,
     RowMeanScorer,
     WeightedScorer,
     accuracy_scorer,
     bbc_cv,
     best_by_mean,
-    compare_with_winner,
-    corrected_ttest,
-    corrected_variance,
-    fold_score_matrix,
-    fold_sizes,
+    concatenated_columns,
+    kept_outputs,
     neg_error_rate_scorer,
-    one_standard_error_choice,
     oof_arrays,
     optimism_summary,
     replay_scorer,
     sklearn_scorer,
     tibshirani_bias,
     tibshirani_caution,
+)
+from holdfast.stats import (
+    compare_with_winner,
+    corrected_ttest,
+    corrected_variance,
+    fold_score_matrix,
+    fold_sizes,
+    one_standard_error_choice,
 )
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -561,3 +567,81 @@ def test_oof_arrays_align_to_row_keys() -> None:
     np.testing.assert_allclose(arrays[1]["b"]["predict_proba"][:, 1], [0.2, 0.7, 0.4])
     with pytest.raises(DataError, match="exactly one prediction"):
         oof_arrays(oof[oof["row_key"] != "k2"], ["k0", "k1", "k2"])
+
+
+def _oof_tables(seed: int) -> tuple[list[pd.DataFrame], list[str]]:
+    """Three out-of-fold tables as fit jobs write them (one per family and fold): one family with class
+    probabilities and a decision function, one without a decision function, over 40 rows in 2 repeats."""
+    rng = np.random.default_rng(seed)
+    keys = [f"k{i:02d}" for i in range(40)]
+    tables = []
+    for candidates, decision in ((["a", "b"], True), (["c"], False)):  # two families
+        for repeat in (0, 1):
+            rows = []
+            for cid in candidates:
+                p1 = rng.random(40)
+                part = pd.DataFrame({"row_key": list(rng.permutation(keys)), "candidate": cid,
+                                     "prediction": (p1 > 0.5).astype(int), "proba_0": 1 - p1, "proba_1": p1})
+                if decision:
+                    part["decision"] = np.log(p1 / (1 - p1))
+                rows.append(part.assign(repeat=repeat, fold=0))
+            tables.append(pd.concat(rows, ignore_index=True))
+    return tables, keys
+
+
+def _gathered(tables: list[pd.DataFrame], keys: list[str], scorer: Any = None,
+              classes: list[Any] | None = None) -> OofCollector:
+    columns, prediction_dtype = concatenated_columns([t.iloc[:0] for t in tables])
+    collector = OofCollector(len(keys), ["a", "b", "c"], classes, columns, prediction_dtype, scorer)
+    position = {k: i for i, k in enumerate(keys)}
+    for table in tables:
+        collector.add(table, table["row_key"].map(position).to_numpy())
+    return collector
+
+
+def test_oof_collector_gives_the_arrays_of_the_concatenated_tables() -> None:
+    # The reference is oof_arrays on pandas.concat of every table (what the tally did before it read
+    # the tables one at a time): same candidates, same outputs, same values, in each repeat.
+    tables, keys = _oof_tables(0)
+    expected = oof_arrays(pd.concat(tables, ignore_index=True), keys, classes=[0, 1])
+    got = _gathered(tables, keys, classes=[0, 1]).arrays()
+    assert len(got) == len(expected) == 2
+    for mine, theirs in zip(got, expected, strict=True):
+        assert sorted(mine) == sorted(theirs) == ["a", "b", "c"]
+        for cid in theirs:
+            assert sorted(mine[cid]) == sorted(theirs[cid])  # 'c' has no decision_function in either
+            for name, value in theirs[cid].items():
+                np.testing.assert_array_equal(mine[cid][name], value)
+                assert mine[cid][name].dtype == value.dtype
+
+
+def test_oof_collector_keeps_only_what_the_scorer_reads_and_bbc_does_not_change() -> None:
+    tables, keys = _oof_tables(1)
+    y = np.random.default_rng(2).integers(0, 2, len(keys))
+    scorer = sklearn_scorer("roc_auc", "classification", [0, 1])
+    pruned = _gathered(tables, keys, scorer, classes=[0, 1]).arrays()
+    assert sorted(pruned[0]["a"]) == ["decision_function"] and sorted(pruned[0]["c"]) == ["predict_proba"]
+    full = oof_arrays(pd.concat(tables, ignore_index=True), keys, classes=[0, 1])
+    assert kept_outputs(scorer, full[0]["a"]).keys() == {"decision_function"}
+    assert kept_outputs(accuracy_scorer(), full[0]["a"]).keys() == {"predict"}
+    assert bbc_cv(pruned, y, scorer, draws=50, seed=4).estimate == bbc_cv(full, y, scorer, draws=50, seed=4).estimate
+
+
+def test_oof_collector_refuses_what_oof_arrays_refuses() -> None:
+    tables, keys = _oof_tables(3)
+    short = [t[t["row_key"] != "k07"] for t in tables]
+    with pytest.raises(DataError, match=r"candidate 'a' in repeat 0 has 39 out-of-fold rows for 40 dev rows"):
+        _gathered(short, keys).arrays()
+    twice = [*tables, tables[0]]
+    with pytest.raises(DataError, match=r"candidate 'a' in repeat 0 has 80 out-of-fold rows for 40 dev rows"):
+        _gathered(twice, keys, sklearn_scorer("roc_auc", "classification", [0, 1])).arrays()
+    with pytest.raises(DataError, match=r"no column\(s\) \['proba_2'\]"):
+        _gathered(tables, keys, classes=[0, 1, 2]).arrays()
+
+
+def test_the_optimism_names_still_import_from_stats() -> None:
+    from holdfast import optimism, stats
+
+    assert stats.bbc_cv is optimism.bbc_cv and stats.tibshirani_bias is optimism.tibshirani_bias
+    with pytest.raises(AttributeError):
+        _ = stats.no_such_name

@@ -9,6 +9,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from holdfast.stats import corrected_variance
 from holdfast.tally import choose, complexity_ranks, summarise
 
 
@@ -35,6 +36,26 @@ def test_corrected_standard_error_follows_nadeau_bengio() -> None:
     assert row["se"] == pytest.approx(math.sqrt(s2 / 6), abs=1e-15)
     assert row["se_corrected"] == pytest.approx(math.sqrt((1 / 6 + 100 / 200) * s2), abs=1e-15)
     assert list(ranking.sort_values("rank")["candidate"]) == ["a", "b", "c"]
+    # One formula: the ranking's corrected standard error is stats.corrected_variance's, to the last bit.
+    assert row["se_corrected"] == corrected_variance(values, 200, 100).corrected_se
+
+
+def test_a_fold_score_that_is_nan_leaves_the_corrected_standard_error_undefined() -> None:
+    # corrected_variance refuses NaN scores (a metric undefined on a fold, e.g. roc_auc on one class); the
+    # tally must still rank the other candidates, so it reports NaN for that candidate rather than failing.
+    fits = fits_table()
+    fits.loc[(fits["candidate"] == "b") & (fits["fold"] == 1) & (fits["repeat"] == 0), "val_accuracy"] = np.nan
+    with pytest.raises(ValueError, match="NaN or infinite"):
+        corrected_variance(fits.loc[fits["candidate"] == "b", "val_accuracy"].to_numpy(), 200, 100)
+    ranking = summarise(fits, ["accuracy"], 6).set_index("candidate")
+    assert math.isnan(ranking.loc["b", "se_corrected"]) and math.isnan(ranking.loc["b", "se"])
+    assert ranking.loc["a", "se_corrected"] > 0 and ranking.loc["c", "se_corrected"] > 0
+    failed = fits_table()  # a fold that failed outright counts out of the folds, not as NaN
+    failed.loc[(failed["candidate"] == "c") & (failed["fold"] == 2) & (failed["repeat"] == 1), "status"] = "error"
+    row = summarise(failed, ["accuracy"], 6).set_index("candidate").loc["c"]
+    kept = failed.loc[(failed["candidate"] == "c") & (failed["status"] == "ok"), "val_accuracy"].to_numpy()
+    assert row["folds"] == 5 and not row["complete"]
+    assert row["se_corrected"] == corrected_variance(kept, 200, 100).corrected_se
 
 
 def test_one_standard_error_rule_picks_the_simplest_within_one_se() -> None:

@@ -14,9 +14,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .dataset import KEY, parse_times
+from .dataset import KEY, key_positions, parse_times, shared_keys
 from .errors import ConfigError, DataError
 from .foldspec import COMPLETE, FORWARD, GROUPED, HOLDOUT, STRATIFIED, effective_k, repeats
+from .leakage import RowIdentity, feature_identity
 
 
 def _holdout_sizes(fraction: float, n: int) -> tuple[int, int]:
@@ -203,7 +204,7 @@ def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: 
     target = dev[target_col] if scheme in STRATIFIED else None
     groups = dev[group_col] if group_col and scheme in GROUPED else None
     check_feasible(spec, len(dev), target, groups)
-    keys = dev[KEY].to_numpy()
+    keys = dev[KEY].array  # the column's own (Arrow) strings, not one Python object per row
     parts = []
     k = effective_k(spec, len(dev), int(groups.nunique()) if groups is not None else None)
     for repeat in range(repeats(spec)):
@@ -231,16 +232,40 @@ def assign(dev: pd.DataFrame, spec: dict[str, Any], target_col: str, group_col: 
     return table
 
 
+class RepeatFolds:
+    """One repeat's rows of the fold table, read once, giving each fold's (training, validation) masks."""
+
+    def __init__(self, part: pd.DataFrame) -> None:
+        self.validated = part["fold"].to_numpy(dtype="float64", na_value=np.nan)
+        self.train_from = (part["train_from"].to_numpy() if "train_from" in part
+                           else np.zeros(len(part), dtype=np.int64))
+
+    def masks(self, fold: int) -> tuple[np.ndarray, np.ndarray]:
+        """(training, validation) of one fold: validated there; trained on when not, and train_from <= fold."""
+        validation = self.validated == fold
+        training = ~validation & (self.train_from <= fold)
+        return training, validation
+
+
 def fold_masks(part: pd.DataFrame, fold: int) -> tuple[np.ndarray, np.ndarray]:
     """(training, validation) masks over one repeat's rows of the fold table for one fold."""
-    validated = part["fold"].to_numpy(dtype="float64", na_value=np.nan)
-    validation = validated == fold
-    train_from = part["train_from"].to_numpy() if "train_from" in part else np.zeros(len(part), dtype=np.int64)
-    training = ~validation & (train_from <= fold)
-    return training, validation
+    return RepeatFolds(part).masks(fold)
 
 
-def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, spec: dict[str, Any],
+def _positions(dev_keys: pd.Series, keys: pd.Series) -> np.ndarray:
+    """Position of each key among the development rows (−1: not a development row)."""
+    dev_keys, keys = dev_keys.reset_index(drop=True), keys.reset_index(drop=True)
+    if len(keys) == len(dev_keys) and keys.dtype == dev_keys.dtype and keys.equals(dev_keys):
+        return np.arange(len(keys))  # the table lists the rows in development order, as assign writes it
+    return key_positions(dev_keys, keys)
+
+
+def _utc_values(times: pd.Series) -> np.ndarray:
+    """Parsed UTC times as plain datetime64 values (comparable without a Python object per row)."""
+    return times.dt.tz_convert("UTC").dt.tz_localize(None).to_numpy()
+
+
+def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: Any, spec: dict[str, Any],
           groups: pd.Series | None = None, times: pd.Series | None = None, time_unit: str | None = None) -> None:
     """Check the invariants; raise DataError naming the scheme, repeat, fold and count.
 
@@ -248,60 +273,75 @@ def check(table: pd.DataFrame, dev_keys: pd.Series, test_keys: set[str] | None, 
     validation disjoint and both non-empty. Complete schemes: every row validated exactly once per
     repeat. Grouped schemes: no group on both sides of any fold. Forward schemes: every training row
     strictly earlier than the fold's first validation row, with at least the gap between them.
+    ``test_keys``: the sealed row keys (a set, list or Series), or None.
     """
-    dev_set = set(map(str, dev_keys))
+    dev_keys = pd.Series(dev_keys).reset_index(drop=True).astype(str)
+    n_dev = len(dev_keys)  # unique: the seal made them so
     scheme = spec["scheme"]
-    k = effective_k(spec, len(dev_set), int(groups.nunique()) if groups is not None else None)
-    if test_keys:
-        leaked = set(table[KEY]) & test_keys
+    k = effective_k(spec, n_dev, int(groups.nunique()) if groups is not None else None)
+    if test_keys is not None and len(test_keys):
+        leaked = shared_keys(table[KEY], test_keys)
         if leaked:
             raise DataError(f"folds ({scheme}) name {len(leaked)} sealed test row(s), e.g. {sorted(leaked)[0]!r}; "
                             "the fold table is corrupt: start a new experiment")
-    unknown = set(table[KEY]) - dev_set
+    repeats_of = [(repeat, part.reset_index(drop=True)) for repeat, part in table.groupby("repeat", sort=True)]
+    where_of = [_positions(dev_keys, part[KEY].astype(str)) for _, part in repeats_of]
+    unknown = pd.concat([part[KEY][where < 0] for (_, part), where in zip(repeats_of, where_of, strict=True)]).nunique()
     if unknown:
-        raise DataError(f"folds ({scheme}) name {len(unknown)} row(s) not in the development set; rebuild the folds")
-    group_of = dict(zip(map(str, dev_keys), groups.astype(str).to_numpy(), strict=True)) if groups is not None else None
-    time_of = (dict(zip(map(str, dev_keys), parse_times(times, time_unit), strict=True))
-               if times is not None else None)
-    for repeat, part in table.groupby("repeat", sort=True):
-        part = part.reset_index(drop=True)
-        counts = part[KEY].value_counts()
-        if len(counts) != len(dev_set) or int(counts.max()) != 1:
-            raise DataError(f"folds ({scheme}), repeat {repeat}: {len(dev_set) - len(counts)} development row(s) "
+        raise DataError(f"folds ({scheme}) name {unknown} row(s) not in the development set; rebuild the folds")
+    group_codes, group_names = (pd.factorize(groups.astype(str).reset_index(drop=True), use_na_sentinel=False)
+                                if groups is not None else (None, None))
+    parsed = parse_times(times, time_unit).reset_index(drop=True) if times is not None else None
+    stamps = _utc_values(parsed) if parsed is not None else None
+    for (repeat, part), where in zip(repeats_of, where_of, strict=True):
+        counts = np.bincount(where, minlength=n_dev)
+        distinct = int((counts > 0).sum())
+        if distinct != n_dev or int(counts.max()) != 1:
+            raise DataError(f"folds ({scheme}), repeat {repeat}: {n_dev - distinct} development row(s) "
                             "missing from the table or listed twice; rebuild the folds")
         never = int(part["fold"].isna().sum())
         if scheme in COMPLETE and never:
             raise DataError(f"folds ({scheme}), repeat {repeat}: {never} development row(s) are never validated; "
                             "rebuild the folds")
+        part_groups = group_codes[where] if group_codes is not None else None
+        folds_of = RepeatFolds(part)
         for fold in range(k):
-            training, validation = fold_masks(part, fold)
+            training, validation = folds_of.masks(fold)
             if not validation.any():
                 raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold} is empty (0 rows); lower folds.k")
             if not training.any():
                 raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold} has no training rows; lower folds.k")
-            if group_of is not None and scheme in GROUPED:
-                train_groups = {group_of[key] for key in part.loc[training, KEY]}
-                both = train_groups & {group_of[key] for key in part.loc[validation, KEY]}
-                if both:
-                    raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold}: {len(both)} group(s) on both "
-                                    f"sides, e.g. '{sorted(both)[0]}'; rebuild the folds")
-            if scheme in FORWARD and time_of is not None:
-                _check_forward(part, training, validation, time_of, group_of, spec, int(repeat), fold)
+            if part_groups is not None and scheme in GROUPED:
+                assert group_names is not None
+                trained = np.zeros(len(group_names), dtype=bool)
+                trained[part_groups[training]] = True
+                both = np.unique(part_groups[validation][trained[part_groups[validation]]])
+                if both.size:
+                    raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold}: {both.size} group(s) on both "
+                                    f"sides, e.g. '{sorted(str(g) for g in group_names[both])[0]}'; rebuild the folds")
+            if scheme in FORWARD and stamps is not None:
+                assert parsed is not None
+                first_shown = parsed.iloc[where[validation]].min()
+                _check_forward(stamps[where], training, validation, first_shown, part_groups, spec, int(repeat), fold)
 
 
-def _check_forward(part: pd.DataFrame, training: np.ndarray, validation: np.ndarray, time_of: dict[str, Any],
-                   group_of: dict[str, str] | None, spec: dict[str, Any], repeat: int, fold: int) -> None:
-    """Training strictly earlier than validation, with at least ``gap`` rows (groups) between them."""
+def _check_forward(stamps: np.ndarray, training: np.ndarray, validation: np.ndarray, first_shown: Any,
+                   groups: np.ndarray | None, spec: dict[str, Any], repeat: int, fold: int) -> None:
+    """Training strictly earlier than validation, with at least ``gap`` rows (groups) between them.
+
+    ``stamps`` and ``groups``: the times and group codes of the repeat's rows; ``first_shown``: the
+    first validation time as the message shows it.
+    """
     scheme = spec["scheme"]
-    train_times = [time_of[key] for key in part.loc[training, KEY]]
-    val_times = [time_of[key] for key in part.loc[validation, KEY]]
-    later = sum(t >= min(val_times) for t in train_times)
+    train_times, val_times = stamps[training], stamps[validation]
+    first = val_times.min()
+    later = int((train_times >= first).sum())
     if later:
         raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold}: {later} training row(s) are not earlier "
-                        f"than the first validation time {min(val_times)}; rebuild the folds")
-    latest, first = max(train_times), min(val_times)
-    between = [key for key in part[KEY] if latest < time_of[key] < first]
-    count = len({group_of[key] for key in between}) if scheme == "forward_group" and group_of else len(between)
+                        f"than the first validation time {first_shown}; rebuild the folds")
+    between = (stamps > train_times.max()) & (stamps < first)
+    count = (int(np.unique(groups[between]).size) if scheme == "forward_group" and groups is not None
+             else int(between.sum()))
     if count < int(spec["gap"]):
         raise DataError(f"folds ({scheme}), repeat {repeat}, fold {fold}: only {count} row(s)/group(s) lie between "
                         f"the last training time and the first validation time, fewer than folds.gap="
@@ -311,18 +351,63 @@ def _check_forward(part: pd.DataFrame, training: np.ndarray, validation: np.ndar
 def time_overlap(dev: pd.DataFrame, table: pd.DataFrame, time_col: str,
                  time_unit: str | None = None) -> list[dict[str, Any]]:
     """Per fold of a scheme that ignores time: training rows later than the fold's first validation row."""
-    times = pd.Series(parse_times(dev[time_col], time_unit).to_numpy(), index=dev[KEY].to_numpy())
+    times = _utc_values(parse_times(dev[time_col], time_unit).reset_index(drop=True))
     out = []
     for repeat, part in table.groupby("repeat", sort=True):
         part = part.reset_index(drop=True)
-        stamps = times.loc[part[KEY]].to_numpy()
+        stamps = times[_positions(dev[KEY], part[KEY])]
+        folds_of = RepeatFolds(part)
         for fold in sorted(part["fold"].dropna().unique()):
-            training, validation = fold_masks(part, int(fold))
+            training, validation = folds_of.masks(int(fold))
             later = int((stamps[training] > stamps[validation].min()).sum())
             if later:
                 out.append({"repeat": int(repeat), "fold": int(fold), "training_rows_later": later,
                             "training_rows": int(training.sum())})
     return out
+
+
+def fold_summary(dev: pd.DataFrame, folds: pd.DataFrame, spec: dict[str, Any], task: str,
+                 identity: RowIdentity | None = None) -> pd.DataFrame:
+    """Per repeat and fold: validation rows, groups (and how many also train), class counts or target mean/sd,
+    time range, duplicates. ``identity``: :func:`leakage.feature_identity` of ``dev``, if already computed."""
+    identity = identity if identity is not None else feature_identity(dev, spec)
+    target = dev[spec["target"]].reset_index(drop=True)
+    group_codes = (pd.factorize(dev[spec["group"]].reset_index(drop=True), use_na_sentinel=False)[0]
+                   if spec.get("group") else None)
+    labels = sorted(target.unique(), key=str) if task == "classification" else []
+    label_codes = pd.Index(labels).get_indexer(target) if labels else None
+    times = (parse_times(dev[spec["time"]], spec.get("time_unit")).reset_index(drop=True)
+             if spec.get("time") else None)
+    rows = []
+    for repeat, part in folds.groupby("repeat", sort=True):
+        part = part.reset_index(drop=True)
+        where = _positions(dev[KEY], part[KEY])
+        folds_of = RepeatFolds(part)
+        for fold in sorted(int(f) for f in part["fold"].dropna().unique()):
+            training, validation = folds_of.masks(fold)
+            val, train = where[validation], where[training]
+            row: dict[str, Any] = {"repeat": int(repeat), "fold": fold, "rows": len(val), "training_rows": len(train),
+                                   "duplicates_with_training": identity.repeated(train, val)}
+            if group_codes is not None:
+                validation_groups = np.unique(group_codes[val])
+                trained = np.zeros(int(group_codes.max()) + 1, dtype=bool)
+                trained[group_codes[train]] = True
+                row["groups"] = len(validation_groups)
+                # Counted, never assumed from the scheme: groups with rows on both sides of this fold.
+                row["groups_on_both_sides"] = int(trained[validation_groups].sum())
+            if label_codes is not None:
+                counts = np.bincount(label_codes[val], minlength=len(labels))
+                for j, label in enumerate(labels):
+                    row[f"class_{label}"] = int(counts[j])
+            else:
+                sub = target.iloc[val]
+                row["target_mean"] = float(sub.mean())
+                row["target_sd"] = float(sub.std(ddof=1)) if len(sub) > 1 else float("nan")
+            if times is not None:
+                shown = times.iloc[val]
+                row["time_first"], row["time_last"] = str(shown.min()), str(shown.max())
+            rows.append(row)
+    return pd.DataFrame(rows)
 
 
 def scheme_ignores_time(fold_spec: dict[str, Any]) -> bool:
@@ -371,13 +456,15 @@ def group_overlap(dev: pd.DataFrame, summary: pd.DataFrame, spec: dict[str, Any]
 
 def leakage_report(dev: pd.DataFrame, table: pd.DataFrame, spec: dict[str, Any], task: str,
                    settings: dict[str, Any], manifest: dict[str, Any], summary_path: str,
-                   fold_spec: dict[str, Any] | None = None) -> dict[str, Any]:
-    """Write folds_summary.parquet and return leakage.json's content; duplicates and group overlap may be errors."""
+                   fold_spec: dict[str, Any] | None = None, identity: RowIdentity | None = None) -> dict[str, Any]:
+    """Write folds_summary.parquet and return leakage.json's content; duplicates and group overlap may be errors.
+
+    ``identity``: :func:`leakage.feature_identity` of ``dev``, if already computed.
+    """
     from ._io import write_parquet
-    from .leakage import fold_summary
 
     fold_spec = fold_spec or {"scheme": "kfold"}
-    summary = fold_summary(dev, table, spec, task)
+    summary = fold_summary(dev, table, spec, task, identity)
     within = int(summary["duplicates_with_training"].sum())
     if within and settings.get("duplicates") == "error":
         worst = summary.sort_values("duplicates_with_training").iloc[-1]

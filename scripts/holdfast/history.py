@@ -6,11 +6,12 @@ by the fold table they were scored on. The optimism estimates then count every c
 the current set: BBC-CV draws over all of them (out-of-fold predictions are comparable across fold tables),
 and the Tibshirani–Tibshirani estimate uses every candidate scored on the current fold table (it needs the
 same folds). Predictions are stored by row position in ``dev.parquet`` (fixed at the seal), not by row key,
-so hundreds of candidates stay small in memory.
+so hundreds of candidates stay small in memory; the tally archives them one oof/ table at a time.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -19,6 +20,7 @@ import pandas as pd
 
 from ._io import read_json, sha256_file, write_json, write_parquet
 from .dataset import KEY
+from .errors import DataError
 
 HISTORY = "history"
 INDEX = "history/index.json"
@@ -35,11 +37,49 @@ def read_index(exp: Path) -> dict[str, Any]:
     return read_json(path) if path.exists() else {"candidates": {}, "fold_tables": {}}
 
 
-def archive(exp: Path, fits: pd.DataFrame, oof: pd.DataFrame, positions: pd.Series, folds_sha256: str,
-            round_number: int, candidates: dict[str, dict[str, Any]]) -> dict[str, Any]:
-    """Copy each current candidate's fit records and out-of-fold outputs into history/ (once per fold table).
+def to_archive(index: dict[str, Any], fits: pd.DataFrame, folds_sha256: str) -> set[str]:
+    """Complete candidates whose out-of-fold outputs this tally archives (not yet kept for this fold table)."""
+    table = table_id(folds_sha256)
+    out = set()
+    for cid, part in fits.groupby("candidate", sort=True):
+        entry = index["candidates"].get(cid)
+        if (entry is None or entry["fold_table"] != table) and bool((part["status"] == "ok").all()):
+            out.add(str(cid))
+    return out
 
-    ``positions`` maps row key → position in dev.parquet. Returns the updated index, which is written too.
+
+def archive_oof(exp: Path, oof: pd.DataFrame, rows: np.ndarray, folds_sha256: str,
+                wanted: set[str]) -> dict[str, dict[str, str]]:
+    """Write history/<table>/oof/<candidate>.parquet for each wanted candidate with rows in this ``oof`` table.
+
+    ``rows``: each row's position in dev.parquet. Called once per table (a family's rows are in its own
+    tables), so the out-of-fold outputs of every candidate are never in memory at once.
+    """
+    if (rows < 0).any():
+        unknown = oof.loc[rows < 0, KEY].iloc[0]
+        raise DataError(f"out-of-fold row key {unknown!r} is not a row of dev.parquet; the oof/ files do not belong "
+                        "to this experiment's seal: rerun the fits")
+    table = table_id(folds_sha256)
+    files: dict[str, dict[str, str]] = {}
+    present = set(oof["candidate"].astype(str).unique()) & wanted
+    outputs = [c for c in oof.columns if c == "prediction" or str(c).startswith(("proba_", "decision"))]
+    for cid in sorted(present):
+        mine = (oof["candidate"] == cid).to_numpy()
+        stored = pd.DataFrame({"pos": rows[mine].astype("int32"), "repeat": oof.loc[mine, "repeat"].to_numpy(
+            dtype="int16")})
+        for column in outputs:
+            stored[column] = oof.loc[mine, column].to_numpy()
+        stored = stored.sort_values(["repeat", "pos"], kind="stable").reset_index(drop=True)
+        oof_file = f"{HISTORY}/{table}/oof/{cid}.parquet"
+        write_parquet(exp / oof_file, stored)
+        files[cid] = {"oof": oof_file, "oof_sha256": sha256_file(exp / oof_file)}
+    return files
+
+
+def archive(exp: Path, fits: pd.DataFrame, oof_files: dict[str, dict[str, str]], folds_sha256: str,
+            round_number: int, candidates: dict[str, dict[str, Any]]) -> dict[str, Any]:
+    """Copy each current candidate's fit records into history/ (once per fold table) and index them with the
+    out-of-fold files :func:`archive_oof` wrote. Returns the updated index, which is written too.
     """
     index = read_index(exp)
     table = table_id(folds_sha256)
@@ -52,16 +92,8 @@ def archive(exp: Path, fits: pd.DataFrame, oof: pd.DataFrame, positions: pd.Seri
         fit_file = f"{HISTORY}/{table}/fits/{cid}.parquet"
         write_parquet(exp / fit_file, part.reset_index(drop=True))
         files = {"fits": fit_file, "fits_sha256": sha256_file(exp / fit_file)}
-        mine = oof[oof["candidate"] == cid]
-        if complete and len(mine):
-            stored = pd.DataFrame({"pos": positions.reindex(mine[KEY]).to_numpy(dtype="int64").astype("int32"),
-                                   "repeat": mine["repeat"].to_numpy(dtype="int16")})
-            for column in [c for c in mine.columns if c == "prediction" or str(c).startswith(("proba_", "decision"))]:
-                stored[column] = mine[column].to_numpy()
-            stored = stored.sort_values(["repeat", "pos"], kind="stable").reset_index(drop=True)
-            oof_file = f"{HISTORY}/{table}/oof/{cid}.parquet"
-            write_parquet(exp / oof_file, stored)
-            files.update({"oof": oof_file, "oof_sha256": sha256_file(exp / oof_file)})
+        if complete and cid in oof_files:
+            files.update(oof_files[cid])
         index["candidates"][cid] = {
             "family": candidates.get(cid, {}).get("family", str(part["family"].iloc[0])),
             "fold_table": table, "first_round": int(entry["first_round"]) if entry else round_number,
@@ -81,27 +113,32 @@ def fits_of(exp: Path, index: dict[str, Any], ids: list[str]) -> pd.DataFrame:
     return pd.concat([pd.read_parquet(exp / index["candidates"][c]["fits"]) for c in ids], ignore_index=True)
 
 
-def oof_by_repeat(exp: Path, index: dict[str, Any], ids: list[str], rows: np.ndarray,
-                  classes: list[Any] | None) -> tuple[list[dict[str, dict[str, np.ndarray]]], list[str]]:
+def oof_by_repeat(exp: Path, index: dict[str, Any], ids: list[str], rows: np.ndarray, classes: list[Any] | None,
+                  keep: Callable[[dict[str, np.ndarray]], dict[str, np.ndarray]] | None = None,
+                  ) -> tuple[list[dict[str, dict[str, np.ndarray]]], list[str]]:
     """Out-of-fold outputs of these candidates on ``rows`` (dev positions), one mapping per shared repeat.
 
     A candidate without a prediction for every row in each shared repeat is left out and named in the
-    second return value (it cannot be compared row by row with the others).
+    second return value (it cannot be compared row by row with the others). ``keep`` may drop outputs
+    no one will read; files are read one candidate at a time.
     """
-    loaded: dict[str, pd.DataFrame] = {}
     left_out: list[str] = []
+    stored: list[str] = []
+    repeats: dict[str, set[Any]] = {}
     for cid in ids:
         entry = index["candidates"][cid]
         if "oof" not in entry:
             left_out.append(cid)
             continue
-        loaded[cid] = pd.read_parquet(exp / entry["oof"])
-    if not loaded:
+        stored.append(cid)
+        repeats[cid] = set(pd.read_parquet(exp / entry["oof"], columns=["repeat"])["repeat"].unique())
+    if not stored:
         return [], left_out
-    shared = sorted(set.intersection(*(set(frame["repeat"].unique()) for frame in loaded.values())))
+    shared = sorted(set.intersection(*repeats.values()))
     proba = [f"proba_{c}" for c in classes] if classes is not None else None
     out: list[dict[str, dict[str, np.ndarray]]] = [{} for _ in shared]
-    for cid, frame in loaded.items():
+    for cid in stored:
+        frame = pd.read_parquet(exp / index["candidates"][cid]["oof"])
         per_repeat = []
         for repeat in shared:
             part = frame[frame["repeat"] == repeat].set_index("pos")
@@ -113,7 +150,8 @@ def oof_by_repeat(exp: Path, index: dict[str, Any], ids: list[str], rows: np.nda
                 outputs["predict_proba"] = part[proba].to_numpy(dtype=float)
             if "decision" in part.columns and part["decision"].notna().all():
                 outputs["decision_function"] = part["decision"].to_numpy(dtype=float)
-            per_repeat.append(outputs)
+            per_repeat.append(keep(outputs) if keep is not None else outputs)
+        del frame
         if len(per_repeat) != len(shared):
             left_out.append(cid)
             continue

@@ -40,9 +40,12 @@ def check(test_keys: Any, results: Path, experiment: str, reason: str | None,
     """Refuse sealed rows that another opened test set holds, unless ``reason``; return what to record."""
     import pandas as pd
 
+    opened = opened_test_sets(results)
+    if not opened:
+        return None
     wanted = set(map(str, test_keys))
     overlaps = []
-    for anchor, (label, path) in sorted(opened_test_sets(results).items(), key=lambda item: item[1][0]):
+    for anchor, (label, path) in sorted(opened.items(), key=lambda item: item[1][0]):
         if anchor == own_anchor:
             continue
         seen = set(pd.read_parquet(path, columns=["row_key"])["row_key"].astype(str))

@@ -8,6 +8,7 @@ written read-only and its fingerprint goes into the manifest and the ledger.
 from __future__ import annotations
 
 import os
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -22,13 +23,14 @@ from .dataset import (
     check_target_for_task,
     hash_unit,
     infer_task,
+    key_order,
     keys_digest,
     parse_times,
     row_keys,
 )
 from .errors import ConfigError, DataError, SealedAccessError
 from .layout import DEV, LEDGER, MANIFEST, TEST
-from .leakage import duplicates_across, single_feature_alarms
+from .leakage import feature_identity, single_feature_alarms
 
 
 def data_fingerprint(path: str | os.PathLike[str]) -> dict[str, Any]:
@@ -56,13 +58,31 @@ def sealed_mask(keys: pd.Series, target: pd.Series | None, spec: dict[str, Any],
     if spec["scheme"] == "stratified":
         assert target is not None
         mask = np.zeros(len(keys), dtype=bool)
-        for _, positions in pd.Series(np.arange(len(keys))).groupby(target.to_numpy()).groups.items():
-            idx = np.asarray(list(positions))
-            order = idx[np.lexsort((keys.to_numpy()[idx], units[idx]))]
-            take = round(fraction * len(idx))
-            mask[order[:take]] = True
+        classes = pd.factorize(target.to_numpy())[0]
+        for label in range(int(classes.max()) + 1 if len(classes) else 0):
+            idx = np.flatnonzero(classes == label)
+            mask[_first_by_unit(idx, units[idx], keys, round(fraction * len(idx)))] = True
         return mask
     raise ConfigError(f"config key 'test.scheme': unknown scheme {spec['scheme']!r}; see config/README.md")
+
+
+def _first_by_unit(idx: np.ndarray, units: np.ndarray, keys: pd.Series, take: int) -> np.ndarray:
+    """The ``take`` rows of ``idx`` that come first in the order (hash unit, then key).
+
+    The same rows as sorting them all by (unit, key) and taking the head, in linear time: rows below the
+    take-th smallest unit all go, and the rows tied at that unit (almost never more than one) go in key order.
+    """
+    if take <= 0:
+        return idx[:0]
+    if take >= len(idx):
+        return idx
+    cut = np.partition(units, take - 1)[take - 1]
+    below = idx[units < cut]
+    tied = idx[units == cut]
+    if len(tied) > 1:
+        text = keys.to_numpy()
+        tied = tied[np.argsort(np.array([str(text[i]) for i in tied], dtype=object), kind="stable")]
+    return np.concatenate([below, tied[: take - len(below)]])
 
 
 def _stratified_groups(groups: pd.Series, target: pd.Series, spec: dict[str, Any]) -> np.ndarray:
@@ -194,6 +214,33 @@ def check_before_seal(config: dict[str, Any], frame: pd.DataFrame, test_rows: np
     check_test_partition(dev_target, target[test_rows], metrics, config["data"]["path"])
 
 
+def _split(frame: pd.DataFrame, keys: pd.Series, test_rows: np.ndarray,
+           dev_rows: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(test, dev): the rows of each side with the row key in front, column by column.
+
+    Each column of ``frame`` is dropped as soon as both sides have their copy of it, so the data is held
+    about twice at the peak (frame plus the two sides), not three times (frame, a keyed copy, the sides).
+    """
+    sides: list[dict[Any, Any]] = [{}, {}]
+    positions = [np.flatnonzero(test_rows), np.flatnonzero(dev_rows)]
+    for column in [KEY, *frame.columns]:
+        values = keys if column == KEY else frame.pop(column)
+        plain = isinstance(values.dtype, np.dtype)
+        for side, rows in zip(sides, positions, strict=True):
+            side[column] = (pd.Series(np.take(values.to_numpy(), rows), name=values.name, copy=False) if plain
+                            else values.take(rows).reset_index(drop=True))
+        del values
+    test, dev = (pd.DataFrame(side, copy=False) for side in sides)
+    return test, dev
+
+
+def _written(path: Path, frame: pd.DataFrame | None, mode: int | None) -> str:
+    """Write ``frame`` to ``path`` (unless None: already there) and return the file's SHA-256."""
+    if frame is not None:
+        write_parquet(path, frame, mode=mode)
+    return sha256_file(path)
+
+
 def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd.DataFrame, str]:
     """Read the data file, check the declared columns and return it with the task."""
     frame = read_table(path)
@@ -266,18 +313,25 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                                 "the seal never re-runs: name a new experiment to draw a new test set")
     frame, task = load_checked(data_path, spec)
     keys = row_keys(frame, spec.get("id"))
-    mask, dropped = split_masks(frame, keys, spec, task)
-    n_test, n_dev = int(mask.sum()), int((~mask & ~dropped).sum())
-    check_sides(n_test, n_dev, spec, str(data_path))
-    if task == "classification":
-        check_development_classes(frame[spec["target"]][~mask & ~dropped], str(data_path))
-        check_test_partition(frame[spec["target"]][~mask & ~dropped], frame[spec["target"]][mask], None,
-                             str(data_path))
-    keyed = frame.copy()
-    keyed.insert(0, KEY, keys.to_numpy())
-    test, dev = keyed[mask].reset_index(drop=True), keyed[~mask & ~dropped].reset_index(drop=True)
+    with ThreadPoolExecutor(max_workers=1) as helper:
+        # Sorting the keys and the feature identity release the GIL: they run beside the hash units,
+        # whose SHA-256 per key holds it.
+        ordered = helper.submit(key_order, keys)
+        identity = helper.submit(feature_identity, frame, spec)
+        mask, dropped = split_masks(frame, keys, spec, task)
+        n_test, n_dev = int(mask.sum()), int((~mask & ~dropped).sum())
+        check_sides(n_test, n_dev, spec, str(data_path))
+        if task == "classification":
+            check_development_classes(frame[spec["target"]][~mask & ~dropped], str(data_path))
+            check_test_partition(frame[spec["target"]][~mask & ~dropped], frame[spec["target"]][mask], None,
+                                 str(data_path))
+        development = ~mask & ~dropped
+        duplicates = identity.result().repeated(development, mask)
+        order = ordered.result()
     guards = {"duplicates": "warn", "single_feature_threshold": 0.98, **(leakage or {})}
-    duplicates = duplicates_across(dev, test, spec)
+    n_rows, columns = len(frame), [str(c) for c in frame.columns]
+    test, dev = _split(frame, keys, mask, development)
+    del frame  # from here on only the two sides are kept, not a third copy of every row
     if duplicates and guards["duplicates"] == "error":
         raise DataError(f"{duplicates} sealed test row(s) of '{data_path}' repeat the features of a development row "
                         "(exact duplicates); remove them or set leakage.duplicates: warn")
@@ -296,19 +350,20 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         sealed_spec = {**spec, "task": task}
         public_key = _start_signing(out, signing_key) if signing_key else None
         earlier = _interrupted_seal(out, test, fingerprint["sha256"], sealed_spec, experiment)
-        if not (out / TEST).exists():
-            write_parquet(out / TEST, test, mode=0o444)
-        write_parquet(out / DEV, dev)
+        with ThreadPoolExecutor(max_workers=2) as writers:  # Parquet writing releases the GIL
+            test_file = writers.submit(_written, out / TEST, None if (out / TEST).exists() else test, 0o444)
+            dev_file = writers.submit(_written, out / DEV, dev, None)
+            digests = {"dev_sha256": keys_digest(keys, order, development),
+                       "test_sha256": keys_digest(keys, order, mask)}
+            files = {"test.parquet": test_file.result(), "dev.parquet": dev_file.result()}
         manifest: dict[str, Any] = {
             "experiment": experiment,
-            "data": {"path": str(data_path), "rows": len(frame), "columns": [str(c) for c in frame.columns],
-                     **fingerprint},
+            "data": {"path": str(data_path), "rows": n_rows, "columns": columns, **fingerprint},
             "spec": sealed_spec,
             "counts": {"dev": n_dev, "test": n_test, "left_out_in_gap": int(dropped.sum()),
                        **({"dev_groups": int(dev[spec["group"]].nunique())} if spec.get("group") else {})},
-            "keys": {"dev_sha256": keys_digest(dev[KEY]), "test_sha256": keys_digest(test[KEY]),
-                     "from": "id column" if spec.get("id") else "row content"},
-            "files": {"test.parquet": sha256_file(out / TEST), "dev.parquet": sha256_file(out / DEV)},
+            "keys": {**digests, "from": "id column" if spec.get("id") else "row content"},
+            "files": files,
             "holdfast": __version__,
             "leakage": {"duplicate_feature_rows_dev_test": duplicates, "single_feature": alarms,
                         "single_feature_threshold": float(guards["single_feature_threshold"]),

@@ -58,27 +58,32 @@ def _scope(smk: Any) -> str:
 
 def assign_folds(smk: Any) -> None:
     """Rule assign_folds -> holdfast.folds.assign and check (nested: on the outer-training rows)."""
+    from concurrent.futures import ThreadPoolExecutor
+
     import pandas as pd
 
     from . import ledger
-    from ._io import read_json, sha256_file, write_json, write_parquet
+    from ._io import read_json, read_parquet, sha256_file, write_json, write_parquet
     from .folds import assign, check, leakage_report
+    from .leakage import feature_identity
 
     spec, fold_spec = json.loads(smk.params.spec), json.loads(smk.params.folds)
-    dev = pd.read_parquet(smk.input.dev)
+    dev = read_parquet(smk.input.dev)
     scope = _scope(smk)
     if scope != "main":
         from .nested import outer_rows
 
         dev = dev[~outer_rows(dev, pd.read_parquet(smk.input.outer), int(smk.wildcards.outer))]
         dev = dev.reset_index(drop=True)
-    table = assign(dev, fold_spec, spec["target"], spec["group"], spec.get("time"), spec.get("time_unit"))
-    groups = dev[spec["group"]] if spec["group"] else None
-    times = dev[spec["time"]] if spec.get("time") else None
-    test_keys = set(pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"])
-    check(table, dev["row_key"], test_keys, fold_spec, groups, times, spec.get("time_unit"))
-    report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
-                            read_json(smk.params.manifest), smk.output.summary, fold_spec)
+    with ThreadPoolExecutor(max_workers=1) as helper:  # duplicate rows are found beside the fold draw
+        identity = helper.submit(feature_identity, dev, spec)
+        table = assign(dev, fold_spec, spec["target"], spec["group"], spec.get("time"), spec.get("time_unit"))
+        groups = dev[spec["group"]] if spec["group"] else None
+        times = dev[spec["time"]] if spec.get("time") else None
+        test_keys = pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"]
+        check(table, dev["row_key"], test_keys, fold_spec, groups, times, spec.get("time_unit"))
+        report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
+                                read_json(smk.params.manifest), smk.output.summary, fold_spec, identity.result())
     write_parquet(smk.output.folds, table)
     write_json(smk.output.leakage, report)
     n_folds, n_repeats = int(table["fold"].max()) + 1, int(table["repeat"].max()) + 1

@@ -10,7 +10,9 @@ A candidate that failed on any fold is ranked last and never wins.
 
 from __future__ import annotations
 
+import itertools
 import math
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -18,9 +20,11 @@ import numpy as np
 import pandas as pd
 
 from . import ledger, stats
-from ._io import read_json, sha256_file, write_atomic, write_json, write_parquet
-from .dataset import KEY
+from . import optimism as optimism_estimates
+from ._io import read_json, read_parquet, sha256_file, write_atomic, write_json, write_parquet
+from .dataset import KEY, key_positions
 from .errors import FitError
+from .optimism import OofCollector
 
 CAUTION = ("A cross-validated estimate describes data like the development set. It is not a guarantee "
            "under distribution shift; decisions about people must also follow their domain's own rules and review.")
@@ -37,7 +41,7 @@ def collect(fit_paths: list[str]) -> pd.DataFrame:
 def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd.DataFrame:
     """Per candidate and metric: mean, sd, se, se_corrected, folds, rank (1 = best)."""
     sizes = fits.groupby(["repeat", "fold"])[["n_train", "n_val"]].first()
-    ratio = float(sizes["n_val"].mean() / sizes["n_train"].mean())
+    n_train, n_val = float(sizes["n_train"].mean()), float(sizes["n_val"].mean())
     rows = []
     for (candidate, family, params), part in fits.groupby(["candidate", "family", "params"], sort=True):
         ok = part[part["status"] == "ok"]
@@ -51,7 +55,7 @@ def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd
                 "candidate": candidate, "family": family, "params": params, "metric": metric,
                 "mean": float(np.mean(values)) if n else float("nan"), "sd": sd,
                 "se": sd / math.sqrt(n) if n > 1 else float("nan"),
-                "se_corrected": math.sqrt((1.0 / n + ratio) * sd**2) if n > 1 else float("nan"),
+                "se_corrected": corrected_se(values, n_train, n_val),
                 "folds": n, "train_mean": float(np.mean(ok[f"train_{metric}"])) if n else float("nan"),
                 "complete": complete, "error": errors[0] if errors else "",
             })
@@ -64,6 +68,16 @@ def summarise(fits: pd.DataFrame, metrics: list[str], expected_folds: int) -> pd
     table["rank"] = table["rank"].astype("int32")
     table["folds"] = table["folds"].astype("int32")
     return table.sort_values(["metric", "rank"], kind="stable").reset_index(drop=True)
+
+
+def corrected_se(values: np.ndarray, n_train: float, n_val: float) -> float:
+    """The Nadeau–Bengio corrected standard error of a candidate's CV mean (:func:`stats.corrected_variance`,
+    holdfast's one formula for it), or NaN where it is undefined: fewer than two fold scores, or a fold
+    score that is NaN or infinite (a metric undefined on that fold), which ``corrected_variance`` refuses.
+    """
+    if len(values) < 2 or not np.all(np.isfinite(values)):
+        return float("nan")
+    return stats.corrected_variance(values, n_train, n_val).corrected_se
 
 
 def complexity_ranks(candidates: dict[str, dict[str, Any]], selection: dict[str, Any],
@@ -191,24 +205,24 @@ def add_comparison(ranking: pd.DataFrame, matrix: pd.DataFrame, winner: str, pri
     return out
 
 
-def optimism(oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, task: str, matrix: pd.DataFrame,
-             winner: str, draws: int, seed: int) -> dict[str, Any]:
-    """How much the winner's CV mean flatters it: Tibshirani & Tibshirani (2009) and BBC-CV (2018)."""
+def optimism(gathered: OofCollector | None, dev: pd.DataFrame, target: str, primary: str, task: str,
+             matrix: pd.DataFrame, winner: str, draws: int, seed: int,
+             scorer: Callable[[Any, Any], float] | None) -> dict[str, Any]:
+    """How much the winner's CV mean flatters it: Tibshirani & Tibshirani (2009) and BBC-CV (2018).
+
+    ``gathered``: the complete candidates' out-of-fold outputs on the rows of ``dev`` (:func:`gather_oof`),
+    None when there are fewer than two such rows.
+    """
     raw = float(matrix[winner].mean())
-    tt = stats.tibshirani_bias(matrix, winner)
-    classes = None
-    if task == "classification":
-        classes = sorted(pd.unique(dev[target]).tolist())
-    complete = oof[oof["candidate"].isin(matrix.columns)]
+    tt = optimism_estimates.tibshirani_bias(matrix, winner)
     bbc, bbc_note = None, ""
-    if len(dev) >= 2:
-        arrays = stats.oof_arrays(complete, dev[KEY].to_numpy(), classes)
-        scorer = stats.sklearn_scorer(primary, task, classes)
-        bbc = stats.bbc_cv(arrays, dev[target].to_numpy(), scorer, draws=draws, seed=seed)
+    if gathered is not None and scorer is not None:
+        arrays = gathered.arrays()
+        bbc = optimism_estimates.bbc_cv(arrays, dev[target].to_numpy(), scorer, draws=draws, seed=seed)
     else:
         bbc_note = ("not computed: BBC needs out-of-fold predictions of the same rows in every repeat, and "
                     "repeated holdouts validate different rows in each repeat")
-    summary = stats.optimism_summary(raw, tt, bbc)
+    summary = optimism_estimates.optimism_summary(raw, tt, bbc)
     summary.update({
         "metric": primary, "winner": winner,
         "note": ("optimism = raw CV mean - corrected estimate (score units; positive = the raw mean flatters the "
@@ -218,7 +232,7 @@ def optimism(oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, ta
     })
     folds_per_repeat = int(matrix.index.get_level_values("fold").nunique())
     summary["tibshirani"]["folds_per_repeat"] = folds_per_repeat
-    caution = stats.tibshirani_caution(folds_per_repeat)
+    caution = optimism_estimates.tibshirani_caution(folds_per_repeat)
     if caution:
         summary["tibshirani"]["caution"] = caution
     if summary["bbc"] is not None:
@@ -226,6 +240,56 @@ def optimism(oof: pd.DataFrame, dev: pd.DataFrame, target: str, primary: str, ta
     else:
         summary["bbc_note"] = bbc_note
     return summary
+
+
+def validated_in_every_repeat(folds_table: pd.DataFrame, dev_keys: pd.Series) -> np.ndarray:
+    """Mask over the development rows: validated in every repeat when every repeat validates the same rows,
+    else none (BBC compares each row's predictions across repeats)."""
+    rows = key_positions(dev_keys, folds_table[KEY])
+    validated = folds_table["fold"].notna().to_numpy() & (rows >= 0)
+    per_repeat = []
+    for repeat in sorted(folds_table["repeat"].unique()):
+        mask = np.zeros(len(dev_keys), dtype=bool)
+        mask[rows[validated & (folds_table["repeat"] == repeat).to_numpy()]] = True
+        per_repeat.append(mask)
+    if not per_repeat or any(not np.array_equal(mask, per_repeat[0]) for mask in per_repeat[1:]):
+        return np.zeros(len(dev_keys), dtype=bool)
+    return per_repeat[0]
+
+
+def gather_oof(oof_paths: list[str], dev_keys: pd.Series, counted: np.ndarray, candidates: list[str],
+               classes: list[Any] | None, scorer: Callable[[Any, Any], float] | None, exp: Path | None = None,
+               wanted: set[str] | None = None, folds_sha256: str = "") -> tuple[OofCollector, dict[str, Any]]:
+    """The complete candidates' out-of-fold outputs on the ``counted`` development rows, read one family's
+    tables at a time (with ``exp``: the ``wanted`` candidates' outputs archived in history/ on the way).
+
+    Each table is first given the columns and types the concatenation of all of them would have, so the
+    arrays, the archived files and any error are those of concatenating every table at once, as before:
+    only the memory differs (200 candidates x 100,000 rows took over 3.7 GiB that way).
+    """
+    import pyarrow.parquet as pq
+
+    from .history import archive_oof
+
+    paths = sorted(oof_paths)
+    template = pd.concat([pq.read_schema(p).empty_table().to_pandas() for p in paths], ignore_index=True)
+    position = np.where(counted, np.cumsum(counted) - 1, -1)  # dev position -> position among counted rows
+    gathered = OofCollector(int(counted.sum()), candidates, classes, list(template.columns),
+                            template["prediction"].dtype, scorer)
+    archived: dict[str, Any] = {}
+    for _, group in itertools.groupby(paths, key=lambda p: str(Path(p).parent)):
+        table = pd.concat([read_parquet(p) for p in group], ignore_index=True)
+        for column in template.columns:
+            if column not in table.columns:
+                table[column] = np.nan  # as the concatenation fills a column another table has
+            elif table[column].dtype != template[column].dtype:
+                table[column] = table[column].astype(template[column].dtype)
+        table = table[list(template.columns)]
+        rows = key_positions(dev_keys, table[KEY])
+        gathered.add(table, np.where(rows >= 0, position[np.maximum(rows, 0)], -1))
+        if exp is not None and wanted:
+            archived.update(archive_oof(exp, table, rows, folds_sha256, wanted))
+    return gathered, archived
 
 
 def rounds_summary(index: dict[str, Any], round_number: int, folds_sha256: str) -> dict[str, Any]:
@@ -243,10 +307,12 @@ def rounds_summary(index: dict[str, Any], round_number: int, folds_sha256: str) 
     }
 
 
-def optimism_over_history(exp: Path, index: dict[str, Any], dev: pd.DataFrame, positions: pd.Series, target: str,
+def optimism_over_history(exp: Path, index: dict[str, Any], dev: pd.DataFrame, rows: np.ndarray, target: str,
                           primary: str, task: str, winner: str, raw: float, folds_sha256: str, draws: int,
                           seed: int) -> dict[str, Any]:
     """The winner's optimism counting every candidate ever tallied (history/), not only the current set.
+
+    ``rows``: the positions in dev.parquet of the rows of ``dev``.
 
     BBC-CV draws over every complete candidate of every round; Tibshirani–Tibshirani compares the winner's
     fold scores with the best of every candidate scored on the current fold table.
@@ -255,17 +321,17 @@ def optimism_over_history(exp: Path, index: dict[str, Any], dev: pd.DataFrame, p
 
     same_folds = candidates_on(index, folds_sha256)
     matrix = stats.fold_score_matrix(fits_of(exp, index, same_folds), primary).dropna(axis=1)
-    tt = stats.tibshirani_bias(matrix, winner) if winner in matrix.columns else None
+    tt = optimism_estimates.tibshirani_bias(matrix, winner) if winner in matrix.columns else None
     classes = sorted(pd.unique(dev[target]).tolist()) if task == "classification" else None
     complete = sorted(c for c, e in index["candidates"].items() if e["complete"])
     bbc, left_out = None, []
     if len(dev) >= 2:
-        rows = positions.reindex(dev[KEY]).to_numpy()
-        arrays, left_out = oof_by_repeat(exp, index, complete, rows, classes)
+        scorer = optimism_estimates.sklearn_scorer(primary, task, classes)
+        arrays, left_out = oof_by_repeat(exp, index, complete, rows, classes,
+                                         keep=lambda outputs: optimism_estimates.kept_outputs(scorer, outputs))
         if arrays and arrays[0]:
-            scorer = stats.sklearn_scorer(primary, task, classes)
-            bbc = stats.bbc_cv(arrays, dev[target].to_numpy(), scorer, draws=draws, seed=seed)
-    summary = stats.optimism_summary(raw, tt, bbc)
+            bbc = optimism_estimates.bbc_cv(arrays, dev[target].to_numpy(), scorer, draws=draws, seed=seed)
+    summary = optimism_estimates.optimism_summary(raw, tt, bbc)
     summary.update({
         "metric": primary, "winner": winner, "scope": "every candidate tried in every selection round",
         "tibshirani_candidates": len(matrix.columns), "bbc_candidates": len(complete) - len(left_out),
@@ -278,7 +344,7 @@ def optimism_over_history(exp: Path, index: dict[str, Any], dev: pd.DataFrame, p
     if summary["tibshirani"] is not None:
         folds_per_repeat = int(matrix.index.get_level_values("fold").nunique())
         summary["tibshirani"]["folds_per_repeat"] = folds_per_repeat
-        caution = stats.tibshirani_caution(folds_per_repeat)
+        caution = optimism_estimates.tibshirani_caution(folds_per_repeat)
         if caution:
             summary["tibshirani"]["caution"] = caution
     if summary["bbc"] is not None:
@@ -310,33 +376,40 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
         ranking = add_comparison(ranking, matrix, winner["candidate"], primary, n_train, n_val)
     else:
         ranking = ranking.assign(diff_vs_winner=np.nan, diff_se=np.nan, t=np.nan, p=np.nan)
-    dev_all = pd.read_parquet(dev_path, columns=[KEY, target])
+    dev_all = read_parquet(dev_path, columns=[KEY, target])
     # Rows validated in every repeat (all inner rows for complete schemes; holdout and forward folds
     # validate some rows only). Nested: the fold table lists the inner rows only.
-    folds_table = pd.read_parquet(folds_path, columns=[KEY, "repeat", "fold"])
-    per_repeat = [frozenset(part.loc[part["fold"].notna(), KEY]) for _, part in folds_table.groupby("repeat")]
-    every = set(per_repeat[0]) if len(set(per_repeat)) == 1 else set()  # BBC: the same rows in every repeat
-    dev = dev_all[dev_all[KEY].isin(every)]
-    oof_all = pd.concat([pd.read_parquet(p) for p in sorted(oof_paths)], ignore_index=True)
-    oof = oof_all[oof_all[KEY].isin(every)]
-    optimistic = optimism(oof, dev, target, primary, task, matrix, winner["candidate"],
-                          int(selection["bootstrap"]), int(selection["seed"]))
+    folds_table = read_parquet(folds_path, columns=[KEY, "repeat", "fold"])
+    every = validated_in_every_repeat(folds_table, dev_all[KEY])
+    dev = dev_all[every]
+    folds_sha256 = sha256_file(folds_path)
+    classes = sorted(pd.unique(dev[target]).tolist()) if task == "classification" else None
+    scorer = optimism_estimates.sklearn_scorer(primary, task, classes) if len(dev) >= 2 else None
+    wanted: set[str] = set()
+    if round_path is not None:
+        from .history import read_index, to_archive
+
+        wanted = to_archive(read_index(Path(ranking_path).parent), fits, folds_sha256)
+    gathered, archived = gather_oof(oof_paths, dev_all[KEY], every, list(matrix.columns), classes, scorer,
+                                    Path(ranking_path).parent if round_path is not None else None, wanted,
+                                    folds_sha256)
+    optimistic = optimism(gathered if len(dev) >= 2 else None, dev, target, primary, task, matrix,
+                          winner["candidate"], int(selection["bootstrap"]), int(selection["seed"]), scorer)
+    del gathered
     rounds_info: dict[str, Any] | None = None
     if round_path is not None:
         from .history import archive
 
         round_number = int(read_json(round_path)["round"])
-        positions = pd.Series(np.arange(len(dev_all)), index=dev_all[KEY].to_numpy())
-        index = archive(Path(ranking_path).parent, fits, oof_all, positions, sha256_file(folds_path), round_number,
-                        candidates)
+        index = archive(Path(ranking_path).parent, fits, archived, folds_sha256, round_number, candidates)
         current = set(ranking["candidate"])
-        rounds_info = rounds_summary(index, round_number, sha256_file(folds_path))
+        rounds_info = rounds_summary(index, round_number, folds_sha256)
         if set(index["candidates"]) - current:  # earlier rounds tried more: count them too
             this_round = optimistic
-            optimistic = optimism_over_history(Path(ranking_path).parent, index, dev, positions, target, primary,
-                                               task, winner["candidate"], float(matrix[winner["candidate"]].mean()),
-                                               sha256_file(folds_path), int(selection["bootstrap"]),
-                                               int(selection["seed"]))
+            optimistic = optimism_over_history(Path(ranking_path).parent, index, dev, np.flatnonzero(every), target,
+                                               primary, task, winner["candidate"],
+                                               float(matrix[winner["candidate"]].mean()), folds_sha256,
+                                               int(selection["bootstrap"]), int(selection["seed"]))
             optimistic["this_round_only"] = {k: this_round.get(k) for k in ("tibshirani", "bbc")}
         optimistic["candidates_counted"] = rounds_info["candidates_tried"]
     n_candidates = int(ranking["candidate"].nunique())
