@@ -222,10 +222,15 @@ class Vouched:
 
 
 def _section(anchor: str, title: str, body: Callable[[], str]) -> str:
+    """One section; what it cannot show is said in its place, so one odd file never costs the whole page."""
     try:
         content = body()
     except WithheldError as reason:
         content = f'<p class="withheld">{_e(reason)}</p>'
+    except Exception as exc:  # a file that matches forged records, or one no holdfast step writes, can hold anything
+        content = (f'<p class="withheld">This section could not be made ({_e(type(exc).__name__)}: {_e(exc)}): a '
+                   "file holds what no holdfast step writes. The audit section says whether the record vouches "
+                   "for it.</p>")
     return f'<section id="{anchor}"><h2>{_e(title)}</h2>{content}</section>'
 
 
