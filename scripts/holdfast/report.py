@@ -315,12 +315,9 @@ def _folds(exp: Path, files: Vouched, entries: list[dict[str, Any]]) -> str:
     ])]
     try:
         summary = files.table("folds_summary.parquet")
-        headers, numeric, rows = [], set(), []
         columns = list(summary.columns)
-        for i, column in enumerate(columns):
-            headers.append(_e(FOLD_COLUMNS.get(column, column.replace("class_", "class ").replace("_", " "))))
-            if column not in ("time_first", "time_last"):
-                numeric.add(i)
+        headers = [_e(FOLD_COLUMNS.get(c, c.replace("class_", "class ").replace("_", " "))) for c in columns]
+        numeric, rows = set(range(len(columns))), []  # times too: kept on one line
         for record in summary.to_dict("records"):
             row = []
             for column in columns:
