@@ -92,7 +92,8 @@ table { border-collapse: collapse; margin: .5rem 0 .8rem; font-size: .86rem; dis
         overflow-x: auto; }
 th, td { border-bottom: 1px solid var(--rule); padding: .28rem .55rem; text-align: left; vertical-align: top; }
 th { background: var(--band); font-weight: 600; }
-td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; }
+td.num { white-space: nowrap; }
 tr.winner td { font-weight: 600; background: #eef3fa; }
 dl.facts { display: grid; grid-template-columns: max-content 1fr; gap: .2rem 1rem; margin: .5rem 0; }
 dl.facts dt { color: var(--soft); }
