@@ -8,6 +8,9 @@ min_version("9.0")
 include: "workflow/rules/common.smk"
 
 
+report: "workflow/report/workflow.rst"
+
+
 # The seal leaves the workflow once it happened, and every step up to the opening leaves it once the test set
 # was opened (PLAN.closed): no flag can then re-run them or delete what they wrote (see DEVELOPERS.md).
 if not PLAN.sealed:
@@ -28,6 +31,10 @@ if not PLAN.closed:
 if PLAN.closed and verdict_to_restore():
 
     include: "workflow/rules/restore.smk"
+
+
+# The report only reads, so it stays in every mode, the closed one included.
+include: "workflow/rules/report.smk"
 
 
 rule all:

@@ -184,7 +184,8 @@ def test_a_killed_opening_counts_and_is_named_by_the_audit(work: Path) -> None:
     again = run_cli(work, "open", "results/bc", "--yes", "--cores", "2")
     assert again.returncode == 4 and "already opened 1 time(s)" in again.stderr
     plain = run_workflow(work, "-n")
-    assert plain.returncode == 0 and planned_jobs(plain) == [], plain.stdout[-2000:]
+    # Only the report may be remade (the opening's write-ahead records are newer than it); nothing that opens.
+    assert plain.returncode == 0 and set(planned_jobs(plain)) <= {"report", "all"}, plain.stdout[-2000:]
 
 
 # --- flags that used to break an opened experiment -------------------------------------------------------------------

@@ -552,7 +552,7 @@ def _audit_now(exp: Path, expect_head: tuple[int, str] | None, public_key: str |
 
 
 def audit(exp_dir: str | os.PathLike[str], expect_head: tuple[int, str] | None = None,
-          public_key: str | None = None) -> dict[str, Any]:
+          public_key: str | None = None, last_step: bool = False) -> dict[str, Any]:
     """Check one experiment directory; return {'state': 'pass' | 'fail' | 'in progress', 'problems': [...], ...}.
 
     ``expect_head`` (from a receipt) must still be in the ledger at its position; ``public_key`` (raw base64)
@@ -561,10 +561,14 @@ def audit(exp_dir: str | os.PathLike[str], expect_head: tuple[int, str] | None =
     'verified' maps every file whose recorded sha256 matched (relative path -> sha256); the headline reads
     only those. While a step holds the experiment (a run is in progress) nothing is checked: the state is
     'in progress' with no problems, because files being written would look like tampering.
+
+    ``last_step`` is for a step its run makes after every other step (the report, whose rule takes every other
+    target as input): the only holder of the lock is then that run itself, which writes nothing more, so the
+    audit reads even when the lock is held. Snakemake's own lock keeps a second run out of the folder meanwhile.
     """
     exp = Path(exp_dir)
     with ledger.locked_if_free(exp / STEPS_LOCK) as free:
-        if not free:
+        if not free and not last_step:
             return _result(exp, IN_PROGRESS, [], [], {}, 0)
         return _audit_now(exp, expect_head, public_key)
 

@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from ._io import read_json, sha256_file, write_atomic, write_json
-from .layout import AUDIT, CHOICE, RECEIPT, VERDICT
+from .layout import AUDIT, CHOICE, RECEIPT, REPORT, VERDICT
 
 RECEIPT_HEAD = "holdfast receipt"
 
@@ -81,6 +81,8 @@ def closing_lines(exp: Path, result: dict[str, Any], receipt: Path, target_unit:
         if not opened and (exp / CHOICE).exists():
             out.append(f"test set sealed, not opened: open it once, when you have decided, with "
                        f"'holdfast open {exp}'")
+    if (exp / REPORT).exists():
+        out.append(f"report: {exp / REPORT} (one page; open it in a browser or print it)")
     out.append(f"experiment '{name}': audit {state} (test set opened {result.get('test_set_opened', 0)} time(s)); "
                f"details: holdfast audit {exp}")
     out.append(f"ledger head {result.get('ledger_head_seq')}:{str(result.get('ledger_head'))[:16]}… written to "

@@ -87,6 +87,18 @@ def interval(metric: str, low: float | None, high: float | None, target_unit: st
     return f"[{a:.{digits}f}, {b:.{digits}f}]" + (f" {u}" if u else "")
 
 
+def spread(metric: str, amount: float | None, target_unit: str | None = None, digits: int = 4) -> str:
+    """A standard error, an optimism or a gap between two scores: kept as it is (never negated), with the unit.
+
+    Differences of scorer values read the same way for errors and scores once both are said in words
+    ('behind the winner by', 'flatters by'), so only the unit is added.
+    """
+    if amount is None or (isinstance(amount, float) and math.isnan(amount)):
+        return "undefined"
+    u = unit(metric, target_unit)
+    return f"{float(amount):.{digits}f}" + (f" {u}" if u else "")
+
+
 def named(metric: str, score: float | None, target_unit: str | None = None, digits: int = 4) -> str:
     """'MAE 3.6900 days', 'ROC AUC 0.8725'."""
     return f"{label(metric)} {number(metric, score, target_unit, digits)}"

@@ -26,6 +26,8 @@ RECEIPT = "receipt.txt"
 LEDGER = "ledger.jsonl"
 AUDIT = "audit.json"
 NESTED_SUMMARY = "nested/summary.json"
+REPORT = "report.html"
+REPORT_FIGURES = "report_figures"  # the report's pictures as files, for Snakemake's --report
 # Every step holds this lock shared while it runs; the audit takes it exclusively (ledger.locked_if_free),
 # so an audit never reads files a step is writing. ledger.locked adds the ".lock" suffix.
 STEPS_LOCK = "steps"

@@ -25,7 +25,7 @@ from .layout import DEV, LEDGER, MANIFEST, REQUEST, TEST, fit_file, read_manifes
 PACKAGE = Path(__file__).resolve().parent
 STAGE_MODULES = {
     "assign_folds": "folds", "fit_family": "fit", "record_round": "rounds", "tally": "tally", "refit_winner": "refit",
-    "open_test": "opening", "score_outer": "nested", "nested_summary": "nested",
+    "open_test": "opening", "score_outer": "nested", "nested_summary": "nested", "report": "report",
 }
 
 

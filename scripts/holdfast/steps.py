@@ -157,6 +157,16 @@ def open_test(smk: Any) -> None:
     print(json.dumps(verdict["metrics"], indent=2))
 
 
+def report(smk: Any) -> None:
+    """Rule report -> holdfast.report.write_report (reads only; the run's last job, see audit.audit)."""
+    from .report import write_report
+
+    exp = str(Path(smk.output.html).parent)
+    result = write_report(exp, smk.output.html, smk.output.figures, target_unit=smk.params.unit or None,
+                          last_step=True)
+    print(f"report written to {smk.output.html}; audit {result['state']}")
+
+
 def restore_verdict(smk: Any) -> None:
     """Rule restore_verdict: copy the opening's archived verdict back (the guard checked it against the ledger)."""
     import shutil
@@ -185,7 +195,7 @@ def nested_summary(smk: Any) -> None:
 
 
 STEPS = {f.__name__: f for f in (seal, assign_folds, fit_family, record_round, tally, refit_winner, open_test,
-                                 restore_verdict,
+                                 restore_verdict, report,
                                  score_outer, nested_summary)}
 # Nested copies of the stages run the same adapters (Snakemake's `use rule ... as nested_<rule>`).
 STEPS.update({f"nested_{name}": STEPS[name] for name in ("assign_folds", "fit_family", "tally", "refit_winner")})

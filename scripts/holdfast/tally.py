@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from . import ledger, stats
+from . import display, ledger, stats
 from . import optimism as optimism_estimates
 from ._io import read_json, read_parquet, sha256_file, write_atomic, write_json, write_parquet
 from .dataset import KEY, key_positions
@@ -146,6 +146,9 @@ def candidate_labels(candidates: dict[str, dict[str, Any]], ids: list[str]) -> d
     return labels
 
 
+CORRECTION_NAMES = {"bbc": "bootstrap bias-corrected", "tibshirani": "Tibshirani–Tibshirani"}
+
+
 def plot_ranking(ranking: pd.DataFrame, primary: str, path: str, winner: str, rule: str,
                  corrected: dict[str, float], labels: dict[str, str], top: int = 25) -> None:
     """The best candidates' CV means with naive and corrected standard errors; the winner and its corrections marked."""
@@ -161,7 +164,8 @@ def plot_ranking(ranking: pd.DataFrame, primary: str, path: str, winner: str, ru
     height = max(2.8, 0.34 * len(part) + 1.6)
     fig, ax = plt.subplots(figsize=(8.5, height))
     ypos = np.arange(len(part))[::-1]
-    means = part["mean"].to_numpy()
+    sign = -1.0 if display.is_error(primary) else 1.0  # errors drawn as people read them: positive
+    means = sign * part["mean"].to_numpy()
     ax.errorbar(means, ypos, xerr=part["se_corrected"].fillna(0).to_numpy(), fmt="none", ecolor="#b9c9d6",
                 elinewidth=1, capsize=4, label="± 1 corrected standard error (Nadeau–Bengio)")
     ax.errorbar(means, ypos, xerr=part["se"].fillna(0).to_numpy(), fmt="none", ecolor="#5b84a6", elinewidth=2.5,
@@ -171,14 +175,14 @@ def plot_ranking(ranking: pd.DataFrame, primary: str, path: str, winner: str, ru
     ax.plot(means[is_winner], ypos[is_winner], "D", color="#b35900", markersize=7, linestyle="none",
             label=f"winner ({rule.replace('_', ' ')})")
     for (name, value), marker in zip(sorted(corrected.items()), ("x", "+"), strict=False):
-        ax.plot([value], ypos[is_winner], marker, color="#b35900", markersize=9, linestyle="none",
-                label=f"winner corrected for selection ({name})")
+        ax.plot([sign * value], ypos[is_winner], marker, color="#b35900", markersize=9, linestyle="none",
+                label=f"winner corrected for selection ({CORRECTION_NAMES.get(name, name)})")
     names = [labels.get(c, c) for c in part["candidate"]]
     ax.set_yticks(ypos, names, fontsize=7.5)
     for tick, flag in zip(ax.get_yticklabels(), is_winner, strict=True):
         if flag:
             tick.set_fontweight("bold")
-    ax.set_xlabel(f"mean validation {primary} over folds (greater is better)")
+    ax.set_xlabel(f"mean validation {display.label(primary)} over folds ({display.direction(primary)})")
     shown = f"best {len(part)} of {len(complete)}" if len(part) < len(complete) else f"all {len(part)}"
     ax.set_title(f"Candidates by cross-validated score ({shown})", fontsize=10)
     ax.grid(axis="x", alpha=0.3)

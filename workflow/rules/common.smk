@@ -68,10 +68,14 @@ def max_threads():
 
 
 def all_targets():
-    """The development loop's outputs; the verdict only once an opening made it (holdfast open)."""
+    """The development loop's outputs and the report; the verdict only once an opening made it (holdfast open)."""
+    page = PLAN.path("report.html")
     if PLAN.closed:  # only what exists or can be restored: nothing up to the opening can run
         verdict = PLAN.path("final/verdict.json")
-        return [verdict] if Path(verdict).exists() or verdict_to_restore() else [PLAN.path("sealed/manifest.json")]
+        targets = [verdict] if Path(verdict).exists() or verdict_to_restore() else [PLAN.path("sealed/manifest.json")]
+        if all(Path(PLAN.path(name)).exists() for name in ("ranking.parquet", "choice.json", "model/provenance.json")):
+            targets.append(page)
+        return targets
     targets = [
         PLAN.path("ranking.parquet"),
         PLAN.path("choice.json"),
@@ -80,7 +84,27 @@ def all_targets():
     ]
     if PLAN.config["nested"]["k"]:
         targets.append(PLAN.path("nested/summary.json"))
-    return targets
+    return targets + [page]
+
+
+def report_inputs(wildcards):
+    """What the report shows and must follow: ranking, choice and the model's provenance; the ledger once it exists;
+    the nested summary, so the report is the run's last job; and, once the experiment is closed, the verdict.
+
+    Before the last allowed opening the verdict is no input: a model refit after an opening with a written reason
+    would make Snakemake open the test set again to bring it up to date. 'holdfast open' remakes the report itself.
+    """
+    inputs = {name: PLAN.path(path) for name, path in (
+        ("ranking", "ranking.parquet"), ("choice", "choice.json"), ("provenance", "model/provenance.json"))}
+    if Path(LEDGER).exists():
+        inputs["ledger"] = LEDGER
+    nested = PLAN.path("nested/summary.json")
+    if PLAN.config["nested"]["k"] and (not PLAN.closed or Path(nested).exists()):
+        inputs["nested"] = nested
+    verdict = PLAN.path("final/verdict.json")
+    if PLAN.closed and (Path(verdict).exists() or verdict_to_restore()):
+        inputs["verdict"] = verdict
+    return inputs
 
 
 def verdict_to_restore():
