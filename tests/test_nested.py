@@ -66,7 +66,7 @@ def test_the_run_ends_with_the_nested_estimate(nested_run: Path) -> None:
 
     summary = json.loads((nested_run / "nested" / "summary.json").read_text())
     line = headline(nested_run, audit(str(nested_run))["verified"])
-    assert f"roc_auc: {summary['metrics']['roc_auc']['mean']:.4f}" in line  # the primary metric, first in config
+    assert f"ROC AUC: {summary['metrics']['roc_auc']['mean']:.4f}" in line  # the primary metric, first in config
     assert all(f"{candidate} ×{count}" in line for candidate, count in summary["winner_counts"].items())
     workdir = nested_run.parents[1]
     assert f"holdfast: {line}" in (workdir.parent / f"{workdir.name}.stdout").read_text().splitlines()

@@ -1,5 +1,5 @@
 """``python -m holdfast`` runs the command-line interface."""
 
-from .cli import main
+from .cli import entry
 
-raise SystemExit(main())
+entry()

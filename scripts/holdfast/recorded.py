@@ -75,6 +75,7 @@ NOT_FILES: dict[tuple[str, tuple[str, ...]], str] = {
     ("seal", ("data_sha256",)): "the data file lives outside the experiment; every run's guard compares it",
     ("seal", ("keys", "dev_sha256")): "a digest of the development row keys, checked against dev.parquet's keys",
     ("seal", ("keys", "test_sha256")): "a digest of the sealed row keys, checked against test.parquet's keys",
+    ("opening_started", ("request_sha256",)): "the request 'holdfast open' wrote; a later request replaces the file",
     ("round", ("setup_sha256",)): "a digest of the round's set-up, which rounds/<N>.json (checked) holds",
     ("round", ("ranking_seen_sha256",)): "the ranking visible when the change was made; a later tally replaced it",
 }

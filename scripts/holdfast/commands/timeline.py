@@ -32,7 +32,7 @@ DIRECTION: dict[tuple[str, tuple[str, ...]], str] = {
     ("refit", ("model_sha256",)): "wrote", ("refit", ("provenance_sha256",)): "wrote",
     ("open_test", ("test_sha256",)): "read", ("open_test", ("model_sha256",)): "read",
     ("open_test", ("verdict_sha256",)): "wrote", ("open_test", ("marker_sha256",)): "read",
-    ("opening_started", ("test_sha256",)): "to read",
+    ("opening_started", ("test_sha256",)): "to read", ("opening_started", ("model_sha256",)): "to read",
     ("round", ("round_sha256",)): "wrote",
     ("score_outer", ("score_sha256",)): "wrote", ("nested_summary", ("summary_sha256",)): "wrote",
 }
