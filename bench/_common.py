@@ -18,7 +18,6 @@ import datetime as dt
 import json
 import os
 import platform
-import re
 import shutil
 import statistics
 import subprocess
@@ -28,7 +27,6 @@ import time
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from functools import cache
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 from typing import Any
@@ -257,21 +255,6 @@ def ratio(a: float | None, b: float | None) -> float | None:
 # --------------------------------------------------------------------------- holdfast's workflow
 
 
-@cache
-def _subcommands() -> frozenset[str]:
-    """Subcommands that ``python -m holdfast --help`` lists (argparse prints them as {a,b,c})."""
-    text = subprocess.run([PYTHON, "-m", "holdfast", "--help"], capture_output=True, text=True, env=env(),
-                          check=False).stdout
-    found = re.search(r"\{([a-z_,-]+)\}", text)
-    return frozenset(found.group(1).split(",")) if found else frozenset()
-
-
-@cache
-def _help_of(command: str) -> str:
-    return subprocess.run([PYTHON, "-m", "holdfast", command, "--help"], capture_output=True, text=True, env=env(),
-                          check=False).stdout
-
-
 def experiment_of(config: Path) -> str:
     """The experiment name a config names."""
     import yaml
@@ -286,27 +269,19 @@ def snakemake_cmd(workdir: Path, config: Path, cores: int, *extra: str) -> list[
 
 
 def holdfast_steps(workdir: Path, config: Path, cores: int) -> list[tuple[str, list[str]]]:
-    """The commands of holdfast's whole workflow, seal to audit, as (label, argv); run in ``workdir``.
-
-    With ``holdfast run`` and ``holdfast open`` available: run, open (--yes), audit. Otherwise: the
-    Snakemake run (whose default target already opens the test set and audits), then ``holdfast audit``.
+    """The commands of holdfast's whole workflow, seal to audit, as (label, argv); run in ``workdir``:
+    ``holdfast run`` (seal, folds, fits, tally, refit, report), ``holdfast open --yes`` (the opening and the
+    report again), ``holdfast audit``.
     """
     exp = f"results/{experiment_of(config)}"
-    commands = _subcommands()
-    audit = ("audit", [PYTHON, "-m", "holdfast", "audit", exp])
-    if {"run", "open"} <= commands:
-        run = [PYTHON, "-m", "holdfast", "run", str(config)]
-        if "--cores" in _help_of("run"):
-            run += ["--cores", str(cores)]
-        return [("run", run), ("open", [PYTHON, "-m", "holdfast", "open", exp, "--yes"]), audit]
-    return [("run", snakemake_cmd(workdir, config, cores)), audit]
+    return [("run", [PYTHON, "-m", "holdfast", "run", str(config), "--cores", str(cores)]),
+            ("open", [PYTHON, "-m", "holdfast", "open", exp, "--yes", "--cores", str(cores)]),
+            ("audit", [PYTHON, "-m", "holdfast", "audit", exp])]
 
 
 def workflow_label() -> str:
-    """How the whole workflow is started in this checkout (printed under the tables)."""
-    if {"run", "open"} <= _subcommands():
-        return "holdfast run CONFIG; holdfast open results/<experiment> --yes; holdfast audit results/<experiment>"
-    return "snakemake -s Snakefile -d WORKDIR --cores N --configfile CONFIG; holdfast audit results/<experiment>"
+    """How the whole workflow is started (printed under the tables)."""
+    return "holdfast run CONFIG; holdfast open results/<experiment> --yes; holdfast audit results/<experiment>"
 
 
 @dataclass
