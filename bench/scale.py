@@ -116,11 +116,66 @@ def outcome(run: c.Measured) -> str:
 # --------------------------------------------------------------------------- 1. dry runs
 
 
+BARE = """\
+# Snakemake alone: holdfast's job graph without holdfast (no config reading, guards, input functions or params).
+FITS = [(f, r, k) for f in range({families}) for r in range({repeats}) for k in range({k})]
+
+rule all:
+    input:
+        "ranking.txt",
+
+rule split:
+    output:
+        dev="dev.txt",
+        folds="folds.txt",
+    script:
+        "job.py"
+
+rule fit:
+    input:
+        dev="dev.txt",
+        folds="folds.txt",
+    output:
+        fits="fits/f{{family}}/r{{repeat}}f{{fold}}.txt",
+        oof="oof/f{{family}}/r{{repeat}}f{{fold}}.txt",
+    log:
+        "logs/f{{family}}/r{{repeat}}f{{fold}}.log",
+    threads: 1
+    resources:
+        mem_mb=1000,
+        runtime=60,
+    script:
+        "job.py"
+
+rule tally:
+    input:
+        [f"fits/f{{f}}/r{{r}}f{{k}}.txt" for f, r, k in FITS],
+        [f"oof/f{{f}}/r{{r}}f{{k}}.txt" for f, r, k in FITS],
+    output:
+        "ranking.txt",
+    script:
+        "job.py"
+"""
+
+
+def write_bare(workdir: Path, jobs: int) -> None:
+    """A Snakefile with holdfast's graph shape (split -> ``jobs`` fit jobs -> tally) and nothing of holdfast."""
+    families, k, repeats = shape(jobs)
+    workdir.mkdir(parents=True, exist_ok=True)
+    (workdir / "Snakefile").write_text(BARE.format(families=families, repeats=repeats, k=k))
+    (workdir / "job.py").write_text("pass\n")
+
+
 def dry_runs(sizes: list[int], reps: int, cores: int, root: Path) -> None:
-    """Dry-run time and peak memory before the seal, per fit-job count."""
+    """Dry-run time and peak memory before the seal, per fit-job count; beside each, Snakemake alone on the same
+    graph shape (the floor holdfast's planning cannot go below)."""
     dirs = {n: root / f"dry-{n}" for n in sizes}
+    bare = {n: root / f"bare-{n}" for n in sizes}
     shapes = {n: write_experiment(dirs[n], n, "logistic") for n in sizes}
+    for n in sizes:
+        write_bare(bare[n], n)
     runs: dict[int, list[c.Measured]] = {n: [] for n in sizes}
+    floor: dict[int, list[c.Measured]] = {n: [] for n in sizes}
 
     def step(n: int) -> Any:
         def go(rep: int) -> None:
@@ -128,16 +183,31 @@ def dry_runs(sizes: list[int], reps: int, cores: int, root: Path) -> None:
             runs[n].append(c.measure(cmd, dirs[n], root / "logs", f"dry-{n}-rep{rep}"))
         return go
 
-    c.alternate(reps, [(f"dry run {n:,} fit jobs", step(n)) for n in sizes])
+    def step_bare(n: int) -> Any:
+        def go(rep: int) -> None:
+            cmd = [c.PYTHON, "-m", "snakemake", "-s", str(bare[n] / "Snakefile"), "-d", str(bare[n]), "--cores",
+                   str(cores), "-n"]
+            floor[n].append(c.measure(cmd, bare[n], root / "logs", f"bare-{n}-rep{rep}"))
+        return go
+
+    c.alternate(reps, [pair for n in sizes for pair in ((f"dry run {n:,} fit jobs", step(n)),
+                                                        (f"Snakemake alone {n:,} fit jobs", step_bare(n)))])
     rows = []
     for n in sizes:
         fams, k, repeats = shapes[n]
         last = runs[n][-1]
-        rows.append([f"{n:,}", f"{fams} x {k} x {repeats}", c.median([r.wall for r in runs[n]]),
-                     c.median([r.peak_mib for r in runs[n]]), c.fmt(planned(last)), outcome(last)])
-    c.table(["fit jobs", "families x folds x repeats", "dry run (s)", "peak RSS (MiB)", "planned jobs", "result"],
+        ours, alone = c.median([r.wall for r in runs[n]]), c.median([r.wall for r in floor[n]])
+        rows.append([f"{n:,}", f"{fams} x {k} x {repeats}", ours, c.median([r.peak_mib for r in runs[n]]),
+                     alone, c.median([r.peak_mib for r in floor[n]]),
+                     None if not ours or not alone else f"{ours / alone:.2f}x", c.fmt(planned(last)),
+                     outcome(last)])
+    c.table(["fit jobs", "families x folds x repeats", "dry run (s)", "peak RSS (MiB)", "Snakemake alone (s)",
+             "alone: peak (MiB)", "ratio", "planned jobs", "result"],
             rows, note_last=True,
             title=f"1. dry run before the seal (snakemake -n; {DATA_ROWS}-row data file; medians)")
+    print("  Snakemake alone: a generated Snakefile with the same graph (one split job, the fit jobs with two inputs, "
+          "two outputs, a log, threads and resources, one tally job reading them all), `script:` bodies, no input "
+          "functions, no config: the floor of Snakemake's own planning and dry-run printing at that size")
 
 
 # --------------------------------------------------------------------------- finished states

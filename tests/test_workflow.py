@@ -16,6 +16,7 @@ from conftest import (
     open_experiment,
     planned_jobs,
     run_workflow,
+    small_classification_config,
     tree_digest,
     write_config,
 )
@@ -294,3 +295,35 @@ def test_a_second_invocation_on_the_same_experiment_stops_with_a_clear_message(b
     assert first.returncode == 0, err[-2000:]
     ledger = (bc_copy / "results" / "bc" / "ledger.jsonl").read_text().splitlines()
     assert sum('"event":"open_test"' in line for line in ledger) == 1
+
+
+def _fit_job_settings(result: subprocess.CompletedProcess[str]) -> dict[str, tuple[str, str]]:
+    """family -> (priority, threads) of the fit jobs a dry run prints (every job of a family must agree)."""
+    seen: dict[str, set[tuple[str, str]]] = {}
+    blocks: list[dict[str, str]] = []
+    for line in (result.stdout + result.stderr).splitlines():
+        if line.startswith(("rule ", "localrule ", "[")):
+            blocks.append({"rule": line.strip()})
+        elif blocks and ":" in line:
+            key, _, value = line.partition(":")
+            blocks[-1][key.strip()] = value.strip()
+    for block in blocks:
+        if block["rule"] == "rule fit_family:":
+            family = block["wildcards"].split(",")[0].split("=")[1]
+            seen.setdefault(family, set()).add((block.get("priority", "0"), block.get("threads", "1")))
+    assert seen, "the dry run planned no fit job"
+    assert all(len(s) == 1 for s in seen.values()), seen
+    return {family: next(iter(s)) for family, s in seen.items()}
+
+
+def test_fit_jobs_carry_each_familys_priority_and_threads_in_snakemakes_own_plan(bc_workdir: Path) -> None:
+    """Declared costs order the fit jobs (priority = cost x candidates) and threads are per family; with equal values
+    the rule takes one constant, so Snakemake's plan must say the same either way."""
+    config = small_classification_config()
+    config["candidates"]["tree"].update({"cost": 10, "threads": 2})
+    write_config(bc_workdir, config)
+    settings = _fit_job_settings(run_workflow(bc_workdir, "-n"))
+    assert settings == {"logistic": ("2.0", "1"), "tree": ("20.0", "2")}
+    config["candidates"]["tree"].update({"cost": 1, "threads": 1})  # now every family has 2 candidates x cost 1
+    write_config(bc_workdir, config)
+    assert _fit_job_settings(run_workflow(bc_workdir, "-n")) == {"logistic": ("2.0", "1"), "tree": ("2.0", "1")}

@@ -33,19 +33,22 @@ def family_json(wildcards):
     return PLAN.family_json(wildcards.family)
 
 
-def fit_priority(wildcards):
-    return PLAN.fit_priority(wildcards.family)
+def per_family(value_of):
+    """The fit rule's threads, priority or a resource: one constant when every family has the same value, else a
+    function of the family wildcard. Snakemake calls such a function (and inspects its signature) once per job, which
+    at 10,000 fit jobs was a large part of a dry run's time (bench/scale.py)."""
+    values = {family: value_of(family) for family in PLAN.families}
+    if len(set(values.values())) == 1:
+        return next(iter(values.values()))
+    return lambda wildcards: values[wildcards.family]
 
 
-def family_threads(wildcards):
-    return PLAN.threads(wildcards.family)
+fit_priority = per_family(PLAN.fit_priority)
+family_threads = per_family(PLAN.threads)
 
 
 def family_resource(name):
-    def resource(wildcards):
-        return int(PLAN.config["candidates"][wildcards.family][name])
-
-    return resource
+    return per_family(lambda family: int(PLAN.config["candidates"][family][name]))
 
 
 def fits_of(kind):
