@@ -136,9 +136,9 @@ def test_bad_diagnostics_settings_name_the_key(block: dict[str, object], message
 
 
 def test_learning_curve_settings() -> None:
-    assert learning_sizes(validate(BASE)) == [0.25, 0.5, 0.75, 1.0]
+    assert learning_sizes(validate(BASE)) == [0.25, 0.5, 1.0]
     assert learning_sizes(validate({**BASE, "diagnostics": {"learning_curve": False}})) == []
-    assert learning_sizes(validate({**BASE, "diagnostics": {"learning_curve": True}})) == [0.25, 0.5, 0.75, 1.0]
+    assert learning_sizes(validate({**BASE, "diagnostics": {"learning_curve": True}})) == [0.25, 0.5, 1.0]
     assert learning_sizes(validate({**BASE, "diagnostics": {"learning_curve": {"sizes": [1, 0.3]}}})) == [0.3, 1.0]
 
 
@@ -184,7 +184,7 @@ def test_every_plotted_number_is_the_stored_one_and_an_unchanged_winner_fits_not
             assert curve["chosen_value"] == choice["winner"]["spec"]["params"][curve["param"]]
     # Learning curve: means over the fold tables; the full fold is the winner's stored fit record.
     tables = pd.concat([pd.read_parquet(p) for p in sorted((exp / "diagnostics/learning").glob("r*f*.parquet"))])
-    assert sorted(tables["fraction"].unique()) == [0.25, 0.5, 0.75, 1.0] and set(tables["candidate"]) == {winner}
+    assert sorted(tables["fraction"].unique()) == [0.25, 0.5, 1.0] and set(tables["candidate"]) == {winner}
     for point in result["learning_curve"]["points"]:
         part = tables[tables["fraction"] == point["fraction"]]
         assert point["metrics"][metric]["val_mean"] == pytest.approx(part[f"val_{metric}"].mean(), abs=1e-12)
