@@ -341,7 +341,7 @@ def _vectorised_scores(metric: str, scorer: Any, model: _ReplayBase, y: np.ndarr
     resample; a miss falls back to the loop), any other resample lies on the same side of those order
     statistics for both scorers, so the order statistics, and with them the interval, are scikit-learn's.
     """
-    from . import stats
+    from . import optimism as stats  # the weighted scorers and resample multiplicities live in optimism.py
 
     task = "classification" if isinstance(model, ReplayClassifier) else "regression"
     classes = getattr(model, "classes", None)
@@ -354,7 +354,7 @@ def _vectorised_scores(metric: str, scorer: Any, model: _ReplayBase, y: np.ndarr
     except ValueError:
         return None  # e.g. non-finite ranking scores, or a label the model does not know: scikit-learn decides
     members = [y == label for label in classes] if task == "classification" and classes is not None else []
-    block = max(1, min(draws, (1 << 19) // n))  # about 2 MB of weights per block, as stats.bbc_cv
+    block = max(1, min(draws, (1 << 19) // n))  # about 2 MB of weights per block, as optimism.bbc_cv
     values = np.empty(draws)
     unsure = np.zeros(draws, dtype=bool)
     for first, rows in _resamples(seed, n, draws, block):
