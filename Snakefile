@@ -26,6 +26,7 @@ if not PLAN.closed:
     include: "workflow/rules/refit.smk"
     include: "workflow/rules/open_test.smk"
     include: "workflow/rules/nested.smk"
+    include: "workflow/rules/diagnostics.smk"
 
 
 if PLAN.closed and verdict_to_restore():

@@ -31,7 +31,7 @@ FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-
          "--disable-background-networking", "--disable-component-update", "--disable-sync", "--hide-scrollbars",
          "--enable-logging=stderr", "--v=0"]
 TITLES = ["The job", "Folds", "Ranking", "Per-fold scores", "The choice", "Optimism of the winner",
-          "Selection rounds", "Verdict", "Audit", "Ledger", "What each number estimates", "Cautions"]
+          "Selection rounds", "Diagnostics", "Verdict", "Audit", "Ledger", "What each number estimates", "Cautions"]
 
 
 class _Text(HTMLParser):
@@ -243,7 +243,9 @@ def test_the_report_step_reads_only_and_stays_in_a_closed_experiment(bc_copy: Pa
     assert (exp / "ledger.jsonl").read_bytes() == before, "the report step must not append to the ledger"
     assert page.stat().st_mtime_ns > old and "localrule report:" in forced.stderr
     assert "rule tally" not in forced.stderr and "rule open_test" not in forced.stderr
-    assert sorted(p.name for p in (exp / "report_figures").glob("*.png")) == ["ranking.png", "test_interval.png"]
+    assert sorted(p.name for p in (exp / "report_figures").glob("*.png")) == [
+        "diagnostics_calibration.png", "diagnostics_confusion.png", "diagnostics_learning.png",
+        "diagnostics_validation.png", "ranking.png", "test_interval.png"]
     dry = run_workflow(bc_copy, "-n")
     assert "Nothing to be done" in dry.stdout + dry.stderr, dry.stderr[-2000:]
 

@@ -275,12 +275,36 @@ def _cross_checks(config: dict[str, Any]) -> None:
             raise ConfigError(f"config key 'candidates.{family}': parameter '{overlap[0]}' is in both params and grid; "
                               "keep it in one of them")
     _check_selection(config)
+    _check_diagnostics(config)
     if config["nested"]["k"] and folds["scheme"] not in ("kfold", "stratified", "group", "stratified_group"):
         raise ConfigError(f"config keys 'nested.k' and 'folds.scheme: {folds['scheme']}' do not combine (the inner "
                           "folds are drawn with the inner scheme and must cover every row once); use kfold, "
                           "stratified or group folds")
     if config["nested"]["k"] == 1:
         raise ConfigError("config key 'nested.k' is 1; use 0 to turn nested cross-validation off or at least 2")
+
+
+def _check_diagnostics(config: dict[str, Any]) -> None:
+    """``learning_curve: true`` means the defaults; sizes are distinct and kept in increasing order."""
+    block = config["diagnostics"]
+    if block["learning_curve"] is True:
+        sub = _schema()["properties"]["diagnostics"]["properties"]["learning_curve"]
+        block["learning_curve"] = {key: copy.deepcopy(spec["default"]) for key, spec in sub["properties"].items()}
+    curve = block["learning_curve"]
+    if curve is False:
+        return
+    sizes = [float(s) for s in curve["sizes"]]
+    if len(set(sizes)) != len(sizes):
+        repeated = sorted({s for s in sizes if sizes.count(s) > 1})[0]
+        raise ConfigError(f"config key 'diagnostics.learning_curve.sizes' lists {repeated} twice; give each "
+                          "fraction of the training fold once")
+    curve["sizes"] = sorted(sizes)
+
+
+def learning_sizes(config: dict[str, Any]) -> list[float]:
+    """The learning curve's fractions of each training fold ([] when diagnostics.learning_curve is false)."""
+    curve = (config.get("diagnostics") or {}).get("learning_curve", {})
+    return [] if curve is False else [float(s) for s in (curve or {}).get("sizes", [])]
 
 
 def _pattern_misses(value: Any, schema: dict[str, Any], where: list[str]) -> Any:

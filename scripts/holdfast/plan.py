@@ -26,6 +26,7 @@ PACKAGE = Path(__file__).resolve().parent
 STAGE_MODULES = {
     "assign_folds": "folds", "fit_family": "fit", "record_round": "rounds", "tally": "tally", "refit_winner": "refit",
     "open_test": "opening", "score_outer": "nested", "nested_summary": "nested", "report": "report",
+    "learning_curve": "learning", "diagnostics": "diagnostics",
 }
 
 
@@ -184,6 +185,12 @@ class Plan:
     def fit_files(self, kind: str) -> list[str]:
         """Every fits/ or oof/ file the fit jobs produce."""
         return [self.path(fit_file(kind, fam, r, f)) for fam in self.families for r, f in self.fold_ids]
+
+    def learning_files(self) -> list[str]:
+        """The learning-curve tables, one per (repeat, fold); none when diagnostics.learning_curve is false."""
+        if not cfg.learning_sizes(self.config):
+            return []
+        return [self.path(f"diagnostics/learning/r{r}f{f}.parquet") for r, f in self.fold_ids]
 
     def nested_fit_files(self, kind: str, outer: int) -> list[str]:
         """The fits/ or oof/ files of one nested outer fold."""

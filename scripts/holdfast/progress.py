@@ -77,6 +77,14 @@ def describe(entry: dict[str, Any], tracker: Tracker) -> str | None:
         return f"opening {details.get('opening')} done: verdict written"
     if event == "nested_summary":
         return f"nested cross-validation summarised over {details.get('outer_folds')} outer fold(s)"
+    if event == "learning_curve":
+        how = "kept from an earlier run (same winner, folds and settings)" if details.get("reused") else \
+            f"{details.get('points')} size(s)" + (f", {details['failed']} failed" if details.get("failed") else "")
+        return (f"learning curve of {details.get('winner')} r{details.get('repeat')}f{details.get('fold')}: "
+                f"{how}")
+    if event == "diagnostics":
+        return (f"diagnostics of {details.get('winner')}: {details.get('curves')} validation curve(s), "
+                f"{details.get('oof_rows')} out-of-fold predictions")
     return None
 
 

@@ -68,6 +68,19 @@ RECORDED: tuple[Recorded, ...] = (
              "index of every candidate tallied in any round"),
     Recorded("score_outer", ("score_sha256",), "{scope}score.json", "nested-score", "outer fold's score"),
     Recorded("nested_summary", ("summary_sha256",), "{scope}summary.json", "nested-summary", "nested summary"),
+    Recorded("learning_curve", ("dev_sha256",), "dev.parquet", "dev", "development set", fixed=True),
+    Recorded("learning_curve", ("folds_sha256",), "folds.parquet", "folds", "fold table"),
+    Recorded("learning_curve", ("choice_sha256",), "choice.json", "choice", "choice"),
+    Recorded("learning_curve", ("fits_sha256",), "fits/{family}/r{repeat}f{fold}.parquet", "fits",
+             "fit job's records"),
+    Recorded("learning_curve", ("learning_sha256",), "diagnostics/learning/r{repeat}f{fold}.parquet", "learning",
+             "learning-curve table of one fold"),
+    Recorded("diagnostics", ("choice_sha256",), "choice.json", "choice", "choice"),
+    Recorded("diagnostics", ("diagnostics_sha256",), "diagnostics/diagnostics.json", "diagnostics",
+             "diagnostics' numbers"),
+    *(Recorded("diagnostics", (f"{name}_png_sha256",), f"diagnostics/plots/{name}.png", "diagnostics-plot",
+               f"{name} picture of the diagnostics") for name in ("validation", "learning", "confusion",
+                                                                  "calibration", "residuals")),
 )
 
 # Hashes in the ledger that name no file under the experiment, and why the audit does not check them there.

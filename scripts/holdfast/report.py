@@ -773,6 +773,119 @@ def _verdict(exp: Path, files: Vouched, unit: str | None, figures: dict[str, byt
     return "".join(out)
 
 
+DIAGNOSTICS = "diagnostics/diagnostics.json"
+
+
+def _figure(files: Vouched, figures: dict[str, bytes], name: str, alt: str, caption: str) -> str:
+    """A verified diagnostics picture, also handed to Snakemake's report as diagnostics_<name>.png."""
+    try:
+        data = files.data(f"diagnostics/plots/{name}.png")
+    except WithheldError as reason:
+        return f'<p class="withheld">The picture is {_e(reason)}</p>'
+    figures[f"diagnostics_{name}.png"] = data
+    return _png(data, alt, caption)
+
+
+def _mean_sd(metric: str, mean: Any, sd: Any, unit: str | None) -> str:
+    shown = display.number(metric, mean, unit)
+    return shown if _num(sd) is None else f"{shown} ± {display.spread(metric, sd, unit)}"
+
+
+def _diagnostics(exp: Path, files: Vouched, unit: str | None, figures: dict[str, bytes]) -> str:
+    if not (exp / DIAGNOSTICS).exists():
+        return ("<p>No diagnostics: <code>diagnostics/diagnostics.json</code> does not exist (the experiment was "
+                "closed before holdfast made them, or no run has reached them yet).</p>")
+    result = files.json(DIAGNOSTICS)
+    choice, metric = _primary(files)
+    if result["winner"]["candidate"] != choice["winner"]["candidate"]:
+        return (f'<p class="withheld">The diagnostics are of {_e(result["winner"]["candidate"])}, not of the winner '
+                f'{_e(choice["winner"]["candidate"])}: run again to remake them.</p>')
+    label, direction = _e(display.label(metric)), _e(display.direction(metric))
+    out = [f"<p>What the stored fits and out-of-fold predictions say about the choice, on development rows only, "
+           f"in {label} ({direction}). A wide gap between training and validation scores means the candidate "
+           "fits its training rows much better than new ones (over-fitting); low scores on both mean it is too "
+           "simple for the data; a validation score still rising at the full training size means more data "
+           "would likely help. From <code>diagnostics/diagnostics.json</code>.</p>"]
+    curves = result.get("validation_curves") or []
+    out.append("<h3>Validation curves</h3>")
+    if curves:
+        out.append(_figure(files, figures, "validation", "validation curves per family and parameter",
+                           "Training (dashed) and validation (solid) score against each numeric grid parameter, mean "
+                           "over folds ± 1 sd; the dotted line is the winner's value, or in another family its best "
+                           "candidate's. The other parameters are held at that candidate's values."))
+        rows = []
+        for curve in curves:
+            fixed = ", ".join(f"{k}={v}" for k, v in sorted(curve["fixed"].items())) or "none"
+            for p in curve["points"]:
+                chosen = p["candidate"] == curve["chosen_candidate"]
+                mark = (" ← winner" if curve["chosen_is_winner"] else " ← best in family") if chosen else ""
+                rows.append([f"{_e(curve['family'])}: <code>{_e(curve['param'])}</code>"
+                             f"<br><span class=note>others: {_e(fixed)}</span>", _e(p["value"]) + mark,
+                             _e(_mean_sd(metric, p["train_mean"], p["train_sd"], unit)),
+                             _e(_mean_sd(metric, p["val_mean"], p["val_sd"], unit)), _e(p["folds"])])
+        out.append(_collapsible(f"The numbers ({len(rows)} points)", _table(
+            ["family: parameter", "value", "training", "validation", "folds"], rows, {1, 2, 3, 4})))
+    else:
+        out.append("<p>No family has a grid parameter with at least two numeric values.</p>")
+    out.append("<h3>Learning curve of the winner</h3>")
+    learning = result.get("learning_curve") or {}
+    if learning.get("points"):
+        out.append(_figure(files, figures, "learning", "the winner's learning curve",
+                           "The winner fitted on nested subsets of each training fold (each inside the next) and "
+                           "scored on the fold's validation rows: mean over folds ± 1 sd. The full fold's point is "
+                           "the winner's own fit record."))
+        rows = [[_e(f"{p['fraction']:.0%}"), _e(f"{p['n_train']:.0f}"),
+                 _e(_mean_sd(metric, p["metrics"][metric]["train_mean"], p["metrics"][metric]["train_sd"], unit)),
+                 _e(_mean_sd(metric, p["metrics"][metric]["val_mean"], p["metrics"][metric]["val_sd"], unit)),
+                 _e(p["folds"]) + (f" ({_e(p['failed'])} failed)" if p.get("failed") else "")]
+                for p in learning["points"]]
+        out.append(_table(["share of the training fold", "training rows", "training", "validation", "folds"],
+                          rows, {0, 1, 2, 3, 4}))
+    else:
+        out.append(f"<p>Not made: {_e(learning.get('unavailable', 'no learning-curve tables'))}.</p>")
+    if "confusion" in result:
+        block = result["confusion"]
+        labels = [str(v) for v in block["labels"]]
+        out.append("<h3>Confusion matrix of the winner, out of fold</h3>")
+        out.append(_figure(files, figures, "confusion", "the winner's out-of-fold confusion matrix",
+                           f"{_e(block['rows'])} out-of-fold predictions of the winner (every repeat): rows are the "
+                           "true class, columns the predicted one."))
+        out.append(_table(["true \\ predicted"] + [_e(v) for v in labels],
+                          [[_e(labels[i])] + [_e(c) for c in row] for i, row in enumerate(block["matrix"])],
+                          set(range(1, len(labels) + 1))))
+    if "calibration" in result:
+        block = result["calibration"]
+        out.append("<h3>Reliability of the winner's probabilities</h3>")
+        if block.get("curves"):
+            out.append(_figure(files, figures, "calibration", "reliability curve of the winner's probabilities",
+                               f"Out-of-fold predicted probability against the observed share, in {_e(block['bins'])} "
+                               "equal-width bins (empty bins left out). On the dotted diagonal, a predicted 30% "
+                               "happens 30% of the time."))
+            rows = [[_e(c["class"]), _e(f"{p:.3f}"), _e(f"{o:.3f}"), _e(n)] for c in block["curves"]
+                    for p, o, n in zip(c["predicted"], c["observed"], c["count"], strict=True)]
+            out.append(_collapsible(f"The numbers ({len(rows)} bins)", _table(
+                ["class", "mean predicted probability", "observed share", "rows"], rows, {1, 2, 3})))
+        else:
+            out.append(f"<p>Not made: {_e(block.get('unavailable'))}.</p>")
+    if "residuals" in result:
+        block = result["residuals"]
+        u = f" {unit}" if unit else ""
+        out.append("<h3>Residuals of the winner, out of fold</h3>")
+        out.append(_figure(files, figures, "residuals", "the winner's out-of-fold residuals against its predictions",
+                           "True minus predicted value of every out-of-fold prediction (a sample when there are "
+                           "many), and the mean residual per tenth of the predictions. A trend or a funnel says "
+                           "where the model is biased or less sure."))
+        out.append(_facts([("predictions", _e(block["rows"])), ("mean residual", _e(f"{block['mean']:.4f}{u}")),
+                           ("mean absolute residual", _e(f"{block['mean_absolute']:.4f}{u}")),
+                           ("middle 90%", _e(f"{block['quantiles']['0.05']:.4f} to "
+                                             f"{block['quantiles']['0.95']:.4f}{u}"))]))
+        rows = [[_e(f"{b['prediction_low']:.3f} to {b['prediction_high']:.3f}{u}"), _e(b["rows"]),
+                 _e(f"{b['residual_mean']:.4f}{u}"), _e("—" if b["residual_sd"] is None else
+                                                     f"{b['residual_sd']:.4f}{u}")] for b in block["bins"]]
+        out.append(_table(["predictions from", "rows", "mean residual", "sd of residuals"], rows, {1, 2, 3}))
+    return "".join(out)
+
+
 def _agreement_words(block: Mapping[str, Any]) -> str:
     """The verdict's agreement note without its technical key names."""
     note = str(block.get("agreement_note") or "")
@@ -847,6 +960,11 @@ def _event_words(entry: Mapping[str, Any]) -> str:
         return f"nested: outer fold {d.get('outer')} scored"
     if event == "nested_summary":
         return f"nested summary over {d.get('outer_folds')} outer folds"
+    if event == "learning_curve":
+        return (f"learning curve of {d.get('winner')}, repeat {d.get('repeat')} fold {d.get('fold')}"
+                + (": kept from an earlier run" if d.get("reused") else f": {d.get('points')} sizes"))
+    if event == "diagnostics":
+        return f"diagnostics of {d.get('winner')}: {d.get('curves')} validation curve(s)"
     return str(event)
 
 
@@ -898,7 +1016,7 @@ def _cautions() -> str:
 
 SECTIONS = (("job", "The job"), ("folds", "Folds"), ("ranking", "Ranking"), ("per-fold", "Per-fold scores"),
             ("choice", "The choice"), ("optimism", "Optimism of the winner"), ("rounds", "Selection rounds"),
-            ("verdict", "Verdict"), ("audit", "Audit"), ("ledger", "Ledger"),
+            ("diagnostics", "Diagnostics"), ("verdict", "Verdict"), ("audit", "Audit"), ("ledger", "Ledger"),
             ("estimates", "What each number estimates"), ("cautions", "Cautions"))
 
 
@@ -922,6 +1040,7 @@ def render(exp_dir: str | Path, result: Mapping[str, Any], target_unit: str | No
         "choice": lambda: _choice(exp, files, unit),
         "optimism": lambda: _optimism(exp, files, unit),
         "rounds": lambda: _rounds(exp, files, entries),
+        "diagnostics": lambda: _diagnostics(exp, files, unit, figures),
         "verdict": lambda: _verdict(exp, files, unit, figures),
         "audit": lambda: _audit(exp, result),
         "ledger": lambda: _timeline(entries),

@@ -157,6 +157,33 @@ def open_test(smk: Any) -> None:
     print(json.dumps(verdict["metrics"], indent=2))
 
 
+def learning_curve(smk: Any) -> None:
+    """Rule learning_curve -> holdfast.learning.learning_curve (the winner on nested subsets of one fold)."""
+    from .learning import learning_curve as run_learning
+
+    exp = str(Path(smk.output.learning).parents[2])
+    curve = json.loads(smk.params.curve)
+    table = run_learning(exp, smk.input.dev, smk.input.folds, smk.input.choice, json.loads(smk.params.spec),
+                         int(smk.wildcards.repeat), int(smk.wildcards.fold), json.loads(smk.params.metrics),
+                         smk.params.task, [float(s) for s in curve["sizes"]], int(curve["seed"]), int(smk.threads),
+                         json.loads(smk.params.allowed), smk.output.learning, smk.params.ledger,
+                         code=smk.params.code, rule=smk.rule)
+    print(table.to_string())
+
+
+def diagnostics(smk: Any) -> None:
+    """Rule diagnostics -> holdfast.diagnostics.diagnose."""
+    from .diagnostics import diagnose
+
+    spec = json.loads(smk.params.spec)
+    result = diagnose(list(smk.input.fits), list(smk.input.oof), list(smk.input.learning), smk.input.dev,
+                      smk.input.choice, spec["target"], smk.params.task, json.loads(smk.params.metrics),
+                      int(smk.params.bins), smk.params.unit or None, smk.output.diagnostics, smk.output.plots,
+                      smk.params.ledger, rule=smk.rule)
+    print(f"diagnostics of {result['winner']['candidate']}: {len(result['validation_curves'])} validation "
+          f"curve(s); pictures: {', '.join(result['plots']) or 'none'}")
+
+
 def report(smk: Any) -> None:
     """Rule report -> holdfast.report.write_report (reads only; the run's last job, see audit.audit)."""
     from .report import write_report
@@ -195,7 +222,7 @@ def nested_summary(smk: Any) -> None:
 
 
 STEPS = {f.__name__: f for f in (seal, assign_folds, fit_family, record_round, tally, refit_winner, open_test,
-                                 restore_verdict, report,
+                                 restore_verdict, report, learning_curve, diagnostics,
                                  score_outer, nested_summary)}
 # Nested copies of the stages run the same adapters (Snakemake's `use rule ... as nested_<rule>`).
 STEPS.update({f"nested_{name}": STEPS[name] for name in ("assign_folds", "fit_family", "tally", "refit_winner")})

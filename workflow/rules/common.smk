@@ -55,6 +55,10 @@ def fits_of(kind):
     return PLAN.fit_files(kind)
 
 
+def learning_files():
+    return PLAN.learning_files()
+
+
 def nested_fits_of(kind):
     def files(wildcards):
         return PLAN.nested_fit_files(kind, int(wildcards.outer))
@@ -87,12 +91,13 @@ def all_targets():
     ]
     if PLAN.config["nested"]["k"]:
         targets.append(PLAN.path("nested/summary.json"))
-    return targets + [page]
+    return targets + [PLAN.path("diagnostics/diagnostics.json"), page]
 
 
 def report_inputs(wildcards):
     """What the report shows and must follow: ranking, choice and the model's provenance; the ledger once it exists;
-    the nested summary, so the report is the run's last job; and, once the experiment is closed, the verdict.
+    the nested summary and the diagnostics, so the report is the run's last job (once the experiment is closed,
+    only when they exist: their rules have left the workflow); and, once the experiment is closed, the verdict.
 
     Before the last allowed opening the verdict is no input: a model refit after an opening with a written reason
     would make Snakemake open the test set again to bring it up to date. 'holdfast open' remakes the report itself.
@@ -104,6 +109,9 @@ def report_inputs(wildcards):
     nested = PLAN.path("nested/summary.json")
     if PLAN.config["nested"]["k"] and (not PLAN.closed or Path(nested).exists()):
         inputs["nested"] = nested
+    diagnosed = PLAN.path("diagnostics/diagnostics.json")
+    if not PLAN.closed or Path(diagnosed).exists():
+        inputs["diagnostics"] = diagnosed
     verdict = PLAN.path("final/verdict.json")
     if PLAN.closed and (Path(verdict).exists() or verdict_to_restore()):
         inputs["verdict"] = verdict

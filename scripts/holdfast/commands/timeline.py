@@ -35,6 +35,12 @@ DIRECTION: dict[tuple[str, tuple[str, ...]], str] = {
     ("opening_started", ("test_sha256",)): "to read", ("opening_started", ("model_sha256",)): "to read",
     ("round", ("round_sha256",)): "wrote",
     ("score_outer", ("score_sha256",)): "wrote", ("nested_summary", ("summary_sha256",)): "wrote",
+    ("learning_curve", ("dev_sha256",)): "read", ("learning_curve", ("folds_sha256",)): "read",
+    ("learning_curve", ("choice_sha256",)): "read", ("learning_curve", ("fits_sha256",)): "read",
+    ("learning_curve", ("learning_sha256",)): "wrote",
+    ("diagnostics", ("choice_sha256",)): "read", ("diagnostics", ("diagnostics_sha256",)): "wrote",
+    **{("diagnostics", (f"{name}_png_sha256",)): "wrote"
+       for name in ("validation", "learning", "confusion", "calibration", "residuals")},
 }
 VERBS = ("read", "to read", "wrote")
 
