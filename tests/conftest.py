@@ -208,6 +208,7 @@ def nested_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
     write_config(workdir, nested_config())
     result = run_workflow(workdir)
     assert result.returncode == 0, result.stderr[-3000:]
+    shutil.copytree(workdir, workdir.parent / f"{workdir.name}-sealed", symlinks=True)  # for nested_sealed_copy
     opened = open_experiment(workdir, nested_config()["experiment"])
     assert opened.returncode == 0, opened.stdout[-3000:] + opened.stderr[-3000:]
     (workdir.parent / f"{workdir.name}.stdout").write_text(result.stdout)  # beside the experiment, not in it
@@ -219,6 +220,14 @@ def bc_copy(bc_finished: Path, tmp_path: Path) -> Path:
     """A private copy of the finished experiment, times and Snakemake metadata included."""
     target = tmp_path / "work"
     shutil.copytree(bc_finished, target, symlinks=True)
+    return target
+
+
+@pytest.fixture
+def nested_sealed_copy(nested_finished: Path, tmp_path: Path) -> Path:
+    """A private copy of the nested experiment as it was before its opening: the development loop's state."""
+    target = tmp_path / "nested-sealed"
+    shutil.copytree(nested_finished.parent / f"{nested_finished.name}-sealed", target, symlinks=True)
     return target
 
 

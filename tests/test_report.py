@@ -122,7 +122,8 @@ def test_demo_report_loads_cleanly_and_shows_the_verified_numbers(demo_finished:
 
     # Self-contained: every picture embedded, no file or address to fetch, a policy that forbids fetching.
     assert "http://" not in markup and "https://" not in markup
-    assert markup.count('<img src="data:image/png;base64,') == markup.count("<img") == 2
+    # ranking, test interval, and the diagnostics: validation curves, learning curve, confusion matrix, reliability
+    assert markup.count('<img src="data:image/png;base64,') == markup.count("<img") == 6
     assert "<link rel=\"stylesheet\"" not in markup and "<script src" not in markup
     assert "default-src 'none'" in markup
 
@@ -250,7 +251,8 @@ def test_the_report_step_reads_only_and_stays_in_a_closed_experiment(bc_copy: Pa
     assert "Nothing to be done" in dry.stdout + dry.stderr, dry.stderr[-2000:]
 
 
-def test_a_nested_experiment_reports_the_procedure_and_the_report_comes_last(nested_copy: Path) -> None:
+def test_a_nested_experiment_reports_the_procedure_and_the_report_comes_last(nested_sealed_copy: Path) -> None:
+    nested_copy = nested_sealed_copy  # before the opening: the loop may still change and re-run anything
     exp = nested_copy / "results" / "nested-demo"
     summary = json.loads((exp / "nested/summary.json").read_text())
     metric = json.loads((exp / "choice.json").read_text())["metric"]
