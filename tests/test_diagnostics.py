@@ -236,6 +236,20 @@ def test_every_plotted_number_is_the_stored_one_and_an_unchanged_winner_fits_not
     redone = json.loads((exp / "diagnostics/diagnostics.json").read_text())
     assert [c["family"] for c in redone["validation_curves"]] == [choice["winner"]["family"]]
 
+    # A table dropped into the cache with invented numbers is not put back: its bytes were never fitted.
+    [planted] = sorted((exp / "diagnostics/learning/kept").glob("*-r0f0.parquet"))
+    forged = pd.read_parquet(planted)
+    forged["val_" + config["metrics"][0]] = 0.999
+    forged.to_parquet(planted)
+    write_config(tmp_path, small_classification_config())  # the first set-up again: a new tally, a new round
+    head = ledger.read(exp / "ledger.jsonl")[-1]["seq"]
+    third = run_cli(tmp_path, "run", "config.yaml", "--cores", "2")
+    assert third.returncode == 0, third.stdout[-3000:] + third.stderr[-3000:]
+    by_fold = {(e["repeat"], e["fold"]): e["reused"] for e in _events(exp, "learning_curve", head)}
+    assert by_fold == {(0, 0): False, (0, 1): True, (0, 2): True}, by_fold
+    assert not (pd.read_parquet(exp / "diagnostics/learning/r0f0.parquet")["val_" + config["metrics"][0]]
+                == 0.999).any()
+
 
 @pytest.mark.slow
 def test_regression_residuals_are_the_stored_out_of_fold_ones_and_the_learning_curve_can_be_off(tmp_path: Path) -> None:

@@ -8,7 +8,7 @@ pipeline and scored on it and on the fold's full validation rows with every conf
 The job runs after every tally (choice.json is its input), but fits only when what it depends on changed: the
 winner's spec, the fold table, the development rows, the sizes, seed, metrics and the code. Otherwise it puts back
 the table it kept for exactly those inputs (``diagnostics/learning/kept/``), so a tally that keeps the winner costs
-no new fits.
+no new fits; only a table whose bytes an earlier fitting job recorded in the ledger is put back.
 """
 
 from __future__ import annotations
@@ -66,6 +66,20 @@ def input_key(candidate: dict[str, Any], folds_sha256: str, dev_sha256: str, rep
         "sizes": sizes, "seed": seed, "metrics": metrics, "task": task, "code": code}))
 
 
+def fitted_tables(ledger_path: str, key: str) -> set[str]:
+    """Hashes of the tables that learning-curve jobs with this input key fitted (not reused), as the intact ledger
+    records them: a kept table is put back only when its bytes are one of these, so a file dropped into the cache
+    cannot become a learning curve."""
+    if not Path(ledger_path).exists():
+        return set()
+    entries, problems = ledger.verify_chain(ledger_path)
+    if problems:
+        return set()
+    return {str(e["details"].get("learning_sha256")) for e in entries
+            if e.get("event") == "learning_curve" and e["details"].get("key") == key
+            and e["details"].get("reused") is False}
+
+
 def learning_curve(exp_dir: str, dev_path: str, folds_path: str, choice_path: str, spec: dict[str, Any],
                    repeat: int, fold: int, metrics: list[str], task: str, sizes: list[float], seed: int,
                    threads: int, allowed: list[str], out_path: str, ledger_path: str, code: str = "",
@@ -79,7 +93,7 @@ def learning_curve(exp_dir: str, dev_path: str, folds_path: str, choice_path: st
     key = input_key(candidate, folds_sha, dev_sha, repeat, fold, sizes, seed, metrics, task, code)
     kept = exp / KEPT / f"{key[:24]}-r{repeat}f{fold}.parquet"
     details: dict[str, Any] = {}
-    if kept.is_file():
+    if kept.is_file() and sha256_file(kept) in fitted_tables(ledger_path, key[:24]):
         shutil.copyfile(kept, out_path)
         table = pd.read_parquet(out_path)
         reused = True
