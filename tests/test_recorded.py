@@ -129,3 +129,25 @@ def test_a_read_only_copy_can_still_be_checked(tmp_path: Path) -> None:
             assert free
     finally:
         folder.chmod(0o755)
+
+
+def test_a_picture_the_latest_diagnostics_did_not_draw_must_be_absent(tmp_path: Path) -> None:
+    """Round 1 drew a validation curve, round 2 had no numeric grid left: the file is gone and that is fine; a file
+    put there after round 2 is named, since no step wrote it."""
+    from holdfast._io import sha256_file
+    from holdfast.recorded import verify
+
+    picture = tmp_path / "diagnostics/plots/validation.png"
+    picture.parent.mkdir(parents=True)
+    picture.write_bytes(b"round 1")
+    first = {"seq": 1, "event": "diagnostics", "details": {"validation_png_sha256": sha256_file(picture)}}
+    second = {"seq": 2, "event": "diagnostics", "details": {"validation_png_sha256": None}}
+    problems: list = []
+    assert verify(tmp_path, [first], problems) == {"diagnostics/plots/validation.png": sha256_file(picture)}
+    assert problems == []
+    assert verify(tmp_path, [first, second], problems) == {} and [p.code for p in problems] == [
+        "diagnostics-plot-unrecorded"]
+    picture.unlink()
+    problems.clear()
+    assert verify(tmp_path, [first, second], problems) == {} and problems == []
+    assert verify(tmp_path, [first], problems) == {} and [p.code for p in problems] == ["diagnostics-plot-missing"]

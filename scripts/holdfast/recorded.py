@@ -30,6 +30,7 @@ class Recorded:
     fixed: bool = False  # written once at the seal: every record must match it, not only the latest
     reported: bool = True  # False: the openings check names this file's problems (it is still verified here)
     scanned: bool = True  # look for such files that no ledger line records
+    none_means_absent: bool = False  # the key present with null: the step wrote no such file (its latest record)
 
 
 RECORDED: tuple[Recorded, ...] = (
@@ -79,7 +80,7 @@ RECORDED: tuple[Recorded, ...] = (
     Recorded("diagnostics", ("diagnostics_sha256",), "diagnostics/diagnostics.json", "diagnostics",
              "diagnostics' numbers"),
     *(Recorded("diagnostics", (f"{name}_png_sha256",), f"diagnostics/plots/{name}.png", "diagnostics-plot",
-               f"{name} picture of the diagnostics") for name in ("validation", "learning", "confusion",
+               f"{name} picture of the diagnostics", none_means_absent=True) for name in ("validation", "learning", "confusion",
                                                                   "calibration", "residuals")),
 )
 
@@ -104,6 +105,14 @@ def scope_folder(scope: Any) -> str | None:
     if isinstance(scope, str) and _OUTER.fullmatch(scope):
         return f"nested/{scope}/"
     return SCOPE_FOLDERS.get(scope) if isinstance(scope, str) else None
+
+
+def _has(details: dict[str, Any], key: tuple[str, ...]) -> bool:
+    """Whether the details hold the key at all (its value may be null)."""
+    *parents, last = key
+    for part in parents:
+        details = details.get(part) if isinstance(details, dict) else None
+    return isinstance(details, dict) and last in details
 
 
 def _dig(details: dict[str, Any], key: tuple[str, ...]) -> Any:
@@ -146,7 +155,7 @@ def _records(entries: list[dict[str, Any]], out: list[Problem]) -> dict[str, lis
             continue
         for row in by_event.get(str(entry.get("event")), []):
             sha = _dig(details, row.key)
-            if sha is None:
+            if sha is None and not (row.none_means_absent and _has(details, row.key)):
                 continue
             try:
                 name = file_of(row, details)
@@ -180,6 +189,11 @@ def verify(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) -> dict
         path = exp / name
         actual = _sha(path)
         fixed = any(r.row.fixed for r in records)
+        if latest.sha is None:  # the latest step that could have written it says it wrote none
+            if actual is not None:
+                out.append(Problem(f"{row.kind}-unrecorded", f"'{path}' exists but {_at(latest)} recorded that "
+                                   f"no {row.what} was written"))
+            continue
         if actual is None:
             if row.reported:
                 out.append(Problem(f"{row.kind}-missing", f"'{path}' is missing, but the ledger recorded the "
