@@ -80,8 +80,8 @@ RECORDED: tuple[Recorded, ...] = (
     Recorded("diagnostics", ("diagnostics_sha256",), "diagnostics/diagnostics.json", "diagnostics",
              "diagnostics' numbers"),
     *(Recorded("diagnostics", (f"{name}_png_sha256",), f"diagnostics/plots/{name}.png", "diagnostics-plot",
-               f"{name} picture of the diagnostics", none_means_absent=True) for name in ("validation", "learning", "confusion",
-                                                                  "calibration", "residuals")),
+               f"{name} picture of the diagnostics", none_means_absent=True)
+      for name in ("validation", "learning", "confusion", "calibration", "residuals")),
 )
 
 # Hashes in the ledger that name no file under the experiment, and why the audit does not check them there.
