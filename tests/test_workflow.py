@@ -46,6 +46,15 @@ def test_finished_run_has_every_file_and_passes_audit(bc_finished: Path) -> None
     assert json.loads((exp / "audit.json").read_text())["passed"] is True
 
 
+def test_the_run_after_the_first_plans_nothing_before_any_opening(nested_sealed_copy: Path) -> None:
+    # The first run parses the workflow before the seal made the ledger; nothing of its record may differ from what
+    # the next parse gives, or every later run remakes the report ("set of input files has changed").
+    dry = run_workflow(nested_sealed_copy, "-n")
+    assert dry.returncode == 0, dry.stderr[-2000:]
+    assert planned_jobs(dry) == [], dry.stdout[-3000:] + dry.stderr[-3000:]
+    assert "Nothing to be done" in dry.stdout + dry.stderr
+
+
 def test_second_run_has_nothing_to_do(bc_copy: Path) -> None:
     dry = run_workflow(bc_copy, "-n")
     assert dry.returncode == 0, dry.stderr[-2000:]

@@ -321,14 +321,14 @@ def _opening_guard(plan: Plan) -> None:
     """Closed experiments: refuse any change to what was opened; say how to go on honestly."""
     if not plan.closed:
         return
-    from .opening import last_opening, refusal
-
     recorded, parts = _last_fingerprint_parts(plan)
     if parts:  # only the config decides what was opened; a closed experiment runs none of the steps' code
         changed = [name for name in cfg.changed_parts(parts, plan.fingerprint_parts()) if name.startswith("config ")]
     else:
         changed = [] if recorded in (None, plan.fingerprint()) else ["the config or the code of the steps"]
     if changed:
+        from .opening import last_opening, refusal  # imports scikit-learn: only on the way to refusing
+
         entries = ledger.verify_chain(plan.exp / LEDGER)[0] if (plan.exp / LEDGER).exists() else []
         raise SealedAccessError(f"{', '.join(changed)} changed since the opening, so the workflow would open the "
                                 "test set again; nothing was run. "

@@ -95,17 +95,19 @@ def all_targets():
 
 
 def report_inputs(wildcards):
-    """What the report shows and must follow: ranking, choice and the model's provenance; the ledger once it exists;
-    the nested summary and the diagnostics, so the report is the run's last job (once the experiment is closed,
-    only when they exist: their rules have left the workflow); and, once the experiment is closed, the verdict.
+    """What the report shows and must follow: ranking, choice and the model's provenance; the nested summary and
+    the diagnostics, so the report is the run's last job (once the experiment is closed, only when they exist: their
+    rules have left the workflow); and, once the experiment is closed, the verdict.
+
+    Not the ledger: it exists only from the seal on, so the first run would record an input set without it and every
+    later run would remake the report for "set of input files has changed". Whatever the report shows from the
+    ledger changes together with one of these inputs (a round with the ranking, an opening with the verdict).
 
     Before the last allowed opening the verdict is no input: a model refit after an opening with a written reason
     would make Snakemake open the test set again to bring it up to date. 'holdfast open' remakes the report itself.
     """
     inputs = {name: PLAN.path(path) for name, path in (
         ("ranking", "ranking.parquet"), ("choice", "choice.json"), ("provenance", "model/provenance.json"))}
-    if Path(LEDGER).exists():
-        inputs["ledger"] = LEDGER
     nested = PLAN.path("nested/summary.json")
     if PLAN.config["nested"]["k"] and (not PLAN.closed or Path(nested).exists()):
         inputs["nested"] = nested
