@@ -140,15 +140,16 @@ def _store_config(raw: dict[str, Any], exp: Path) -> Path:
 
 
 def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label: str,
-               targets: tuple[str, ...] = ()) -> int:
+               targets: tuple[str, ...] = (), env_extra: dict[str, str] | None = None) -> int:
     """Run Snakemake on the checked config; its own output goes to a log file unless ``show``."""
     # Targets first and --configfile=PATH: Snakemake's list options would swallow a target written after them.
     cmd = [sys.executable, "-m", "snakemake", *targets, "-s", str(SNAKEFILE), f"--configfile={configfile}"]
     if not any(w.split("=", 1)[0] in CORE_OPTIONS or (w.startswith("-j") and w[2:].isdigit()) for w in extra):
         cmd += ["--cores", "all"]
     cmd += extra
-    env = {**os.environ, "HOLDFAST_CLOSING_BY_CLI": "1",
-           "PYTHONPATH": os.pathsep.join(filter(None, [str(REPO / "scripts"), os.environ.get("PYTHONPATH")]))}
+    env = {**_job_env(), "HOLDFAST_CLOSING_BY_CLI": "1", **(env_extra or {})}
+    if not env_extra or "HOLDFAST_OPENING" not in env_extra:
+        env.pop("HOLDFAST_OPENING", None)  # only 'holdfast open' says which opening its Snakemake makes
     with _warm_worker(extra, env):
         if show:
             from . import ledger
@@ -165,22 +166,35 @@ def _local(extra: list[str]) -> bool:
         w.split("=", 1)[0] in ("--executor", "-e", "--profile", "--workflow-profile") for w in extra)
 
 
+# The worker of this command, started before its checks so that its imports overlap them (see _early_worker).
+_WORKER: dict[str, str] = {}
+
+
+def _job_env() -> dict[str, str]:
+    """The environment Snakemake and its jobs run with: this one, with holdfast's scripts importable."""
+    return {**os.environ, "PYTHONPATH": os.pathsep.join(filter(None, [str(REPO / "scripts"),
+                                                                      os.environ.get("PYTHONPATH")]))}
+
+
 @contextlib.contextmanager
-def _warm_worker(extra: list[str], env: dict[str, str]) -> Iterator[None]:
-    """Start the pre-warmed worker for a local run (see holdfast.worker) and stop it afterwards."""
+def _early_worker(extra: list[str]) -> Iterator[None]:
+    """Start the pre-warmed job worker (see holdfast.worker) for a local run as the command starts, stop it at its end.
+
+    Its imports (about two seconds of one core) then overlap the command's own checks instead of the first jobs.
+    """
     if not _local(extra) or any(w in DRY_RUN for w in extra):
         yield
         return
     import tempfile
 
     address = os.path.join(tempfile.gettempdir(), f"holdfast-{os.getuid()}-{os.getpid()}.sock")
-    worker = subprocess.Popen([sys.executable, "-m", "holdfast.worker", address], env=env,
+    worker = subprocess.Popen([sys.executable, "-m", "holdfast.worker", address], env=_job_env(),
                               stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    env[WORKER_ENV] = address
+    _WORKER["address"] = address
     try:
         yield
     finally:
-        env.pop(WORKER_ENV, None)
+        _WORKER.clear()
         worker.terminate()
         try:
             worker.wait(timeout=10)
@@ -188,6 +202,19 @@ def _warm_worker(extra: list[str], env: dict[str, str]) -> Iterator[None]:
             worker.kill()
         with contextlib.suppress(FileNotFoundError):
             os.unlink(address)
+
+
+@contextlib.contextmanager
+def _warm_worker(extra: list[str], env: dict[str, str]) -> Iterator[None]:
+    """Hand this command's worker to one Snakemake call (a dry run, a cluster run or HOLDFAST_NO_WORKER: none)."""
+    if not _WORKER or not _local(extra) or any(w in DRY_RUN for w in extra):
+        yield
+        return
+    env[WORKER_ENV] = _WORKER["address"]
+    try:
+        yield
+    finally:
+        env.pop(WORKER_ENV, None)
 
 
 def _logged(cmd: list[str], env: dict[str, str], exp: Path, label: str) -> int:
@@ -277,7 +304,7 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
 def _open(args: argparse.Namespace, extra: list[str]) -> int:
     from ._io import read_json, sha256_file, write_json
     from .config import read_yaml
-    from .layout import CHOICE, CONFIG_COPY, MODEL, REQUEST
+    from .layout import CHOICE, CONFIG_COPY, MODEL, REQUEST, VERDICT
 
     _refuse_own_options(extra)
     _trust(args.trust_module)
@@ -335,18 +362,39 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
                "by": getpass.getuser(), "confirmed": "--yes" if args.yes else "typed at a terminal"}
     write_json(exp / REQUEST, request)
     config_copy = _store_config(raw, exp)
-    target = str(exp / "final" / "verdict.json")
-    code = _snakemake(config_copy, ["--allowed-rules=open_test", *extra], exp, args.show_snakemake, "open",
-                      targets=(target,))
-    if code:
-        return code
-    # The report in a second Snakemake, now that the verdict exists: in one run with the opening, a report that
-    # did not yet know the verdict as its input could run beside the opening instead of after it.
-    report = _snakemake(config_copy, ["--allowed-rules=report", "--forcerun=report", *extra], exp,
-                        args.show_snakemake, "report", targets=(str(exp / "report.html"),))
+    target, page = str(exp / VERDICT), str(exp / "report.html")
+    if plan.opened + 1 >= plan.allowed_openings:
+        # The opening that closes the experiment: one Snakemake makes the verdict and then the report, which takes
+        # the verdict as its input there (common.smk: closing_opening), so it can only run after the opening.
+        code = _snakemake(config_copy, ["--allowed-rules", "open_test", "report", "--forcerun=report", *extra], exp,
+                          args.show_snakemake, "open", targets=(target, page),
+                          env_extra={"HOLDFAST_OPENING": str(plan.opened + 1)})
+        if code and not _opened_now(exp, plan.opened + 1):
+            return code
+        report = code
+    else:
+        code = _snakemake(config_copy, ["--allowed-rules=open_test", *extra], exp, args.show_snakemake, "open",
+                          targets=(target,))
+        if code:
+            return code
+        # A further opening stays allowed, so the verdict is no input of the report (see common.smk): the report
+        # in a second Snakemake, now that the verdict exists, or it could run beside the opening.
+        report = _snakemake(config_copy, ["--allowed-rules=report", "--forcerun=report", *extra], exp,
+                            args.show_snakemake, "report", targets=(page,))
     if report:
         _say(f"the report was not remade (the opening itself is done); make it with 'holdfast run {config_path}'")
     return _finish(exp, plan.config["data"].get("unit")) or (1 if report else 0)
+
+
+def _opened_now(exp: Path, number: int) -> bool:
+    """True when opening ``number`` finished: its verdict exists (a failed Snakemake may have failed after it)."""
+    from ._io import read_json
+    from .layout import VERDICT
+
+    try:
+        return read_json(exp / VERDICT).get("opening") == number
+    except (OSError, ValueError):
+        return False
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -400,6 +448,9 @@ def main(argv: list[str] | None = None) -> int:
     if extra and not getattr(args, "takes_extra", False):
         parser.error(f"unrecognized arguments: {' '.join(extra)}")
     try:
+        if args.func in (_run, _open):
+            with _early_worker(extra):
+                return int(args.func(args, extra))
         return int(args.func(args, extra) if args.takes_extra else args.func(args))
     except HoldfastError as exc:
         sys.stderr.write(exc.format_message() + "\n")

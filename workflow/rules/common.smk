@@ -104,7 +104,8 @@ def report_inputs(wildcards):
     ledger changes together with one of these inputs (a round with the ranking, an opening with the verdict).
 
     Before the last allowed opening the verdict is no input: a model refit after an opening with a written reason
-    would make Snakemake open the test set again to bring it up to date. 'holdfast open' remakes the report itself.
+    would make Snakemake open the test set again to bring it up to date. 'holdfast open' remakes the report itself:
+    in the opening's own Snakemake when that opening closes the experiment (see closing_opening), else in a second.
     """
     inputs = {name: PLAN.path(path) for name, path in (
         ("ranking", "ranking.parquet"), ("choice", "choice.json"), ("provenance", "model/provenance.json"))}
@@ -115,9 +116,18 @@ def report_inputs(wildcards):
     if not PLAN.closed or Path(diagnosed).exists():
         inputs["diagnostics"] = diagnosed
     verdict = PLAN.path("final/verdict.json")
-    if PLAN.closed and (Path(verdict).exists() or verdict_to_restore()):
+    if (PLAN.closed and (Path(verdict).exists() or verdict_to_restore())) or closing_opening():
         inputs["verdict"] = verdict
     return inputs
+
+
+def closing_opening():
+    """True in the Snakemake that 'holdfast open' starts for the last allowed opening: the report then follows the
+    verdict in the same run, with the inputs it will have once the experiment is closed. HOLDFAST_OPENING names the
+    opening the confirmation (final/request.json) is for; it opens nothing by itself, the request is what gates the
+    opening (see rule open_test)."""
+    return (os.environ.get("HOLDFAST_OPENING") == str(PLAN.opened + 1) and PLAN.request is not None
+            and PLAN.opened + 1 >= PLAN.allowed_openings)
 
 
 def verdict_to_restore():
