@@ -313,11 +313,17 @@ def test_cluster_jobs_ran_under_slurm(local_experiment: Experiment, cluster_expe
     states = dict(line.split("|") for line in shown.split())
     assert states == dict.fromkeys(jobs, "COMPLETED"), shown
     # ... the grouped steps of the first run shared a job (the profile's groups: seal and fold assignment; round
-    # record, tally and refit), and each fit job was a SLURM job of its own ...
+    # record, tally and refit; the learning curve's folds and the diagnostics), and each fit job was a SLURM job of
+    # its own ...
     job_of: dict[str, str] = {}
     for entry in by_rule:
         job_of.setdefault(entry["event"], entry["actor"]["slurm_job"])
     assert job_of["seal"] == job_of["assign_folds"] and job_of["round"] == job_of["tally"] == job_of["refit"], job_of
+    first_diagnostics = next(i for i, e in enumerate(by_rule) if e["event"] == "diagnostics")
+    diagnosed = {e["actor"]["slurm_job"] for e in by_rule[:first_diagnostics + 1]
+                 if e["event"] in ("learning_curve", "diagnostics")}
+    assert len(diagnosed) == 1 and sum(e["event"] == "learning_curve" for e in by_rule[:first_diagnostics]) == 3, \
+        [(e["event"], e["actor"]["slurm_job"]) for e in by_rule]
     fit_jobs = [e["actor"]["slurm_job"] for e in by_rule if e["event"] == "fit"]
     assert len(fit_jobs) == 6 + 3 and len(set(fit_jobs)) == len(fit_jobs), fit_jobs
     # ... while the local run's steps ran on this machine, outside any SLURM job.

@@ -24,7 +24,8 @@ def test_shipped_profile_names_only_rules_the_workflow_has() -> None:
     assert "audit" not in rules  # audits run in holdfast's closing step, not as a rule
     assert profile.get("executor") == "slurm"
     assert profile.pairs("groups") == {"seal": "prepare", "assign_folds": "prepare", "record_round": "conclude",
-                                       "tally": "conclude", "refit_winner": "conclude"}
+                                       "tally": "conclude", "refit_winner": "conclude",
+                                       "learning_curve": "diagnose", "diagnostics": "diagnose"}
 
 
 def test_profile_options_read_from_either_yaml_form(tmp_path: Path) -> None:
