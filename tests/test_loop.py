@@ -382,3 +382,24 @@ def test_a_second_experiment_cannot_seal_rows_another_opened_unless_it_says_why(
     verdict = json.loads((exp / "final" / "verdict.json").read_text())
     assert verdict["test_rows_seen_before"]["note"] == "test rows seen before"
     assert "note: test rows seen before" in run_cli(opened, "audit", "results/bc-again").stdout
+
+
+def test_the_opening_flag_of_holdfast_open_opens_nothing_in_holdfast_run(nested_sealed_copy: Path) -> None:
+    # `holdfast open` tells its own Snakemake which opening it makes (HOLDFAST_OPENING), so the report can follow the
+    # verdict in that one call. The same variable in a user's shell must not turn `holdfast run` into an opening,
+    # even with a valid confirmation waiting (as after an interrupted `holdfast open`).
+    exp = nested_sealed_copy / "results" / "nested-demo"
+    from holdfast._io import sha256_file
+
+    request = {"experiment": "nested-demo", "opening": 1, "model_sha256": sha256_file(exp / "model" / "model.skops"),
+               "choice_sha256": sha256_file(exp / "choice.json"),
+               "winner": json.loads((exp / "choice.json").read_text())["winner"]["candidate"],
+               "requested": "2026-12-03T00:00:00Z", "by": "test", "confirmed": "--yes"}
+    (exp / "final").mkdir(exist_ok=True)
+    (exp / "final" / "request.json").write_text(json.dumps(request))
+    result = run_cli(nested_sealed_copy, "run", "config.yaml", "--cores", "2", env={"HOLDFAST_OPENING": "1"})
+    assert result.returncode == 0, result.stdout[-3000:] + result.stderr[-3000:]
+    assert not (exp / "final" / "verdict.json").exists(), "holdfast run opened the test set"
+    events = [e["event"] for e in ledger.verify_chain(exp / "ledger.jsonl")[0]]
+    assert "open_test" not in events and "opening_started" not in events, events
+    assert "test set opened 0 time(s)" in result.stdout, result.stdout[-2000:]
