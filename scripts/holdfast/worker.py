@@ -31,6 +31,10 @@ PRELOAD = ("numpy", "pandas", "pyarrow", "pyarrow.parquet", "scipy.stats", "skle
            "sklearn.ensemble", "sklearn.tree", "sklearn.neighbors", "sklearn.model_selection", "threadpoolctl",
            "snakemake.iocontainers", "holdfast.steps", "holdfast.fit", "holdfast.folds", "holdfast.seal",
            "holdfast.tally", "holdfast.refit", "holdfast.rounds", "skops.io", "holdfast.opening")
+# What only the later steps import (plots, the report, diagnostics, the audit): loaded after the socket is up, so a job
+# that comes meanwhile waits for these (under a second) instead of running cold; every step that draws sets Agg too.
+LATE = ("matplotlib", "matplotlib.pyplot", "holdfast.learning", "holdfast.diagnostics", "holdfast.nested",
+        "holdfast.audit", "holdfast.report")
 
 
 def _recv_exact(conn: socket.socket, size: int) -> bytes:
@@ -121,7 +125,16 @@ def serve(address: str) -> None:
     tmp = f"{address}.{os.getpid()}.tmp"
     listener.bind(tmp)
     listener.listen(64)
-    os.replace(tmp, address)  # the socket appears only once the imports are done
+    os.replace(tmp, address)  # the socket appears only once the imports every step needs are done
+    for name in LATE:  # a connection made meanwhile waits in the listen backlog
+        try:
+            importlib.import_module(name)
+            if name == "matplotlib":
+                import matplotlib
+
+                matplotlib.use("Agg")
+        except ImportError:
+            continue
     listener.settimeout(1.0)
     signal.signal(signal.SIGCHLD, lambda *_: _reap())
     try:
