@@ -25,7 +25,7 @@ def warm_worker(tmp_path_factory: pytest.TempPathFactory) -> Any:
     """One pre-warmed job worker (holdfast.worker) for the session's plain Snakemake runs, as `holdfast run` has.
 
     Jobs then fork with their imports done instead of starting cold, which is most of what a small test
-    workflow costs. tests/test_kill.py starts Snakemake without it, so the cold path stays tested.
+    workflow costs. tests/test_kill.py kills runs started without it, so the cold path stays tested.
     """
     import tempfile
     import time

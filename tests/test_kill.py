@@ -34,6 +34,7 @@ from typing import Any
 
 import pytest
 from conftest import (
+    _WORKER,
     REPO,
     breast_cancer_frame,
     open_experiment,
@@ -161,11 +162,15 @@ def hung_job(work: Path) -> Path | None:
 
 # --- running Snakemake -------------------------------------------------------------------------------------------
 
-def start(work: Path, out: Path, *args: str) -> subprocess.Popen[bytes]:
-    """Start the real Snakemake on ``work`` as the leader of its own process group, output to ``out``."""
+def start(work: Path, out: Path, *args: str, warm: bool = False) -> subprocess.Popen[bytes]:
+    """Start the real Snakemake on ``work`` as the leader of its own process group, output to ``out``.
+
+    Cold jobs (each its own Python with its imports) unless ``warm``: then the session's pre-warmed worker forks
+    them, as under ``holdfast run``. The killed runs stay cold, so the cold path is killed too; recoveries are warm.
+    """
     cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(work), "--cores", "2",
            *args, "--configfile", str(work / "config.yaml")]
-    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts"), **(_WORKER if warm else {})}
     with open(out, "wb") as sink:
         return subprocess.Popen(cmd, stdout=sink, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, env=env,
                                 start_new_session=True)
@@ -213,7 +218,7 @@ def wait_until(proc: subprocess.Popen[bytes], work: Path, out: Path, seen: Calla
 
 def run_to_end(work: Path, out: Path, *args: str) -> None:
     """Run Snakemake to its end; raise RecoveryError if it fails, hangs on a failed job or times out."""
-    proc = start(work, out, *args)
+    proc = start(work, out, *args, warm=True)
     deadline, hung_since = time.monotonic() + WAIT, None
     while proc.poll() is None:
         if hung_since is None and hung_job(work) is not None:
