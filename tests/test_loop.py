@@ -190,12 +190,23 @@ def test_a_killed_opening_counts_and_is_named_by_the_audit(work: Path) -> None:
 
 # --- flags that used to break an opened experiment -------------------------------------------------------------------
 
-@pytest.fixture
-def opened(work: Path) -> Path:
-    """The small experiment, run and opened through the CLI."""
+@pytest.fixture(scope="module")
+def opened_once(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The small experiment, run and opened through the CLI once for this module (tests take copies of it)."""
+    work = tmp_path_factory.mktemp("opened")
+    breast_cancer_frame().to_csv(work / "data.csv", index=False)
+    write_config(work, small_classification_config())
     ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
     ok(run_cli(work, "open", "results/bc", "--yes", "--cores", "2"))
     return work
+
+
+@pytest.fixture
+def opened(opened_once: Path, tmp_path: Path) -> Path:
+    """A private copy of the opened experiment's project, times and Snakemake metadata included."""
+    target = tmp_path / "opened"
+    shutil.copytree(opened_once, target, symlinks=True)
+    return target
 
 
 KEPT = ("model/model.skops", "model/provenance.json", "final/verdict.json", "sealed/manifest.json",
