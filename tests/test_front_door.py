@@ -122,6 +122,15 @@ def test_holdfast_run_keeps_the_options_it_sets_itself(work: Path, option: str) 
     assert not (work / "results").exists()
 
 
+@pytest.mark.parametrize("option", [["--allowed-rules", "tally", "open_test", "report"], ["--until=tally"],
+                                    ["-U", "x"]])
+def test_holdfast_open_keeps_what_its_snakemake_may_run(work: Path, option: list[str]) -> None:
+    # Snakemake takes the last --allowed-rules it is given: one passed on would widen what the opening's call runs.
+    result = run_cli(work, "open", "results/bc", "--yes", *option)
+    assert result.returncode == 2 and "is set by holdfast open itself" in result.stderr, result.stderr
+    assert not (work / "results").exists()
+
+
 def test_help_lists_every_command_and_version_works(tmp_path: Path) -> None:
     help_text = run_cli(tmp_path, "--help").stdout
     for command in ("run", "open", "audit", "check"):

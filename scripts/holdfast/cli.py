@@ -307,6 +307,10 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
     from .layout import CHOICE, CONFIG_COPY, MODEL, REQUEST, VERDICT
 
     _refuse_own_options(extra)
+    named = [w.split("=", 1)[0] for w in extra if w.split("=", 1)[0] in ("--allowed-rules", "--until", "-U")]
+    if named:  # a later option of Snakemake's replaces an earlier one: it would widen what the opening's call may run
+        raise ConfigError(f"Snakemake option '{named[0]}' is set by holdfast open itself (only the opening and the "
+                          "report run); leave it out")
     _trust(args.trust_module)
     exp = _experiment_dir(args.experiment_dir)
     config_path = Path(args.config) if args.config else exp / CONFIG_COPY
