@@ -125,7 +125,8 @@ def slurm_cluster() -> Iterator[Cluster]:
 
 # The test's copy of the shipped profile: its groups and comments as shipped, settings for this cluster.
 TEST_SETTINGS = {
-    "jobs": 4,  # the test node offers 4 CPUs
+    # "jobs" stays the shipped profile's 100: SLURM itself runs what fits on the node's 4 CPUs and starts each queued
+    # job as one ends; with 4, Snakemake held the other fit jobs back until a status check saw one end.
     "latency-wait": 5,  # one machine: outputs are there at once
     # The plugin's first status check 1 s after a submission, then 10 s later each time: a step of ~15 s
     # is seen finished after ~33 s (40 s first wait, the plugin's default, makes it ~90 s).
