@@ -147,9 +147,9 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
     if not any(w.split("=", 1)[0] in CORE_OPTIONS or (w.startswith("-j") and w[2:].isdigit()) for w in extra):
         cmd += ["--cores", "all"]
     cmd += extra
-    env = {**_job_env(), "HOLDFAST_CLOSING_BY_CLI": "1", **(env_extra or {})}
-    if not env_extra or "HOLDFAST_OPENING" not in env_extra:
-        env.pop("HOLDFAST_OPENING", None)  # only 'holdfast open' says which opening its Snakemake makes
+    env = {**_job_env(), "HOLDFAST_CLOSING_BY_CLI": "1"}
+    env.pop("HOLDFAST_OPENING", None)  # only 'holdfast open' says which opening its Snakemake makes (env_extra)
+    env.update(env_extra or {})
     with _warm_worker(extra, env):
         if show:
             from . import ledger
@@ -206,8 +206,9 @@ def _early_worker(extra: list[str]) -> Iterator[None]:
 
 @contextlib.contextmanager
 def _warm_worker(extra: list[str], env: dict[str, str]) -> Iterator[None]:
-    """Hand this command's worker to one Snakemake call (a dry run, a cluster run or HOLDFAST_NO_WORKER: none)."""
-    if not _WORKER or not _local(extra) or any(w in DRY_RUN for w in extra):
+    """Hand this command's worker to one Snakemake call (none was started for a dry run, a cluster run or with
+    HOLDFAST_NO_WORKER: see _early_worker, which saw the same options)."""
+    if not _WORKER:
         yield
         return
     env[WORKER_ENV] = _WORKER["address"]
@@ -395,7 +396,7 @@ def _opened_now(exp: Path, number: int) -> bool:
     from ._io import read_json
     from .layout import VERDICT
 
-    try:
+    try:  # the verdict names its opening
         return read_json(exp / VERDICT).get("opening") == number
     except (OSError, ValueError):
         return False
