@@ -26,6 +26,7 @@ DRY_RUN = ("-n", "--dry-run", "--dryrun")
 AUDIT_PASS, AUDIT_FAIL, NOT_AN_EXPERIMENT = 0, 1, 2
 AUDIT_IN_PROGRESS = 75  # a step is writing to the experiment: nothing was checked; try again later
 WORKER_ENV = "HOLDFAST_WORKER"
+WORKER_PID_ENV = "HOLDFAST_WORKER_PID"
 
 
 def _say(line: str) -> None:
@@ -143,10 +144,10 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
                targets: tuple[str, ...] = (), env_extra: dict[str, str] | None = None) -> int:
     """Run Snakemake on the checked config; its own output goes to a log file unless ``show``."""
     # Targets first and --configfile=PATH: Snakemake's list options would swallow a target written after them.
-    cmd = [sys.executable, "-m", "snakemake", *targets, "-s", str(SNAKEFILE), f"--configfile={configfile}"]
+    argv = [*targets, "-s", str(SNAKEFILE), f"--configfile={configfile}"]
     if not any(w.split("=", 1)[0] in CORE_OPTIONS or (w.startswith("-j") and w[2:].isdigit()) for w in extra):
-        cmd += ["--cores", "all"]
-    cmd += extra
+        argv += ["--cores", "all"]
+    argv += extra
     env = {**_job_env(), "HOLDFAST_CLOSING_BY_CLI": "1"}
     env.pop("HOLDFAST_OPENING", None)  # only 'holdfast open' says which opening its Snakemake makes (env_extra)
     env.update(env_extra or {})
@@ -156,8 +157,54 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
             from .layout import STEPS_LOCK
 
             with ledger.locked(exp / STEPS_LOCK, shared=True):
-                return subprocess.run(cmd, env=env, stdin=subprocess.DEVNULL).returncode
-        return _logged(cmd, env, exp, label)
+                return _launch(argv, env, None).wait()
+        return _logged(argv, env, exp, label)
+
+
+# Snakemake imported ahead of its call (see holdfast.snakemake_ready), started with the command.
+_READY: dict[str, subprocess.Popen[str]] = {}
+
+
+def _start_ready() -> subprocess.Popen[str]:
+    """A process that imports Snakemake now and runs the Snakemake command line it is sent later."""
+    return subprocess.Popen([sys.executable, "-m", "holdfast.snakemake_ready"], env=_job_env(),
+                            stdin=subprocess.PIPE, text=True)
+
+
+@contextlib.contextmanager
+def _early_snakemake() -> Iterator[None]:
+    """Start importing Snakemake as the command starts, so the import overlaps its checks; end it if unused."""
+    _READY["process"] = _start_ready()
+    try:
+        yield
+    finally:
+        unused = _READY.pop("process", None)
+        if unused is not None:
+            unused.terminate()
+            try:
+                unused.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                unused.kill()
+
+
+def _launch(argv: list[str], env: dict[str, str], log: Path | None) -> subprocess.Popen[str]:
+    """Snakemake's command line ``argv`` in the process started with the command (or a new one: a second call)."""
+    import json
+
+    request = json.dumps({"argv": argv, "env": env, "log": str(log) if log else None}) + "\n"
+    process = _READY.pop("process", None)
+    for _ in range(2):
+        if process is None or process.poll() is not None:
+            process = _start_ready()
+        try:
+            assert process.stdin is not None
+            process.stdin.write(request)
+            process.stdin.close()
+            return process
+        except BrokenPipeError:  # it died before reading its request (killed): start another
+            process.wait()
+            process = None
+    raise OSError("could not start Snakemake: the process meant to run it died twice before reading its command")
 
 
 def _local(extra: list[str]) -> bool:
@@ -191,6 +238,7 @@ def _early_worker(extra: list[str]) -> Iterator[None]:
     worker = subprocess.Popen([sys.executable, "-m", "holdfast.worker", address], env=_job_env(),
                               stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     _WORKER["address"] = address
+    _WORKER["pid"] = str(worker.pid)
     try:
         yield
     finally:
@@ -212,13 +260,15 @@ def _warm_worker(extra: list[str], env: dict[str, str]) -> Iterator[None]:
         yield
         return
     env[WORKER_ENV] = _WORKER["address"]
+    env[WORKER_PID_ENV] = _WORKER["pid"]  # a job that comes before the worker's socket waits for it
     try:
         yield
     finally:
         env.pop(WORKER_ENV, None)
+        env.pop(WORKER_PID_ENV, None)
 
 
-def _logged(cmd: list[str], env: dict[str, str], exp: Path, label: str) -> int:
+def _logged(argv: list[str], env: dict[str, str], exp: Path, label: str) -> int:
     """Run Snakemake with its output in a log file, showing holdfast's own progress lines meanwhile."""
     import datetime as dt
 
@@ -232,8 +282,9 @@ def _logged(cmd: list[str], env: dict[str, str], exp: Path, label: str) -> int:
 
     # The run holds the experiment's steps lock shared from start to end, so an audit made meanwhile says "in
     # progress" even in the instant between Snakemake deleting a job's old outputs and the job taking the lock.
-    with open(log, "w", encoding="utf-8") as handle, ledger.locked(exp / STEPS_LOCK, shared=True):
-        process = subprocess.Popen(cmd, env=env, stdin=subprocess.DEVNULL, stdout=handle, stderr=subprocess.STDOUT)
+    log.write_text("", encoding="utf-8")
+    with ledger.locked(exp / STEPS_LOCK, shared=True):
+        process = _launch(argv, env, log)
         follow(exp, process, _say, log)
     if process.returncode:
         _show_failure(log)
@@ -288,7 +339,7 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
     _trust(args.trust_module)
     raw = read_yaml(args.configfile)
     plan = _prepare_cached(raw)
-    _forced_guard(plan, snakemake_flags(["snakemake", *extra]))
+    _forced_guard(plan, snakemake_flags(["snakemake", *extra]) if extra else {})  # no options, nothing forced
     if plan.exp.is_symlink():
         raise ConfigError(f"results folder '{plan.exp}' is a symbolic link; holdfast writes only into real folders "
                           "inside the project")
@@ -454,7 +505,7 @@ def main(argv: list[str] | None = None) -> int:
         parser.error(f"unrecognized arguments: {' '.join(extra)}")
     try:
         if args.func in (_run, _open):
-            with _early_worker(extra):
+            with _early_snakemake(), _early_worker(extra):
                 return int(args.func(args, extra))
         return int(args.func(args, extra) if args.takes_extra else args.func(args))
     except HoldfastError as exc:

@@ -6,10 +6,10 @@ person exactly what the experiment gained: a fit job's family and fold, the tall
 
 from __future__ import annotations
 
+import contextlib
 import json
 import re
 import subprocess
-import time
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -154,4 +154,5 @@ def follow(exp: Path, process: subprocess.Popen[Any], say: Callable[[str], None]
                 say(line)
         if ended:
             return
-        time.sleep(POLL_SECONDS)
+        with contextlib.suppress(subprocess.TimeoutExpired):  # back at once when Snakemake ends
+            process.wait(timeout=POLL_SECONDS)

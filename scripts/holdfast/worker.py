@@ -24,6 +24,8 @@ import threading
 from typing import Any
 
 ENV = "HOLDFAST_WORKER"
+PID_ENV = "HOLDFAST_WORKER_PID"  # the worker's process: a job that finds no socket yet waits while it runs
+STARTUP_WAIT = 60.0  # seconds a job waits for a worker that is still importing (about 2 s alone, more when busy)
 HEADER = struct.Struct("!Q")
 # What the steps import; loaded once in the worker so that no job pays for it again.
 PRELOAD = ("numpy", "pandas", "pyarrow", "pyarrow.parquet", "scipy.stats", "sklearn.base", "sklearn.pipeline",
@@ -48,14 +50,47 @@ def _recv_exact(conn: socket.socket, size: int) -> bytes:
     return b"".join(chunks)
 
 
+def _alive(pid: int) -> bool:
+    """True while process ``pid`` runs (a zombie, dead but not yet reaped by its parent, counts as ended)."""
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as handle:
+            return handle.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
+    except FileNotFoundError:
+        return False
+    except OSError:  # no /proc: ask the kernel
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return False
+        except PermissionError:
+            return True
+        return True
+
+
+def _connect(address: str) -> socket.socket | None:
+    """A connection to the worker at ``address``; while it is still importing (its process named in
+    :data:`PID_ENV` runs, for up to :data:`STARTUP_WAIT` seconds) wait for it rather than run cold."""
+    import time
+
+    pid = os.environ.get(PID_ENV, "")
+    deadline = time.monotonic() + STARTUP_WAIT
+    while True:
+        conn = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        try:
+            conn.connect(address)
+            return conn
+        except OSError:
+            conn.close()
+        if not pid.isdigit() or not _alive(int(pid)) or time.monotonic() > deadline:
+            return None
+        time.sleep(0.02)
+
+
 def submit(address: str, job: Any) -> int | None:
     """Run ``job`` (Snakemake's job object) in the worker; its exit code, or None when no worker answers."""
     payload = pickle.dumps({"job": job, "cwd": os.getcwd(), "env": dict(os.environ)}, protocol=4)
-    conn = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
-    try:
-        conn.connect(address)
-    except OSError:
-        conn.close()
+    conn = _connect(address)
+    if conn is None:
         return None
     with conn:
         socket.send_fds(conn, [HEADER.pack(len(payload))], [1, 2])
@@ -79,6 +114,7 @@ def _run_child(conn: socket.socket) -> None:
     os.environ.clear()
     os.environ.update(request["env"])
     os.environ.pop(ENV, None)
+    os.environ.pop(PID_ENV, None)
 
     def watch() -> None:  # the job script died (its Snakemake was killed): this job must not outlive it
         try:

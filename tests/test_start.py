@@ -1,0 +1,101 @@
+"""How holdfast starts Snakemake and its jobs quickly: Snakemake imported ahead, jobs that wait for the worker.
+
+``holdfast.snakemake_ready`` imports Snakemake while the command checks the config and then runs Snakemake's
+own command line; ``holdfast.worker._connect`` lets a job wait for a worker that is still importing instead of
+running cold. Both run for real here (real Snakemake, real worker processes).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+from conftest import REPO
+from holdfast import worker
+
+ENV = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+
+
+def _ready(tmp_path: Path) -> subprocess.Popen[str]:
+    return subprocess.Popen([sys.executable, "-m", "holdfast.snakemake_ready"], cwd=tmp_path, env=ENV,
+                            stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+
+
+def test_a_ready_snakemake_told_nothing_runs_nothing(tmp_path: Path) -> None:
+    process = _ready(tmp_path)
+    _, err = process.communicate("", timeout=120)
+    assert process.returncode == 0, err
+    assert not (tmp_path / ".snakemake").exists()
+
+
+def test_a_ready_snakemake_runs_the_command_line_as_python_m_snakemake_would(tmp_path: Path) -> None:
+    # The Snakefile sees sys.argv as under `python -m snakemake` (holdfast.plan.snakemake_flags reads it there),
+    # the environment it was sent, and its output goes to the named log; Snakemake's exit code comes back.
+    (tmp_path / "Snakefile").write_text(
+        "import json, os, sys\n"
+        f"sys.path.insert(0, {str(REPO / 'scripts')!r})\n"
+        "from holdfast.plan import snakemake_flags\n"
+        "if '--target-jobs' not in sys.argv:  # the main process (a job's own Snakemake has that option)\n"
+        "    with open('seen.json', 'w') as handle:\n"
+        "        json.dump({'flags': snakemake_flags(), 'argv0': sys.argv[0],\n"
+        "                   'mark': os.environ.get('HOLDFAST_TEST_MARK')}, handle, default=sorted)\n"
+        "rule all:\n"
+        "    output: 'done.txt'\n"
+        "    shell: 'touch {output}'\n")
+    log = tmp_path / "snakemake.log"
+    request = {"argv": ["-s", "Snakefile", "--cores", "1", "--forcerun", "all"], "log": str(log),
+               "env": {**ENV, "HOLDFAST_TEST_MARK": "sent"}}
+    process = _ready(tmp_path)
+    out, err = process.communicate(json.dumps(request) + "\n", timeout=300)
+    assert process.returncode == 0, log.read_text() + err
+    seen = json.loads((tmp_path / "seen.json").read_text())
+    assert seen["flags"]["forcerun"] == ["all"]
+    assert Path(seen["argv0"]).name == "__main__.py" and "snakemake" in seen["argv0"]
+    assert seen["mark"] == "sent"
+    assert "Finished job" in log.read_text() or "steps (100%) done" in log.read_text()
+    assert out == ""  # everything went to the log
+
+    failing = {**request, "argv": ["-s", "Missing.smk", "--cores", "1"]}
+    process = _ready(tmp_path)
+    process.communicate(json.dumps(failing) + "\n", timeout=300)
+    assert process.returncode == 1
+    assert "Missing.smk" in log.read_text()
+
+
+def test_a_job_waits_for_a_worker_that_is_still_importing(tmp_path: Path,
+                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    address = str(tmp_path / "w.sock")
+    started = subprocess.Popen([sys.executable, "-m", "holdfast.worker", address], env=ENV,
+                               stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        assert not os.path.exists(address)  # its imports take seconds: no socket yet
+        monkeypatch.setenv(worker.PID_ENV, str(started.pid))
+        conn = worker._connect(address)
+        assert conn is not None, "the job gave up on a worker that was still starting (it would run cold)"
+        conn.close()
+    finally:
+        started.terminate()
+        started.wait(timeout=30)
+
+
+def test_a_job_does_not_wait_for_a_worker_that_ended(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    ended = subprocess.Popen([sys.executable, "-c", "pass"])
+    deadline = time.monotonic() + 30
+    while worker._alive(ended.pid) and time.monotonic() < deadline:  # not reaped yet: a zombie counts as ended
+        time.sleep(0.05)
+    assert not worker._alive(ended.pid)
+    monkeypatch.setenv(worker.PID_ENV, str(ended.pid))
+    t0 = time.monotonic()
+    assert worker._connect(str(tmp_path / "none.sock")) is None
+    assert time.monotonic() - t0 < 5
+    ended.wait()
+    monkeypatch.delenv(worker.PID_ENV)  # no worker named: no wait at all (plain snakemake, a cluster job)
+    t0 = time.monotonic()
+    assert worker._connect(str(tmp_path / "none.sock")) is None
+    assert time.monotonic() - t0 < 1
+
