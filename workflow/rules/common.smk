@@ -135,7 +135,23 @@ def verdict_to_restore():
     return PLAN.verdict_to_restore()
 
 
+def stop_rescheduling():
+    """Cancel the scheduler's pending re-evaluations: Snakemake starts a threading.Timer of up to 1 s (its
+    --max-jobs-per-timespan span) after each scheduling pass, and the interpreter waits for the last ones before
+    Snakemake can exit. The run is over when onsuccess or onerror runs, so nothing is left for them to do."""
+    import threading
+
+    for thread in threading.enumerate():
+        if isinstance(thread, threading.Timer):
+            thread.cancel()
+
+
+onerror:
+    stop_rescheduling()
+
+
 onsuccess:
+    stop_rescheduling()
     # Closing lines from an audit made now (never a stale audit.json), the receipt with the ledger head, and the
     # headline numbers only when the audit passed, from the files it verified. No step runs any more here, so the
     # audit's exclusive lock does not wait on this run. `holdfast run` and `holdfast open` do this themselves.
