@@ -230,7 +230,8 @@ def _ranking_against_fits(exp: Path, entries: list[dict[str, Any]], scope: str, 
                            f"file(s) (the tally's record) but {len(used)} fit job(s) of its families ran on the "
                            "current fold table"))
         return
-    fits = pd.concat([pd.read_parquet(exp / name) for name in used], ignore_index=True)
+    metrics = sorted({f"val_{metric}" for metric in ranking["metric"]})
+    fits = _fit_columns([exp / name for name in used], ["candidate", "status", *metrics])
     expected = len({name.rsplit("/", 1)[1] for name in used})  # folds per family: r<R>f<F>.parquet names
     ranked, fitted = set(ranking["candidate"]), set(fits["candidate"])
     if ranked != fitted:
@@ -252,6 +253,22 @@ def _ranking_against_fits(exp: Path, entries: list[dict[str, Any]], scope: str, 
     if wrong:
         out.append(Problem("ranking-disagrees-with-fits", f"'{where}' is not what its fit files give for "
                            f"{len(wrong)} candidate/metric pair(s), e.g. {wrong[0]}"))
+
+
+def _fit_columns(paths: list[Path], columns: list[str]) -> pd.DataFrame:
+    """The named columns of the fit files, in order, as one frame (a column a file lacks is missing there).
+
+    Read with Arrow, only these columns, and converted once: a finished experiment has one fit file per fit job,
+    and reading each whole with pandas cost about 2.4 ms a file (2.4 s of every closing audit at 1,000 jobs).
+    """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    tables = []
+    for path in paths:
+        source = pq.ParquetFile(path)
+        tables.append(source.read(columns=[c for c in columns if c in source.schema_arrow.names]))
+    return pa.concat_tables(tables, promote_options="default").to_pandas()
 
 
 def _order(rows: pd.DataFrame) -> list[Any]:
