@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import signal
 import subprocess
 import sys
 import time
@@ -99,3 +100,14 @@ def test_a_job_does_not_wait_for_a_worker_that_ended(tmp_path: Path, monkeypatch
     assert worker._connect(str(tmp_path / "none.sock")) is None
     assert time.monotonic() - t0 < 1
 
+
+
+def test_ctrl_c_before_the_request_leaves_the_ready_snakemake_quiet(tmp_path: Path) -> None:
+    # Ctrl-C reaches the whole process group while holdfast still checks the config; the process importing
+    # Snakemake has nothing to stop then (holdfast ends it), so it must not print a traceback on the terminal.
+    process = _ready(tmp_path)
+    time.sleep(0.5)  # inside its imports (about 1.7 s)
+    process.send_signal(signal.SIGINT)
+    _, err = process.communicate("", timeout=120)
+    assert "Traceback" not in err and "KeyboardInterrupt" not in err, err
+    assert process.returncode == 0

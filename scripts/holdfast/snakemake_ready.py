@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import json
 import os
+import signal
 import sys
 import threading
 
@@ -30,6 +31,9 @@ def _code(value: object) -> int:
 
 def main() -> int:
     """Import Snakemake, wait for the request on stdin, run it; the exit code is Snakemake's."""
+    # Ctrl-C reaches the whole process group: before its request this process has nothing to stop (holdfast ends it
+    # if unused), so it stays quiet instead of printing a traceback; from the request on, Snakemake handles it.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     import snakemake
     import snakemake.cli
 
@@ -38,6 +42,7 @@ def main() -> int:
     if not line.strip():
         return 0
     request = json.loads(line)
+    signal.signal(signal.SIGINT, signal.default_int_handler)  # before Snakemake starts any job: they inherit it
     null = os.open(os.devnull, os.O_RDONLY)  # Snakemake's stdin, as before: nothing
     os.dup2(null, 0)
     os.close(null)
