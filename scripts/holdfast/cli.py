@@ -204,7 +204,8 @@ def _launch(argv: list[str], env: dict[str, str], log: Path | None) -> subproces
         except BrokenPipeError:  # it died before reading its request (killed): start another
             process.wait()
             process = None
-    raise OSError("could not start Snakemake: the process meant to run it died twice before reading its command")
+    raise HoldfastError("could not start Snakemake: the process meant to run it ended twice before reading its "
+                        f"command; try 'python -m snakemake --version' with {sys.executable} to see why")
 
 
 def _local(extra: list[str]) -> bool:
