@@ -52,19 +52,19 @@ def _recv_exact(conn: socket.socket, size: int) -> bytes:
 
 def _alive(pid: int) -> bool:
     """True while process ``pid`` runs (a zombie, dead but not yet reaped by its parent, counts as ended)."""
-    try:
-        with open(f"/proc/{pid}/stat", "rb") as handle:
-            return handle.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
-    except FileNotFoundError:
-        return False
-    except OSError:  # no /proc: ask the kernel
+    if os.path.isdir("/proc/self"):
         try:
-            os.kill(pid, 0)
-        except ProcessLookupError:
+            with open(f"/proc/{pid}/stat", "rb") as handle:
+                return handle.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
+        except OSError:
             return False
-        except PermissionError:
-            return True
+    try:  # no /proc (macOS): ask the kernel, which cannot tell a zombie
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
         return True
+    return True
 
 
 def _connect(address: str) -> socket.socket | None:
