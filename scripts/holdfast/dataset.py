@@ -15,7 +15,14 @@ MAX_CLASSES_FOR_INFERENCE = 20
 
 
 _HEX = np.frombuffer(b"0123456789abcdef", dtype=np.uint8)
-_SHA256_DIGEST = type(hashlib.sha256()).digest
+try:  # CPython's own SHA-256 (FIPS 180-4): about a fifth quicker than OpenSSL's on messages this short
+    from _sha2 import sha256 as _sha256  # Python 3.12 on
+except ImportError:
+    try:
+        from _sha256 import sha256 as _sha256  # Python 3.11
+    except ImportError:
+        _sha256 = hashlib.sha256
+_SHA256_DIGEST = type(_sha256()).digest
 _KEY_HASH_MULTIPLIER = np.uint64(0x9E3779B97F4A7C15)
 
 
@@ -39,7 +46,7 @@ def _strings(values: Any) -> Any:
 def _digests(messages: Any, chunk: int = 1 << 16) -> np.ndarray:
     """SHA-256 of each message (an Arrow string array or a list of bytes): an (n, 32) array of bytes.
 
-    One hashlib call per message, iterated in C (``map``) with no Python code run per row, a chunk of
+    One hash call per message, iterated in C (``map``) with no Python code run per row, a chunk of
     rows at a time so that only one chunk's Python byte strings exist at once.
     """
     import pyarrow as pa
@@ -49,7 +56,7 @@ def _digests(messages: Any, chunk: int = 1 << 16) -> np.ndarray:
         part = messages[start:start + chunk]
         if isinstance(part, pa.Array):
             part = part.cast(pa.large_binary()).to_pylist()
-        joined = b"".join(map(_SHA256_DIGEST, map(hashlib.sha256, part)))
+        joined = b"".join(map(_SHA256_DIGEST, map(_sha256, part)))
         out[start:start + len(part)] = np.frombuffer(joined, dtype=np.uint8).reshape(-1, 32)
     return out
 
