@@ -455,3 +455,54 @@ def test_plot_labels_show_only_the_parameters_that_vary_within_a_family() -> Non
     labels = candidate_labels(candidates, ["a1", "a2", "b1", "c1", "c2"])
     assert labels == {"a1": "forest · min_samples_leaf=1 · a1", "a2": "forest · min_samples_leaf=5 · a2",
                       "b1": "logistic · b1", "c1": "tree · max_depth=None · c1", "c2": "tree · max_depth=default · c2"}
+
+
+def test_hash_unit_is_sha256_of_salt_and_key_as_documented() -> None:
+    # The definition in dataset.hash_unit: SHA-256 (NIST FIPS 180-4, Secure Hash Standard, 2015, section 6.2)
+    # of UTF-8 "salt" + U+001F + "key", first 8 bytes as a big-endian integer over 2**64. hashlib (OpenSSL)
+    # is the reference; holdfast hashes with CPython's own SHA-256 where it is present, for speed.
+    keys = pd.Series(["id0", "", "ünïcödé-κλειδί", "🙂" * 40, "x" * 300, "tab\tnew\nline", *map(str, range(200))])
+    expected = np.array([int.from_bytes(hashlib.sha256(f"pepper\x1f{k}".encode()).digest()[:8], "big") / 2.0**64
+                         for k in keys])
+    assert np.array_equal(hash_unit(keys, "pepper"), expected)
+    numbers = pd.Series([7, -3, 10**15])  # integer ids hash as their decimal text
+    assert np.array_equal(hash_unit(numbers, "s"), hash_unit(numbers.astype(str), "s"))
+
+
+def test_large_parquet_files_read_column_by_column_give_the_frame_pandas_gives(tmp_path: Path,
+                                                                             monkeypatch: pytest.MonkeyPatch) -> None:
+    from holdfast import _io
+
+    rng = np.random.default_rng(5)
+    frame = pd.DataFrame({"row_key": [f"k{i}" for i in range(5000)], "y": rng.integers(0, 2, 5000).astype("int8"),
+                          **{f"x{j}": rng.standard_normal(5000) for j in range(7)},
+                          "cat": pd.Categorical(rng.choice(["a", "b", None], 5000)),
+                          "when": pd.date_range("2026-01-01", periods=5000, freq="h", tz="UTC")})
+    frame.loc[::97, "x3"] = np.nan
+    frame.to_parquet(tmp_path / "f.parquet", index=False, row_group_size=700)
+    monkeypatch.setattr(_io, "COLUMN_BY_COLUMN_ROWS", 1000)  # the threaded column-by-column path
+    pd.testing.assert_frame_equal(_io.read_parquet(tmp_path / "f.parquet"), pd.read_parquet(tmp_path / "f.parquet"))
+    pd.testing.assert_frame_equal(_io.read_parquet(tmp_path / "f.parquet", columns=["x2", "row_key"]),
+                                  pd.read_parquet(tmp_path / "f.parquet", columns=["x2", "row_key"]))
+
+
+def test_a_seal_that_fails_while_writing_leaves_no_sealed_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from holdfast import seal as sealing
+
+    data, exp = tmp_path / "data.csv", tmp_path / "exp"
+    breast_cancer_frame().to_csv(data, index=False)
+    spec = {"target": "target", "id": "patient", "group": None, "time": None, "drop": [], "task": "classification",
+            "fraction": 0.25, "scheme": "hashed", "salt": "s"}
+    real = sealing.single_feature_alarms
+
+    def failing(*args: Any, **kwargs: Any) -> Any:  # runs beside the writing of the two sides
+        raise MemoryError("injected")
+
+    monkeypatch.setattr(sealing, "single_feature_alarms", failing)
+    with pytest.raises(MemoryError):
+        sealing.seal(data, spec, exp, "fail")
+    left = sorted(p.name for p in exp.rglob("*") if p.is_file())
+    assert not {"test.parquet", "dev.parquet", "manifest.json", "ledger.jsonl"} & set(left), left
+    monkeypatch.setattr(sealing, "single_feature_alarms", real)
+    manifest = sealing.seal(data, spec, exp, "fail")  # and the seal can still be made
+    assert manifest["counts"]["test"] > 0 and (exp / "sealed" / "test.parquet").exists()

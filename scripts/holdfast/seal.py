@@ -335,7 +335,6 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     if duplicates and guards["duplicates"] == "error":
         raise DataError(f"{duplicates} sealed test row(s) of '{data_path}' repeat the features of a development row "
                         "(exact duplicates); remove them or set leakage.duplicates: warn")
-    alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
     from .overlap import check as check_overlap
 
     seen_before = check_overlap(test[KEY], out.parent, experiment, seen_rows_reason)
@@ -350,12 +349,21 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         sealed_spec = {**spec, "task": task}
         public_key = _start_signing(out, signing_key) if signing_key else None
         earlier = _interrupted_seal(out, test, fingerprint["sha256"], sealed_spec, experiment)
-        with ThreadPoolExecutor(max_workers=2) as writers:  # Parquet writing releases the GIL
-            test_file = writers.submit(_written, out / TEST, None if (out / TEST).exists() else test, 0o444)
-            dev_file = writers.submit(_written, out / DEV, dev, None)
-            digests = {"dev_sha256": keys_digest(keys, order, development),
-                       "test_sha256": keys_digest(keys, order, mask)}
-            files = {"test.parquet": test_file.result(), "dev.parquet": dev_file.result()}
+        new_test = not (out / TEST).exists()
+        try:
+            with ThreadPoolExecutor(max_workers=2) as writers:  # Parquet writing releases the GIL
+                test_file = writers.submit(_written, out / TEST, test if new_test else None, 0o444)
+                dev_file = writers.submit(_written, out / DEV, dev, None)
+                # Work that cannot refuse the seal runs beside the writing (every refusal came before it).
+                digests = {"dev_sha256": keys_digest(keys, order, development),
+                           "test_sha256": keys_digest(keys, order, mask)}
+                alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
+                files = {"test.parquet": test_file.result(), "dev.parquet": dev_file.result()}
+        except BaseException:  # an unexpected failure leaves what it found: no sealed file this seal wrote
+            if new_test:
+                (out / TEST).unlink(missing_ok=True)
+            (out / DEV).unlink(missing_ok=True)
+            raise
         manifest: dict[str, Any] = {
             "experiment": experiment,
             "data": {"path": str(data_path), "rows": n_rows, "columns": columns, **fingerprint},
