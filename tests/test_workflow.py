@@ -336,3 +336,8 @@ def test_fit_jobs_carry_each_familys_priority_and_threads_in_snakemakes_own_plan
     config["candidates"]["tree"].update({"cost": 1, "threads": 1})  # now every family has 2 candidates x cost 1
     write_config(bc_workdir, config)
     assert _fit_job_settings(run_workflow(bc_workdir, "-n")) == {"logistic": ("2.0", "1"), "tree": ("2.0", "1")}
+    # Unset, a candidate counts as its declared n_estimators (an ensemble of that many members), else as 1.
+    config["candidates"]["tree"].update({"cost": None, "estimator": "sklearn.ensemble.RandomForestClassifier",
+                                         "params": {"n_estimators": 30, "random_state": 0}})  # x 2 grid points
+    write_config(bc_workdir, config)
+    assert _fit_job_settings(run_workflow(bc_workdir, "-n")) == {"logistic": ("2.0", "1"), "tree": ("60.0", "1")}

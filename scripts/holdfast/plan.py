@@ -116,6 +116,14 @@ def upstream_code() -> str:
     return sha256_text(canonical_json(upstream_codes()))[:16]
 
 
+def ensemble_size(params: dict[str, Any]) -> int:
+    """A candidate's guessed fit cost in units of one plain model: its declared ``n_estimators`` (an ensemble's
+    fit time grows with its number of members), else 1. Only orders the first fit jobs, so no estimator is
+    imported to look up a default."""
+    size = params.get("n_estimators")
+    return size if isinstance(size, int) and not isinstance(size, bool) and size > 1 else 1
+
+
 @dataclass
 class Plan:
     """The checked config of one experiment and the jobs it implies."""
@@ -223,7 +231,8 @@ class Plan:
 
     def fit_costs(self) -> dict[str, float]:
         """Expected seconds of one fit job per family: measured by its latest fit jobs in the ledger, else the
-        family's declared ``cost`` x candidates, else its number of candidates. Read once per parse."""
+        family's declared ``cost`` x candidates, else its candidates counted by :func:`ensemble_size`. Read once
+        per parse."""
         if self._costs is None:
             measured: dict[str, list[float]] = {}
             path = self.exp / LEDGER
@@ -238,7 +247,8 @@ class Plan:
                 declared = self.config["candidates"][family].get("cost")
                 recent = measured.get(family, [])[-len(self.fold_ids) or None:]
                 costs[family] = (sum(recent) / len(recent) if recent else
-                                 float(declared) * len(candidates) if declared else float(len(candidates)))
+                                 float(declared) * len(candidates) if declared else
+                                 float(sum(ensemble_size(c.get("params") or {}) for c in candidates)))
             self._costs = costs
         return self._costs
 
