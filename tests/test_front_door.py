@@ -137,3 +137,19 @@ def test_help_lists_every_command_and_version_works(tmp_path: Path) -> None:
         assert f"    {command} " in help_text or f"    {command}\n" in help_text, help_text
     version = run_cli(tmp_path, "--version")
     assert version.returncode == 0 and version.stdout.startswith("holdfast ")
+
+
+def test_holdfast_run_asks_for_the_greedy_scheduler_unless_told_otherwise(work: Path) -> None:
+    # Snakemake's default scheduler solves an integer programme at every pass (slow at thousands of ready fit jobs);
+    # holdfast passes --scheduler greedy, and an explicit --scheduler of the user's is passed on instead.
+    write_config(work, small_classification_config())
+
+    def command_line(*options: str) -> str:
+        result = run_cli(work, "run", "config.yaml", "-n", *options)  # a dry run shows Snakemake's own output
+        assert result.returncode == 0, result.stdout + result.stderr
+        return next(line for line in (result.stdout + result.stderr).splitlines() if "Command:" in line)
+
+    default = command_line()
+    assert " --scheduler greedy" in default, default
+    chosen = command_line("--scheduler", "ilp")
+    assert " --scheduler ilp" in chosen and "greedy" not in chosen, chosen

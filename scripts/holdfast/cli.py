@@ -147,6 +147,13 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
     argv = [*targets, "-s", str(SNAKEFILE), f"--configfile={configfile}"]
     if not any(w.split("=", 1)[0] in CORE_OPTIONS or (w.startswith("-j") and w[2:].isdigit()) for w in extra):
         argv += ["--cores", "all"]
+    if not any(w.split("=", 1)[0] == "--scheduler" for w in extra):
+        # Snakemake's default scheduler builds and solves an integer programme (a cbc process) at every
+        # scheduling pass, which at thousands of ready fit jobs kept its main process near one core busy and
+        # built a 5,000-job experiment at 78 fit jobs a minute against 127 with the greedy one. Holdfast marks no
+        # file temp(), so the ILP's extra aim (deleting temporary files early) never applies, and the greedy
+        # scheduler still starts jobs in priority order (longest fits first).
+        argv += ["--scheduler", "greedy"]
     argv += extra
     env = {**_job_env(), "HOLDFAST_CLOSING_BY_CLI": "1"}
     env.pop("HOLDFAST_OPENING", None)  # only 'holdfast open' says which opening its Snakemake makes (env_extra)
