@@ -498,11 +498,18 @@ def test_a_seal_that_fails_while_writing_leaves_no_sealed_file(tmp_path: Path, m
     def failing(*args: Any, **kwargs: Any) -> Any:  # runs beside the writing of the two sides
         raise MemoryError("injected")
 
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+    from cryptography.hazmat.primitives.serialization import Encoding, NoEncryption, PrivateFormat
+
+    key = tmp_path / "keys" / "key.pem"
+    key.parent.mkdir()
+    key.write_bytes(Ed25519PrivateKey.generate().private_bytes(Encoding.PEM, PrivateFormat.PKCS8, NoEncryption()))
     monkeypatch.setattr(sealing, "single_feature_alarms", failing)
-    with pytest.raises(MemoryError):
-        sealing.seal(data, spec, exp, "fail")
-    left = sorted(p.name for p in exp.rglob("*") if p.is_file())
-    assert not {"test.parquet", "dev.parquet", "manifest.json", "ledger.jsonl"} & set(left), left
+    for signing_key in (None, str(key)):
+        with pytest.raises(MemoryError):
+            sealing.seal(data, spec, exp, "fail", signing_key=signing_key)
+        left = sorted(p.name for p in exp.rglob("*") if p.is_file())
+        assert not {"test.parquet", "dev.parquet", "manifest.json", "ledger.jsonl", ledger.SIGNING} & set(left), left
     monkeypatch.setattr(sealing, "single_feature_alarms", real)
-    manifest = sealing.seal(data, spec, exp, "fail")  # and the seal can still be made
-    assert manifest["counts"]["test"] > 0 and (exp / "sealed" / "test.parquet").exists()
+    manifest = sealing.seal(data, spec, exp, "fail", signing_key=str(key))  # and the seal can still be made
+    assert manifest["counts"]["test"] > 0 and (exp / "sealed" / "test.parquet").exists() and manifest["public_key"]

@@ -347,6 +347,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                                     "test set")
         fingerprint = data_fingerprint(data_path)
         sealed_spec = {**spec, "task": task}
+        new_signing = signing_key is not None and not (out / ledger.SIGNING).exists()
         public_key = _start_signing(out, signing_key) if signing_key else None
         earlier = _interrupted_seal(out, test, fingerprint["sha256"], sealed_spec, experiment)
         new_test = not (out / TEST).exists()
@@ -363,6 +364,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
             if new_test:
                 (out / TEST).unlink(missing_ok=True)
             (out / DEV).unlink(missing_ok=True)
+            if new_signing:
+                (out / ledger.SIGNING).unlink(missing_ok=True)
             raise
         manifest: dict[str, Any] = {
             "experiment": experiment,
