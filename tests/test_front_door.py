@@ -153,3 +153,22 @@ def test_holdfast_run_asks_for_the_greedy_scheduler_unless_told_otherwise(work: 
     assert " --scheduler greedy" in default, default
     chosen = command_line("--scheduler", "ilp")
     assert " --scheduler ilp" in chosen and "greedy" not in chosen, chosen
+
+
+@pytest.mark.parametrize("extra", [[], ["--cores", "2"], ["--cores=2"], ["-c2"], ["-j", "4", "-n"], ["--jobs=3", "-p"],
+                                   ["--scheduler", "ilp", "--rerun-incomplete"], ["-k", "--dry-run"]])
+def test_plain_options_force_nothing_by_snakemakes_own_parser(extra: list[str]) -> None:
+    # holdfast run skips importing Snakemake's parser for such command lines; Snakemake's parser must agree.
+    from holdfast.cli import forces_nothing
+    from holdfast.plan import snakemake_flags
+
+    assert forces_nothing(extra)
+    assert not any(snakemake_flags(["snakemake", *extra]).values())
+
+
+@pytest.mark.parametrize("extra", [["--forcer", "seal"], ["--forcerun=seal"], ["--cores"], ["--cores", "--forceall"],
+                                   ["-nF"], ["all"], ["--profile", "p"], ["-c", "2", "--until", "tally"], ["--cores="]])
+def test_anything_else_goes_through_snakemakes_parser(extra: list[str]) -> None:
+    from holdfast.cli import forces_nothing
+
+    assert not forces_nothing(extra)
