@@ -316,6 +316,9 @@ def _fit_job_settings(result: subprocess.CompletedProcess[str]) -> dict[str, tup
         elif blocks and ":" in line:
             key, _, value = line.partition(":")
             blocks[-1][key.strip()] = value.strip()
+    refits = [block for block in blocks if block["rule"] == "rule refit_winner:"]
+    # the refit goes before the learning-curve jobs (priority 0) that become ready with it
+    assert refits and all(block.get("priority") == "1" for block in refits), refits
     for block in blocks:
         if block["rule"] == "rule fit_family:":
             family = block["wildcards"].split(",")[0].split("=")[1]
