@@ -153,6 +153,8 @@ def test_holdfast_run_asks_for_the_greedy_scheduler_unless_told_otherwise(work: 
     assert " --scheduler greedy" in default, default
     chosen = command_line("--scheduler", "ilp")
     assert " --scheduler ilp" in chosen and "greedy" not in chosen, chosen
+    # The user's cores in the short form with the number attached replace holdfast's "--cores all".
+    assert " --cores all" in default and " --cores all" not in command_line("-c1"), default
 
 
 @pytest.mark.parametrize("extra", [[], ["--cores", "2"], ["--cores=2"], ["-c2"], ["-j", "4", "-n"], ["--jobs=3", "-p"],

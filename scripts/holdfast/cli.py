@@ -45,6 +45,13 @@ def forces_nothing(extra: list[str]) -> bool:
             continue
         return False
     return True
+
+
+def _passes(extra: list[str], names: tuple[str, ...]) -> bool:
+    """True when the Snakemake options ``extra`` give one of ``names`` (``--cores 2``, ``--cores=2``, ``-j2``)."""
+    return any(w.split("=", 1)[0] in names or (w[:2] in names and w[2:].isdigit()) for w in extra)
+
+
 # Exit codes of `holdfast audit` (the errors' own codes, 1 to 7, are those of errors.py).
 AUDIT_PASS, AUDIT_FAIL, NOT_AN_EXPERIMENT = 0, 1, 2
 AUDIT_IN_PROGRESS = 75  # a step is writing to the experiment: nothing was checked; try again later
@@ -62,10 +69,6 @@ def _experiment_dir(value: str) -> Path:
         raise ConfigError(f"'{exp}' is not an experiment folder (no ledger.jsonl, no sealed/); pass "
                           "results/<experiment>")
     return exp
-
-# Exit codes of `holdfast audit` (the errors' own codes, 1 to 7, are those of errors.py).
-AUDIT_PASS, AUDIT_FAIL, NOT_AN_EXPERIMENT = 0, 1, 2
-AUDIT_IN_PROGRESS = 75  # a step is writing to the experiment: nothing was checked; try again later
 
 
 def _audit(args: argparse.Namespace) -> int:
@@ -168,9 +171,9 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
     """Run Snakemake on the checked config; its own output goes to a log file unless ``show``."""
     # Targets first and --configfile=PATH: Snakemake's list options would swallow a target written after them.
     argv = [*targets, "-s", str(SNAKEFILE), f"--configfile={configfile}"]
-    if not any(w.split("=", 1)[0] in CORE_OPTIONS or (w.startswith("-j") and w[2:].isdigit()) for w in extra):
+    if not _passes(extra, CORE_OPTIONS):
         argv += ["--cores", "all"]
-    if not any(w.split("=", 1)[0] == "--scheduler" for w in extra):
+    if not _passes(extra, ("--scheduler",)):
         # Snakemake's default scheduler builds and solves an integer programme (a cbc process) at every
         # scheduling pass, which at thousands of ready fit jobs kept its main process near one core busy and
         # built a 5,000-job experiment at 78 fit jobs a minute against 127 with the greedy one. Holdfast marks no
