@@ -7,6 +7,10 @@ and starts munged, slurmctld and slurmd; ``stop_cluster.sh`` stops them by PID a
 config again (while it exists without a controller, every Snakemake call on the machine is ~10 s
 slower). Both need root and apt-get: elsewhere the test is skipped, but with ``CI=true`` it fails.
 
+The cluster's experiment spends most of its minutes waiting for the SLURM plugin's status checks, so it starts in a
+background thread as soon as pytest has collected the tests (``start_in_background``, called from conftest.py), and
+these tests run last: the rest of the suite runs while the cluster works.
+
 Run it alone with ``pytest -m cluster``; leave it out with ``-m "not cluster"``.
 """
 
@@ -20,6 +24,8 @@ import re
 import shutil
 import subprocess
 import sys
+import tempfile
+import threading
 import time
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -90,37 +96,107 @@ def _script(name: str, env: dict[str, str], timeout: int) -> subprocess.Complete
                           env=env, stdin=subprocess.DEVNULL, capture_output=True, text=True, check=False)
 
 
-@pytest.fixture(scope="module")
-def slurm_cluster() -> Iterator[Cluster]:
-    """A single-node SLURM cluster on this machine for the module's tests; always stopped afterwards."""
-    reason = _cannot_run()
-    if reason is not None:
-        _skip_or_fail(reason)
-    base = Path(os.environ.get("HOLDFAST_SLURM_BASE", "/tmp/holdfast-slurm"))
-    env = _client_env(base)
-    with LOCK.open("a") as lock:
-        deadline = time.monotonic() + LOCK_WAIT
-        while True:  # another test session on this machine may be using the cluster
-            try:
-                fcntl.flock(lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
-                break
-            except BlockingIOError:
-                if time.monotonic() > deadline:
-                    pytest.fail(f"{LOCK} still held after {LOCK_WAIT} s by another cluster test", pytrace=False)
-                time.sleep(2)
+class _Background:
+    """The cluster started, and its experiment taken through, in a thread beside the rest of the suite."""
+
+    def __init__(self) -> None:
+        self.base = Path(os.environ.get("HOLDFAST_SLURM_BASE", "/tmp/holdfast-slurm"))
+        self.env = _client_env(self.base)
+        self.root = Path(tempfile.mkdtemp(prefix="holdfast-cluster-test-"))
+        self.skip: str | None = None  # why this machine cannot run a cluster
+        self.failed: BaseException | None = None  # the cluster did not start
+        self.experiment: Experiment | None = None
+        self.experiment_error: BaseException | None = None  # the cluster started, its experiment failed
+        self.start_output = ""  # start_cluster.sh's lines, shown by the fixture (a thread's output has no test)
+        self.started = False
+        self.stopped = False
+        self._lock_file = LOCK.open("a")
+        self._thread = threading.Thread(target=self._work, name="slurm-cluster", daemon=True)
+
+    def _work(self) -> None:
         try:
-            started = _script("start_cluster.sh", env, START_TIMEOUT)
-            sys.stderr.write(started.stdout)
+            self.skip = _cannot_run()
+            if self.skip is not None:
+                return
+            deadline = time.monotonic() + LOCK_WAIT
+            while True:  # another test session on this machine may be using the cluster
+                try:
+                    fcntl.flock(self._lock_file, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                    break
+                except BlockingIOError:
+                    if time.monotonic() > deadline:
+                        raise AssertionError(f"{LOCK} still held after {LOCK_WAIT} s by another cluster test") from None
+                    time.sleep(2)
+            started = _script("start_cluster.sh", self.env, START_TIMEOUT)
+            self.start_output = started.stdout
             if started.returncode == UNSUPPORTED:
-                _skip_or_fail((started.stderr.strip().splitlines() or ["start_cluster.sh: unsupported"])[-1])
+                self.skip = (started.stderr.strip().splitlines() or ["start_cluster.sh: unsupported"])[-1]
+                return
+            self.started = True  # from here on, stop_cluster.sh runs whatever happens
             assert started.returncode == 0, (
                 f"start_cluster.sh exited {started.returncode}\n{started.stdout[-3000:]}\n{started.stderr[-6000:]}")
-            yield Cluster(base=base, env=env)
+        except BaseException as exc:  # reported by the fixture, in the main thread
+            self.failed = exc
+            return
+        try:
+            self.experiment = _on_the_cluster(Cluster(self.base, self.env), self.root)
+        except BaseException as exc:
+            self.experiment_error = exc
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def wait(self) -> None:
+        """Until the cluster's experiment ended (each holdfast command it runs has its own time limit)."""
+        self._thread.join()
+
+    def stop(self) -> None:
+        """Stop the cluster (once) and free the lock; a pytest clean-up, so an interrupted session stops it too."""
+        if self.stopped:
+            return
+        self.stopped = True
+        self._thread.join(timeout=RUN_TIMEOUT)
+        try:
+            if self.started:
+                stopped = _script("stop_cluster.sh", self.env, 120)
+                sys.stderr.write(stopped.stdout + stopped.stderr)
         finally:
-            stopped = _script("stop_cluster.sh", env, 120)
-            sys.stderr.write(stopped.stdout + stopped.stderr)
-            left = SLURM_CONF.is_file() and SLURM_CONF.read_text().startswith(OURS)
-            assert not left, f"stop_cluster.sh left {SLURM_CONF} behind: every Snakemake call would wait ~10 s"
+            self._lock_file.close()  # frees the lock
+            if self.failed is None and self.experiment_error is None:
+                shutil.rmtree(self.root, ignore_errors=True)
+            else:
+                sys.stderr.write(f"the cluster's work folder is kept for a look: {self.root}\n")
+        left = SLURM_CONF.is_file() and SLURM_CONF.read_text().startswith(OURS)
+        assert not left, f"stop_cluster.sh left {SLURM_CONF} behind: every Snakemake call would wait ~10 s"
+
+
+_BACKGROUND: list[_Background] = []
+
+
+def start_in_background(config: pytest.Config) -> None:
+    """Start the cluster and its experiment now, in a thread (conftest.py calls this once it collected them)."""
+    if not _BACKGROUND:
+        background = _Background()
+        _BACKGROUND.append(background)
+        config.add_cleanup(background.stop)
+        background.start()
+
+
+@pytest.fixture(scope="module")
+def slurm_cluster(request: pytest.FixtureRequest) -> Iterator[Cluster]:
+    """A single-node SLURM cluster on this machine, once its background experiment ended; stopped afterwards."""
+    start_in_background(request.config)  # no-op when conftest.py started it at collection
+    background = _BACKGROUND[0]
+    background.wait()  # the tests below compare SLURM's job lists: no experiment job may still be submitted
+    sys.stderr.write(background.start_output)
+    try:
+        if background.skip is not None:
+            _skip_or_fail(background.skip)
+        if background.failed is not None:
+            raise background.failed
+        yield Cluster(base=background.base, env=background.env)
+    finally:
+        background.stop()
 
 
 # The test's copy of the shipped profile: its groups and comments as shipped, settings for this cluster.
@@ -215,20 +291,28 @@ def local_experiment(tmp_path_factory: pytest.TempPathFactory) -> Experiment:
     return _take_through(tmp_path_factory.mktemp("local") / "work", env, "--cores", "2")
 
 
-@pytest.fixture(scope="module")
-def cluster_experiment(slurm_cluster: Cluster, tmp_path_factory: pytest.TempPathFactory) -> Experiment:
+def _on_the_cluster(cluster: Cluster, root: Path) -> Experiment:
     """The same steps on the cluster, with preflight first, through the test's copy of the shipped profile."""
-    root = tmp_path_factory.mktemp("cluster")
     profile = _test_profile(root / "profile")
     workdir = root / "work"
     workdir.mkdir()
-    checked = _holdfast(workdir, slurm_cluster.env, "preflight", "--profile", str(profile), "--timeout", "120")
+    checked = _holdfast(workdir, cluster.env, "preflight", "--profile", str(profile), "--timeout", "120")
     assert checked.returncode == 0 and not _problems(checked.stdout), checked.stdout + checked.stderr
     assert not list((workdir / "results").iterdir()), "preflight left its probe folder behind"
     shutil.rmtree(workdir)
-    experiment = _take_through(workdir, slurm_cluster.env, "--profile", str(profile))
+    experiment = _take_through(workdir, cluster.env, "--profile", str(profile))
     experiment.outputs["preflight"] = checked.stdout
     return experiment
+
+
+@pytest.fixture(scope="module")
+def cluster_experiment(slurm_cluster: Cluster) -> Experiment:
+    """What `_on_the_cluster` left, run in the background thread while the rest of the suite ran."""
+    background = _BACKGROUND[0]
+    if background.experiment_error is not None:
+        raise background.experiment_error
+    assert background.experiment is not None
+    return background.experiment
 
 
 def test_preflight_passes_on_the_cluster(cluster_experiment: Experiment) -> None:
