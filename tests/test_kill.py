@@ -15,11 +15,15 @@ A ledger append is a single write(2) of one line, which a SIGKILL can cut only b
 a torn last line is rare; should a kill cut one, the test accepts it only if the audit names the torn
 last line. ``test_torn_append_is_named_with_its_line`` pins that message with tests/test_audit.py's
 torn-line mutation.
+
+A SIGTERM sent to the holdfast command alone (as ``kill``, ``timeout`` and batch systems send it) must stop its
+Snakemake and its job worker too, and leave nothing that keeps a plain rerun from finishing.
 """
 
 from __future__ import annotations
 
 import base64
+import contextlib
 import json
 import os
 import shutil
@@ -360,3 +364,43 @@ def test_torn_append_is_named_with_its_line(bc_copy: Path) -> None:
     """A half-written last ledger line (test_audit's mutation) is reported as a torn append naming that line."""
     tear_half_line(bc_copy / EXP)
     assert_torn_append_named(bc_copy, ledger_bytes(bc_copy))
+
+
+def test_sigterm_to_holdfast_run_stops_snakemake_and_the_worker_and_a_rerun_finishes(tmp_path: Path) -> None:
+    # `kill PID`, `timeout` and batch systems send SIGTERM to the holdfast process alone, not to its group. Holdfast
+    # passes it to its Snakemake (which stops its jobs, as on Ctrl-C) and stops its job worker; before the fix,
+    # holdfast died alone and Snakemake went on running the experiment with nobody watching.
+    work = tmp_path / "work"
+    work.mkdir()
+    breast_cancer_frame().to_csv(work / "data.csv", index=False)
+    write_config(work, small_classification_config())
+    out = tmp_path / "holdfast.out"
+    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+    with open(out, "wb") as sink:
+        proc = subprocess.Popen([sys.executable, "-m", "holdfast", "run", "config.yaml", "--cores", "2"], cwd=work,
+                                stdout=sink, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, env=env,
+                                start_new_session=True)
+    try:
+        wait_until(proc, work, out, lambda: (work / EXP / "fits").is_dir())  # fit jobs are running
+        proc.send_signal(signal.SIGTERM)  # to holdfast only
+        code = proc.wait(timeout=120)
+        assert code == 128 + signal.SIGTERM, tail(out)
+        assert "holdfast: terminated (SIGTERM); Snakemake was asked to stop its jobs first" in tail(out), tail(out)
+        deadline = time.monotonic() + 30  # Snakemake and the worker end within moments of holdfast
+        while time.monotonic() < deadline:
+            try:
+                os.killpg(proc.pid, 0)
+            except ProcessLookupError:
+                break
+            time.sleep(POLL)
+        else:
+            left = subprocess.run(["ps", "-o", "pid,args", "-g", str(proc.pid)], capture_output=True, text=True)
+            raise AssertionError(f"holdfast ended, but these processes of its run went on:\n{left.stdout}")
+    finally:
+        with contextlib.suppress(ProcessLookupError):  # whatever the outcome, nothing of the run outlives the test
+            os.killpg(proc.pid, signal.SIGKILL)
+    # Snakemake stopped cleanly (no lock left), so the user's plain rerun finishes the experiment.
+    again = subprocess.run([sys.executable, "-m", "holdfast", "run", "config.yaml", "--cores", "2"], cwd=work,
+                           capture_output=True, text=True, stdin=subprocess.DEVNULL, env=env, timeout=WAIT)
+    assert again.returncode == 0, again.stdout[-3000:] + again.stderr[-3000:]
+    assert (work / EXP / "choice.json").is_file()

@@ -7,6 +7,7 @@ import argparse
 import contextlib
 import getpass
 import os
+import signal
 import subprocess
 import sys
 from collections.abc import Iterator
@@ -196,6 +197,27 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
 
 # Snakemake imported ahead of its call (see holdfast.snakemake_ready), started with the command.
 _READY: dict[str, subprocess.Popen[str]] = {}
+# The Snakemake processes this command has sent their command line (so running its jobs), for SIGTERM to reach.
+_LAUNCHED: list[subprocess.Popen[str]] = []
+_TERMINATED: list[int] = []  # the SIGTERMs received
+
+
+class Terminated(BaseException):
+    """SIGTERM reached holdfast before or after its Snakemake ran: unwind so the helper processes are stopped."""
+
+
+def _on_sigterm(signum: int, frame: object) -> None:
+    """SIGTERM (``kill``, ``timeout``, a batch system): hand it to the running Snakemake, else end the command.
+
+    Snakemake stops on SIGTERM as on Ctrl-C (it cancels its cluster jobs); holdfast then ends as after any failed
+    run. Without this, the default action ended holdfast alone and left Snakemake and the job worker running.
+    """
+    _TERMINATED.append(signum)
+    running = [process for process in _LAUNCHED if process.poll() is None]
+    for process in running:
+        process.send_signal(signal.SIGTERM)
+    if not running:
+        raise Terminated
 
 
 def _start_ready() -> subprocess.Popen[str]:
@@ -233,6 +255,7 @@ def _launch(argv: list[str], env: dict[str, str], log: Path | None) -> subproces
             assert process.stdin is not None
             process.stdin.write(request)
             process.stdin.close()
+            _LAUNCHED.append(process)
             return process
         except BrokenPipeError:  # it died before reading its request (killed): start another
             process.wait()
@@ -539,8 +562,12 @@ def main(argv: list[str] | None = None) -> int:
         parser.error(f"unrecognized arguments: {' '.join(extra)}")
     try:
         if args.func in (_run, _open):
+            signal.signal(signal.SIGTERM, _on_sigterm)
             with _early_snakemake(), _early_worker(extra):
-                return int(args.func(args, extra))
+                code = int(args.func(args, extra))
+            if _TERMINATED:
+                raise Terminated
+            return code
         return int(args.func(args, extra) if args.takes_extra else args.func(args))
     except HoldfastError as exc:
         sys.stderr.write(exc.format_message() + "\n")
@@ -548,6 +575,10 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         sys.stderr.write("holdfast: interrupted\n")
         return 130
+    except Terminated:
+        sys.stderr.write("holdfast: terminated (SIGTERM); Snakemake was asked to stop its jobs first\n"
+                         if _LAUNCHED else "holdfast: terminated (SIGTERM) before Snakemake ran anything\n")
+        return 128 + signal.SIGTERM
 
 
 def entry() -> None:
