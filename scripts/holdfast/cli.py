@@ -200,6 +200,7 @@ _READY: dict[str, subprocess.Popen[str]] = {}
 # The Snakemake processes this command has sent their command line (so running its jobs), for SIGTERM to reach.
 _LAUNCHED: list[subprocess.Popen[str]] = []
 _TERMINATED: list[int] = []  # the SIGTERMs received
+_FORWARDED: list[int] = []  # the pids of running Snakemake processes a SIGTERM was passed to
 
 
 class Terminated(BaseException):
@@ -209,13 +210,14 @@ class Terminated(BaseException):
 def _on_sigterm(signum: int, frame: object) -> None:
     """SIGTERM (``kill``, ``timeout``, a batch system): hand it to the running Snakemake, else end the command.
 
-    Snakemake stops on SIGTERM as on Ctrl-C (it cancels its cluster jobs); holdfast then ends as after any failed
+    Snakemake stops its jobs on SIGTERM as on Ctrl-C (tested locally only); holdfast then ends as after any failed
     run. Without this, the default action ended holdfast alone and left Snakemake and the job worker running.
     """
     _TERMINATED.append(signum)
     running = [process for process in _LAUNCHED if process.poll() is None]
     for process in running:
         process.send_signal(signal.SIGTERM)
+        _FORWARDED.append(process.pid)
     if not running:
         raise Terminated
 
@@ -577,7 +579,7 @@ def main(argv: list[str] | None = None) -> int:
         return 130
     except Terminated:
         sys.stderr.write("holdfast: terminated (SIGTERM); Snakemake was asked to stop its jobs first\n"
-                         if _LAUNCHED else "holdfast: terminated (SIGTERM) before Snakemake ran anything\n")
+                         if _FORWARDED else "holdfast: terminated (SIGTERM) while no Snakemake of it was running\n")
         return 128 + signal.SIGTERM
 
 
