@@ -403,6 +403,100 @@ def stage_times(workdir: Path, run: WorkflowRun) -> list[tuple[str, int, float]]
     return out
 
 
+# --------------------------------------------------------------------------- Snakemake's own floor
+
+# The job graph of a holdfast run and opening (seal, round, folds, FITS fit jobs, tally, refit, CURVES learning-curve
+# jobs, diagnostics, report; then the opening and the report again), each job an empty ``script:`` that only creates
+# its output. Run with the same scheduler options holdfast passes, it measures what Snakemake itself costs for this
+# graph: its start-up, parse and DAG, one cold Python process per job and its scheduling, and its exit.
+FLOOR_SNAKEFILE = """\
+FITS = int(config["fits"])
+CURVES = int(config["curves"])
+NOOP = "noop.py"
+
+rule seal:
+    output: "sealed.txt"
+    script: NOOP
+
+rule record_round:
+    input: "sealed.txt"
+    output: "round.txt"
+    script: NOOP
+
+rule assign_folds:
+    input: "round.txt"
+    output: "folds.txt"
+    script: NOOP
+
+rule fit_family:
+    input: "folds.txt"
+    output: "fits/{i}.txt"
+    script: NOOP
+
+rule tally:
+    input: expand("fits/{i}.txt", i=range(FITS))
+    output: "choice.txt"
+    script: NOOP
+
+rule refit_winner:
+    input: "choice.txt"
+    output: "model.txt"
+    script: NOOP
+
+rule learning_curve:
+    input: "choice.txt"
+    output: "curves/{j}.txt"
+    script: NOOP
+
+rule diagnostics:
+    input: "choice.txt", expand("curves/{j}.txt", j=range(CURVES))
+    output: "diagnostics.txt"
+    script: NOOP
+
+rule report:
+    input: "diagnostics.txt", "model.txt"
+    output: "report.txt"
+    script: NOOP
+
+rule open_test:
+    input: "report.txt"
+    output: "verdict.txt"
+    script: NOOP
+
+rule report_opened:
+    input: "verdict.txt"
+    output: "opened.txt"
+    script: NOOP
+"""
+
+
+def floor_shape(workdir: Path) -> dict[str, int]:
+    """The counts the floor graph takes from a finished holdfast run: its fit and learning-curve jobs."""
+    rules = [j["rule"] for j in job_records(workdir)]
+    return {"fits": rules.count("fit_family"), "curves": rules.count("learning_curve")}
+
+
+def snakemake_floor(shape: dict[str, int], cores: int, root: Path, logs: Path) -> dict[str, Measured]:
+    """Snakemake alone on holdfast's job graph with empty jobs: the 'run' (to the report) and the 'open' command."""
+    root.mkdir(parents=True, exist_ok=True)
+    (root / "floor.smk").write_text(FLOOR_SNAKEFILE)
+    (root / "noop.py").write_text('for path in snakemake.output:\n    open(path, "w").close()\n')
+    out = {}
+    for label, target in (("run", "report.txt"), ("open", "opened.txt")):
+        cmd = [PYTHON, "-m", "snakemake", "-s", "floor.smk", "--cores", str(cores), "--scheduler", "greedy",
+               "--config", f"fits={shape['fits']}", f"curves={shape['curves']}", "--", target]
+        run = measure(cmd, root, logs, f"floor-{label}")
+        if run.rc != 0:
+            raise BenchError(f"Snakemake alone on the floor graph failed in {root} (exit {run.rc}):\n{run.tail()}")
+        out[label] = run
+    return out
+
+
+FLOOR_NOTE = ("Snakemake alone: the same job graph (seal, round, folds, the run's fit and learning-curve jobs, tally, "
+              "refit, diagnostics, report; then the opening and the report again) with empty script jobs, the same "
+              "--cores and --scheduler greedy; what any workflow built of these Snakemake jobs pays before any work")
+
+
 # --------------------------------------------------------------------------- tables
 
 

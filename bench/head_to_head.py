@@ -209,7 +209,13 @@ def run_scenario(scenario: Scenario, reps: int, cores: int, root: Path) -> list[
         rec.update(script_run=run, script=json.loads(out_path.read_text()))
         rec["same"] = compare(rec["exp"], rec["script"])
 
-    c.alternate(reps, [(f"{scenario.name} holdfast", holdfast), (f"{scenario.name} script", script)])
+    def floor(rep: int) -> None:
+        rec = records[rep]
+        rec["floor"] = c.snakemake_floor(c.floor_shape(rec["workdir"]), cores, root / scenario.name / f"rep{rep}" /
+                                         "floor", rec["logs"])
+
+    c.alternate(reps, [(f"{scenario.name} holdfast", holdfast), (f"{scenario.name} script", script),
+                       (f"{scenario.name} Snakemake alone", floor)])
     return records
 
 
@@ -290,6 +296,17 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
     ]
     c.table(["script: where the wall time went (medians)", "seconds"],
             [[name, c.median(v)] for name, v in script_rows])
+    shape = c.floor_shape(records[0]["workdir"])
+    floor_both = [sum(m.wall for m in r["floor"].values()) for r in records]
+    c.table([f"Snakemake alone, same graph, empty jobs ({shape['fits']} fit, {shape['curves']} curve)", "seconds"], [
+        ["run (to the report)", c.median([r["floor"]["run"].wall for r in records])],
+        ["open (the opening, the report again)", c.median([r["floor"]["open"].wall for r in records])],
+        ["both: the floor of this job graph", c.median(floor_both)],
+        ["holdfast's whole workflow above the floor", c.median([r["run"].wall - f
+                                                                for r, f in zip(records, floor_both, strict=True)])],
+    ])
+    print(f"  {c.FLOOR_NOTE}")
+    medians["floor both (s)"] = c.median(floor_both)
     medians["identical"] = float(all(rec["same"]["identical"] for rec in records))
     return medians
 
