@@ -344,3 +344,43 @@ def test_fit_jobs_carry_each_familys_priority_and_threads_in_snakemakes_own_plan
                                          "params": {"n_estimators": 30, "random_state": 0}})  # x 2 grid points
     write_config(bc_workdir, config)
     assert _fit_job_settings(run_workflow(bc_workdir, "-n")) == {"logistic": ("2.0", "1"), "tree": ("60.0", "1")}
+
+
+def _memory_requests(result: subprocess.CompletedProcess[str]) -> dict[str, int]:
+    """rule -> mem_mb of each job a dry run prints (the rules that plan more than one job must agree)."""
+    found: dict[str, set[int]] = {}
+    rule = None
+    for line in (result.stdout + result.stderr).splitlines():
+        text = line.strip()
+        if text.startswith(("rule ", "localrule ")) and text.endswith(":"):
+            rule = text.split()[1].rstrip(":")
+        elif rule and text.startswith("resources:"):
+            values = dict(part.strip().split("=", 1) for part in text[len("resources:"):].split(","))
+            if "mem_mb" in values:  # the target rule 'all' asks for nothing
+                found.setdefault(rule, set()).add(int(values["mem_mb"]))
+    assert all(len(v) == 1 for v in found.values()), found
+    return {rule: next(iter(v)) for rule, v in found.items()}
+
+
+def test_seal_and_fold_jobs_ask_for_memory_by_the_size_of_the_data(bc_workdir: Path,
+                                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    """A cluster kills a job that outgrows its request: the data-bound jobs ask for 500 MB + 2 x the data's size in
+    memory as the full check measured it (never less than 2,000 MB), in Snakemake's own plan."""
+    from holdfast._io import read_table
+    from holdfast.config import read_yaml
+    from holdfast.plan import cached_facts, prepare
+
+    monkeypatch.chdir(bc_workdir)
+    raw = read_yaml("config.yaml")
+    plan = prepare(raw, main=True)  # the full check, as 'holdfast run' makes it
+    measured = read_table("data.csv").memory_usage(deep=True).sum() / 2**20
+    assert plan.facts["data_mb"] == pytest.approx(measured, abs=0.05) and 0 < measured < 1
+    small = _memory_requests(run_workflow(bc_workdir, "-n"))
+    assert small["seal"] == small["assign_folds"] == 2000, small
+    # The facts of a full check that found 3,000 MB of data, recorded where 'holdfast run' records them.
+    _, path = cached_facts(raw)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps({**plan.facts, "data_mb": 3000.0}), encoding="utf-8")
+    large = _memory_requests(run_workflow(bc_workdir, "-n"))
+    assert large["seal"] == large["assign_folds"] == 500 + 2 * 3000, large
+    assert large["tally"] == small["tally"]  # the jobs that do not hold the data ask for what they did

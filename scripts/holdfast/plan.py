@@ -8,6 +8,7 @@ would re-open an already opened test set all stop the workflow with one message.
 from __future__ import annotations
 
 import ast
+import math
 import os
 import sys
 from dataclasses import dataclass, field
@@ -103,6 +104,9 @@ def job_script(folder: str = ".snakemake/holdfast") -> str:
     return str(target)
 
 
+# Memory of the data-bound jobs (seal, fold assignment) from the data's size in memory: see Plan.data_mem_mb.
+DATA_MEM_BASE_MB = 500
+DATA_MEM_FACTOR = 2.0
 UPSTREAM = ("assign_folds", "fit_family", "tally", "refit_winner", "open_test")
 
 
@@ -185,6 +189,20 @@ class Plan:
     def spec(self) -> dict[str, Any]:
         """The seal spec (column roles, task, test partition)."""
         return cfg.seal_spec(self.config)
+
+    def data_mem_mb(self, floor: int) -> int:
+        """A data-bound job's memory request in MB: ``floor``, or more when the data file is large.
+
+        The full check measured the data's size in memory (facts ``data_mb``). bench/data_size.py's 10 M rows x 20
+        columns hold 1,499 MB in memory, and the seal peaked at 2,918 MB and the fold assignment at 2,375 MB (about
+        1.8 x the data above 220 MB of imports), so the request is 500 MB + 2 x the data (3,498 MB there), never less
+        than ``floor``. An estimate from one data shape, not a bound; a profile's set-resources still overrides it.
+        Unknown size (no full check recorded): ``floor``.
+        """
+        size = self.facts.get("data_mb") if self.facts else None
+        if not isinstance(size, int | float) or isinstance(size, bool) or size < 0:
+            return floor
+        return max(floor, math.ceil(DATA_MEM_BASE_MB + DATA_MEM_FACTOR * size))
 
     def path(self, name: str) -> str:
         """A path inside the experiment directory."""
@@ -445,6 +463,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
     manifest = read_manifest(exp)
     spec = cfg.seal_spec(config)
     heavy = main and facts is None
+    data_mb: float | None = None  # the data's size in memory, measured when the full check loads it
     dev_target = dev_groups = None
     sealed_keys: Any = None
     text_columns: list[str] = []
@@ -477,6 +496,7 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
         from .seal import check_before_seal, check_development_classes, check_sides, load_checked, split_masks
 
         frame, task = load_checked(config["data"]["path"], spec)
+        data_mb = round(float(frame.memory_usage(deep=True).sum()) / 2**20, 1)
         keys = row_keys(frame, spec["id"])
         test_rows, dropped = split_masks(frame, keys, {**spec, "task": task}, task)
         dev = frame[~test_rows & ~dropped]
@@ -532,11 +552,12 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
         from .overlap import check as check_overlap
 
         check_overlap(sealed_keys, exp.parent, config["experiment"], config["test"]["seen_rows_reason"])
-    plan.facts = {"task": task, "n_dev": n_dev, "n_groups": n_groups}
+    plan.facts = {"task": task, "n_dev": n_dev, "n_groups": n_groups,
+                  "data_mb": data_mb if data_mb is not None else (facts or {}).get("data_mb")}
     return plan
 
 
-FACTS_VERSION = 1
+FACTS_VERSION = 2  # 2: facts hold data_mb
 
 
 def facts_key(raw: dict[str, Any]) -> str:

@@ -18,7 +18,7 @@ rule assign_folds:
         ledger=LEDGER,
         code=code_hash("assign_folds"),
     resources:
-        mem_mb=2000,
+        mem_mb=PLAN.data_mem_mb(2000),
         runtime=30,
     script:
         JOB_SCRIPT

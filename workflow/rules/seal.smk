@@ -10,7 +10,7 @@ rule seal:
         spec=SPEC,
         experiment=PLAN.config["experiment"],
     resources:
-        mem_mb=2000,
+        mem_mb=PLAN.data_mem_mb(2000),
         runtime=30,
     script:
         JOB_SCRIPT
