@@ -42,15 +42,20 @@ def forces_nothing(extra: list[str]) -> bool:
             if following is None or following.startswith("-"):
                 return False
             continue
-        if word[:2] in ("-c", "-j") and word[2:].isdigit():
+        if _attached(word, ("-c", "-j")):
             continue
         return False
     return True
 
 
+def _attached(word: str, names: tuple[str, ...]) -> bool:
+    """True for a short option of ``names`` with its number attached (``-c2``, ``-j4``)."""
+    return word[:2] in names and word[2:].isdigit()
+
+
 def _passes(extra: list[str], names: tuple[str, ...]) -> bool:
     """True when the Snakemake options ``extra`` give one of ``names`` (``--cores 2``, ``--cores=2``, ``-j2``)."""
-    return any(w.split("=", 1)[0] in names or (w[:2] in names and w[2:].isdigit()) for w in extra)
+    return any(w.split("=", 1)[0] in names or _attached(w, names) for w in extra)
 
 
 # Exit codes of `holdfast audit` (the errors' own codes, 1 to 7, are those of errors.py).
