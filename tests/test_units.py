@@ -513,3 +513,30 @@ def test_a_seal_that_fails_while_writing_leaves_no_sealed_file(tmp_path: Path, m
     monkeypatch.setattr(sealing, "single_feature_alarms", real)
     manifest = sealing.seal(data, spec, exp, "fail", signing_key=str(key))  # and the seal can still be made
     assert manifest["counts"]["test"] > 0 and (exp / "sealed" / "test.parquet").exists() and manifest["public_key"]
+
+
+def test_code_hash_import_scan_finds_what_pythons_own_parser_finds_in_every_module() -> None:
+    """The stage code hashes follow each module's relative imports by a line scan; on every module of the package
+    it must find exactly the modules the standard library's ``ast`` finds (Python Language Reference, 7.11 "The
+    import statement": ``from . import x`` and ``from .x import y`` with level 1)."""
+    import ast
+
+    from holdfast import plan
+
+    modules = sorted(p.stem for p in plan.PACKAGE.glob("*.py"))
+    assert len(modules) > 30
+    for module in modules:
+        tree = ast.parse((plan.PACKAGE / f"{module}.py").read_text(encoding="utf-8"))
+        expected = set()
+        for node in ast.walk(tree):
+            if isinstance(node, ast.ImportFrom) and node.level == 1:
+                expected.update([node.module.split(".")[0]] if node.module else [a.name for a in node.names])
+        expected = {m for m in expected if (plan.PACKAGE / f"{m}.py").exists()}
+        assert plan._relative_imports(module) == expected, module
+    # The forms the scan must read, in a module of its own: parentheses over lines, comments, aliases, indentation.
+    text = ("from . import (ledger,  # the chain\n    layout as lay,\n)\ndef f():\n    from .seal import x\n"
+            "from .folds.sub import y\nx = 'from .report import z'\n")
+    found = {m.group(1) or m.group(2) for m in plan._RELATIVE_IMPORT.finditer(text)}
+    assert found == {"(ledger,  # the chain\n    layout as lay,\n)", "seal", "folds"}  # not the one in a string
+    # A string line that reads exactly like an import is taken as one: the hash then covers more code, never less.
+    assert [m.group(1) for m in plan._RELATIVE_IMPORT.finditer('"""\n    from .audit import q\n"""')] == ["audit"]
