@@ -112,8 +112,15 @@ class _Background:
         self.stopped = False
         self._lock_file = LOCK.open("a")
         self._thread = threading.Thread(target=self._work, name="slurm-cluster", daemon=True)
+        self._done = threading.Event()  # set when _work returns, whatever happened
 
     def _work(self) -> None:
+        try:
+            self._steps()
+        finally:
+            self._done.set()
+
+    def _steps(self) -> None:
         try:
             self.skip = _cannot_run()
             if self.skip is not None:
@@ -147,15 +154,22 @@ class _Background:
         self._thread.start()
 
     def wait(self) -> None:
-        """Until the cluster's experiment ended (each holdfast command it runs has its own time limit)."""
-        self._thread.join()
+        """Until the cluster's experiment ended (each holdfast command it runs has its own time limit).
+
+        An Event, not Thread.join: a Ctrl-C that interrupts join() leaves Python 3.11 taking the thread as ended
+        (is_alive() False, later joins return at once; CPython bpo-45274's handling), and stop() would then stop the
+        cluster under a running holdfast command and leave that command behind.
+        """
+        self._done.wait()
 
     def stop(self) -> None:
         """Stop the cluster (once) and free the lock; a pytest clean-up, so an interrupted session stops it too."""
         if self.stopped:
             return
         self.stopped = True
-        self._thread.join(timeout=RUN_TIMEOUT)
+        if not self._done.is_set():  # the session was interrupted while the experiment ran: end its command
+            _end_running()
+        self._done.wait(timeout=RUN_TIMEOUT)
         try:
             if self.started:
                 stopped = _script("stop_cluster.sh", self.env, 120)
@@ -222,11 +236,42 @@ def _test_profile(folder: Path, partition: str = "debug") -> Path:
     return folder
 
 
+# The holdfast commands under way (each under `timeout`), so that an interrupted session can end them (see
+# _Background.stop); _STOPPING refuses new ones once it began.
+_RUNNING: set[subprocess.Popen[str]] = set()
+_RUNNING_LOCK = threading.Lock()
+_STOPPING = threading.Event()
+
+
+def _end_running() -> None:
+    """SIGTERM to every `timeout` under way: it passes the signal to its command's process group (holdfast, its
+    Snakemake, their jobs), and sends SIGKILL 15 s later to whatever is left."""
+    _STOPPING.set()
+    with _RUNNING_LOCK:
+        running = list(_RUNNING)
+    for process in running:
+        if process.poll() is None:
+            process.terminate()
+
+
 def _holdfast(workdir: Path, env: dict[str, str], *args: str) -> subprocess.CompletedProcess[str]:
-    """The real holdfast command in ``workdir``; ``timeout -k`` ends the whole process group if it hangs."""
-    return subprocess.run(["timeout", "-k", "15", str(RUN_TIMEOUT), sys.executable, "-m", "holdfast", *args],
-                          cwd=workdir, env=env, stdin=subprocess.DEVNULL, capture_output=True, text=True,
-                          check=False)
+    """The real holdfast command in ``workdir``; ``timeout -k`` ends the whole process group if it hangs, and an
+    interrupted session ends it at once (:func:`_end_running`)."""
+    if _STOPPING.is_set():
+        raise RuntimeError("the test session is stopping: no new holdfast command")
+    process = subprocess.Popen(["timeout", "-k", "15", str(RUN_TIMEOUT), sys.executable, "-m", "holdfast", *args],
+                               cwd=workdir, env=env, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                               stderr=subprocess.PIPE, text=True)
+    with _RUNNING_LOCK:
+        _RUNNING.add(process)
+    try:
+        if _STOPPING.is_set():  # the session began to stop while this command started
+            process.terminate()
+        out, err = process.communicate()
+    finally:
+        with _RUNNING_LOCK:
+            _RUNNING.discard(process)
+    return subprocess.CompletedProcess(process.args, process.returncode, out, err)
 
 
 def _ok(result: subprocess.CompletedProcess[str], what: str) -> str:
