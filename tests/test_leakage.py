@@ -239,3 +239,47 @@ def test_demo_with_folds_that_ignore_routes_counts_every_route_on_both_sides(tmp
     assert groups_on_both_sides(dev, folds, "route") == [0] * 5
     assert [f["groups_on_both_sides"] for f in leakage["group_overlap"]["folds"]] == [0] * 5
     assert "group overlap: 0 of 40 group(s) of 'route'" in leakage["summary"] and "warning" not in leakage["summary"]
+
+
+def test_a_fold_table_refused_by_the_leakage_report_is_not_left_behind(tmp_path: Path) -> None:
+    """The fold table is written beside the leakage report; when the report refuses the folds (time_order: error and
+    k-fold on time-stamped rows), the real workflow stops at assign_folds with that message, and neither the table
+    nor a ledger line for it stays."""
+    from conftest import small_classification_config
+
+    with_times(breast_cancer_frame()).to_csv(tmp_path / "data.csv", index=False)
+    config = small_classification_config()
+    config["data"]["time"] = "visit_at"
+    config["test"] = {"fraction": 0.25, "scheme": "time_tail", "gap_hours": 0}
+    config["folds"] = {"scheme": "kfold", "k": 3, "repeats": 1, "seed": 5}
+    config["leakage"] = {"time_order": "error"}
+    write_config(tmp_path, config)
+    result = run_workflow(tmp_path)
+    assert result.returncode != 0
+    assert re.search(r"folds.scheme kfold ignores time: in 3 fold\(s\) training rows are later than validation rows",
+                     result.stdout + result.stderr), (result.stdout + result.stderr)[-3000:]
+    exp = tmp_path / "results" / "bc"
+    assert (exp / "dev.parquet").exists()  # the seal ran
+    assert not (exp / "folds.parquet").exists()
+    events = [json.loads(line)["event"] for line in (exp / "ledger.jsonl").read_text().splitlines()]
+    assert "seal" in events and "assign_folds" not in events, events
+    # Outside Snakemake (which also deletes a failed job's outputs), the step itself removes the table it wrote.
+    from types import SimpleNamespace as Job
+
+    from holdfast.config import seal_spec, validate, with_task
+    from holdfast.steps import assign_folds
+
+    checked = with_task(validate(config), "classification")
+    out = tmp_path / "direct"
+    out.mkdir()
+    job = Job(rule="assign_folds", wildcards=Job(), log=[str(out / "assign_folds.log")],
+              input=Job(dev=str(exp / "dev.parquet")),
+              output=Job(folds=str(out / "folds.parquet"), summary=str(out / "folds_summary.parquet"),
+                         leakage=str(out / "leakage.json")),
+              params=Job(spec=json.dumps({**seal_spec(checked), "task": "classification"}, sort_keys=True),
+                         folds=json.dumps(checked["folds"], sort_keys=True), test=str(exp / "sealed" / "test.parquet"),
+                         manifest=str(exp / "sealed" / "manifest.json"), task="classification",
+                         leakage=json.dumps(checked["leakage"], sort_keys=True), ledger=str(out / "ledger.jsonl")))
+    with pytest.raises(DataError, match="ignores time"):
+        assign_folds(job)
+    assert not (out / "folds.parquet").exists() and not (out / "ledger.jsonl").exists()

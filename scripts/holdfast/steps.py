@@ -58,7 +58,7 @@ def _scope(smk: Any) -> str:
 
 def assign_folds(smk: Any) -> None:
     """Rule assign_folds -> holdfast.folds.assign and check (nested: on the outer-training rows)."""
-    from concurrent.futures import ThreadPoolExecutor
+    from concurrent.futures import ThreadPoolExecutor, wait
 
     import pandas as pd
 
@@ -75,16 +75,25 @@ def assign_folds(smk: Any) -> None:
 
         dev = dev[~outer_rows(dev, pd.read_parquet(smk.input.outer), int(smk.wildcards.outer))]
         dev = dev.reset_index(drop=True)
-    with ThreadPoolExecutor(max_workers=1) as helper:  # duplicate rows are found beside the fold draw
+    with ThreadPoolExecutor(max_workers=2) as helper:  # duplicate rows are found beside the fold draw
         identity = helper.submit(feature_identity, dev, spec)
         table = assign(dev, fold_spec, spec["target"], spec["group"], spec.get("time"), spec.get("time_unit"))
         groups = dev[spec["group"]] if spec["group"] else None
         times = dev[spec["time"]] if spec.get("time") else None
         test_keys = pd.read_parquet(smk.params.test, columns=["row_key"])["row_key"]
         check(table, dev["row_key"], test_keys, fold_spec, groups, times, spec.get("time_unit"))
-        report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
-                                read_json(smk.params.manifest), smk.output.summary, fold_spec, identity.result())
-    write_parquet(smk.output.folds, table)
+        # The fold table passed its checks: it is written, and the development file hashed, beside the leakage
+        # report (both release the GIL). The report can still refuse; then the written table is removed.
+        written = helper.submit(write_parquet, smk.output.folds, table)
+        dev_sha256 = helper.submit(sha256_file, smk.input.dev)
+        try:
+            report = leakage_report(dev, table, spec, smk.params.task, json.loads(smk.params.leakage),
+                                    read_json(smk.params.manifest), smk.output.summary, fold_spec, identity.result())
+            written.result()
+        except BaseException:
+            wait([written])
+            Path(smk.output.folds).unlink(missing_ok=True)
+            raise
     write_json(smk.output.leakage, report)
     n_folds, n_repeats = int(table["fold"].max()) + 1, int(table["repeat"].max()) + 1
     randomised = fold_spec["scheme"] not in ("loo", "leave_one_group_out", "forward", "forward_group")
@@ -92,7 +101,7 @@ def assign_folds(smk: Any) -> None:
         "scope": getattr(smk.params, "scope", scope), "scheme": fold_spec["scheme"], "k": n_folds,
         "repeats": n_repeats, "seeds": [fold_spec["seed"] + r for r in range(n_repeats)] if randomised else [],
         "rows": len(dev),
-        "folds_sha256": sha256_file(smk.output.folds), "dev_sha256": sha256_file(smk.input.dev),
+        "folds_sha256": sha256_file(smk.output.folds), "dev_sha256": dev_sha256.result(),
         "leakage_sha256": sha256_file(smk.output.leakage), "summary_sha256": sha256_file(smk.output.summary),
     }, rule=smk.rule)
     print(report["summary"])
