@@ -384,6 +384,45 @@ def fit_seconds(exp: Path) -> float:
     return float(sum(pd.read_parquet(f, columns=["fit_seconds"])["fit_seconds"].sum() for f in files))
 
 
+def curve_seconds(exp: Path) -> float:
+    """Σ in-job fit seconds of the learning-curve jobs that fitted (not put back), as their ledger lines record them:
+    diagnostic work holdfast does and the script does not."""
+    path = exp / "ledger.jsonl"
+    total = 0.0
+    for line in path.read_text().splitlines() if path.exists() else []:
+        entry = json.loads(line)
+        seconds = (entry.get("details") or {}).get("fit_seconds")
+        if entry.get("event") == "learning_curve" and isinstance(seconds, int | float):
+            total += float(seconds)
+    return total
+
+
+def schedule_bound(walls: Sequence[float], cores: int) -> float | None:
+    """The shortest time in which ``cores`` cores can run jobs of these wall times, one job per core at a time,
+    whatever the order: a lower bound on the makespan.
+
+    At least Σ / cores and the longest job; and for every k, among the k·cores + 1 longest jobs one core must run
+    k + 1, so at least the sum of the k + 1 shortest of them (a pigeonhole argument, proved by this sentence; the
+    setting is scheduling on identical machines as in R. L. Graham, "Bounds on multiprocessing timing anomalies",
+    SIAM J. Appl. Math. 17(2), 1969; reference from memory).
+    """
+    if not walls or cores < 1:
+        return None
+    p = sorted(walls, reverse=True)
+    bound = max(sum(p) / cores, p[0])
+    k = 1
+    while k * cores + 1 <= len(p):
+        top = p[:k * cores + 1]
+        bound = max(bound, sum(top[-(k + 1):]))
+        k += 1
+    return bound
+
+
+def fit_job_walls(workdir: Path) -> list[float]:
+    """Wall seconds of each fit_family job, from Snakemake's job records."""
+    return [j["end"] - j["start"] for j in job_records(workdir) if j["rule"] == "fit_family"]
+
+
 def stage_times(workdir: Path, run: WorkflowRun) -> list[tuple[str, int, float]]:
     """(stage, jobs, Σ job wall seconds): the run's start-up before the first job, each rule, the tail, the rest."""
     records = job_records(workdir)

@@ -196,6 +196,7 @@ def run_scenario(scenario: Scenario, reps: int, cores: int, root: Path) -> list[
         phase, source = c.fit_phase(workdir, exp)
         records[rep].update(workdir=workdir, exp=exp, logs=logs, run=run, fit_phase=phase, fit_phase_source=source,
                             fit_sum=c.fit_seconds(exp), stages=c.stage_times(workdir, run),
+                            curve_sum=c.curve_seconds(exp), fit_walls=c.fit_job_walls(workdir),
                             plan=baseline_plan(workdir, exp))
 
     def script(rep: int) -> None:
@@ -243,14 +244,20 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
         h_limit_fit, s_limit_fit = rec["fit_sum"] / cores, s_fit / cores
         h_limit = (rec["fit_sum"] + refit) / cores if refit is not None else None
         s_limit = (s_fit + sc["refit_s"]) / cores
+        h_limit_curves = (rec["fit_sum"] + refit + rec["curve_sum"]) / cores if refit is not None else None
+        bound = c.schedule_bound(rec["fit_walls"], cores)
         add("whole workflow wall (s)", h_wall, s_wall)
         add("fit phase wall (s)", rec["fit_phase"], sc["search_s"])
         add("Σ in-job CV fit time (s)", rec["fit_sum"], s_fit)
         add("refit of the winner, in job (s)", None, sc["refit_s"])
         add("limit, fit phase: Σ CV fit / cores (s)", h_limit_fit, s_limit_fit)
         add("limit, whole: Σ (CV fit + refit) / cores (s)", h_limit, s_limit)
+        add("Σ in-job learning-curve fit time (s)", rec["curve_sum"], None)
+        add("limit, whole, with the learning curves (s)", h_limit_curves, s_limit)
+        add("fit phase, shortest any order of its jobs allows (s)", bound, None)
         add("parallel efficiency, fit phase", c.ratio(h_limit_fit, rec["fit_phase"]), c.ratio(s_limit_fit,
                                                                                               sc["search_s"]))
+        add("parallel efficiency, fit phase, best its jobs allow", c.ratio(h_limit_fit, bound), None)
         add("parallel efficiency, whole", c.ratio(h_limit, h_wall), c.ratio(s_limit, s_wall))
         add("peak RSS of the largest process (MiB)", rec["run"].peak_mib, rec["script_run"].peak_mib)
     table, medians = [], {}
@@ -261,7 +268,7 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
         if "efficiency" in name:
             table.append([name, c.pct(h), c.pct(s), ""])
         else:
-            r = c.ratio(h, s) if "refit" not in name else None
+            r = c.ratio(h, s) if "refit" not in name and "curve" not in name else None
             table.append([name, h, s, "" if r is None else f"{r:.2f}x"])
     c.table(["measure", "holdfast", "script", "holdfast / script"], table)
     per_rep = [rec["run"].wall / rec["script_run"].wall for rec in records]
@@ -275,6 +282,11 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
     print(f"  holdfast fit phase from {records[0]['fit_phase_source']}")
     print("  holdfast records no refit time, so its whole-workflow limit uses the script's refit of the same "
           "winner on the same rows")
+    print("  learning curves: holdfast's diagnostic fits of the winner on smaller training sets (ledger "
+          "'learning_curve' lines that fitted); the script makes none, so its limit with them is its plain limit")
+    print("  shortest any order allows: a lower bound on running the measured fit_family jobs (wall times from "
+          "Snakemake's records) on the cores, one job per core at a time (bench/_common.py: schedule_bound); "
+          "finer jobs would lower it")
     print(f"  holdfast commands: {c.workflow_label()}")
     print(f"  script: bench/gridsearch_baseline.py, GridSearchCV(n_jobs={cores}) per family, a fresh Python process; "
           "its refit uses the libraries' default threads, as a practitioner's would (holdfast's jobs use their "
@@ -349,6 +361,13 @@ def main(argv: list[str] | None = None) -> int:
               1.0, args.quick, "x")
         judge("mixed grid, holdfast fit-phase efficiency >= 90 %", m["holdfast parallel efficiency, fit phase"], 0.9,
               args.quick, "%")
+        best = m["holdfast parallel efficiency, fit phase, best its jobs allow"]
+        if best is not None:
+            print(f"        its fit jobs (one per family and fold) allow at most {100 * best:.0f} % in any order")
+        with_curves, script = m["holdfast limit, whole, with the learning curves (s)"], m[f"script {wall}"]
+        if with_curves is not None and script:
+            print(f"        holdfast's work with its learning curves needs {with_curves:.2f} s on these cores at 100 % "
+                  f"efficiency: {with_curves / script:.2f}x the script's whole {script:.2f} s")
     for name, m in results.items():
         if not m["identical"]:
             print(f"WARNING {name}: the script's numbers differ from holdfast's in some rep; see 'identical' above")
