@@ -540,3 +540,22 @@ def test_code_hash_import_scan_finds_what_pythons_own_parser_finds_in_every_modu
     assert found == {"(ledger,  # the chain\n    layout as lay,\n)", "seal", "folds"}  # not the one in a string
     # A string line that reads exactly like an import is taken as one: the hash then covers more code, never less.
     assert [m.group(1) for m in plan._RELATIVE_IMPORT.finditer('"""\n    from .audit import q\n"""')] == ["audit"]
+
+
+def test_jobs_per_fold_deals_candidates_in_turn_and_never_makes_an_empty_job() -> None:
+    """candidates.fit_groups: the i-th candidate goes to part i mod N (neighbours of a grid apart), at most one part
+    per candidate, names <family>.<i> from 1; a family left at one job per fold keeps its own name."""
+    from holdfast.candidates import fit_groups
+    from holdfast.layout import group_family
+
+    families = {"forest": [{"id": f"f{i}"} for i in range(5)], "logistic": [{"id": "l0"}, {"id": "l1"}],
+                "knn": [{"id": "k0"}]}
+    config = {"candidates": {"forest": {"jobs_per_fold": 2}, "logistic": {}, "knn": {"jobs_per_fold": 4}}}
+    groups = fit_groups(config, families)
+    assert {name: [c["id"] for c in cands] for name, cands in groups.items()} == {
+        "forest.1": ["f0", "f2", "f4"], "forest.2": ["f1", "f3"], "logistic": ["l0", "l1"], "knn": ["k0"]}
+    config["candidates"]["logistic"]["jobs_per_fold"] = 9
+    assert [c["id"] for n, cands in fit_groups(config, families).items() if n.startswith("logistic")
+            for c in cands] == ["l0", "l1"]
+    assert sorted(fit_groups(config, families)) == ["forest.1", "forest.2", "knn", "logistic.1", "logistic.2"]
+    assert {group_family(n) for n in fit_groups(config, families)} == set(families)

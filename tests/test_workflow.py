@@ -15,6 +15,7 @@ from conftest import (
     diabetes_frame,
     open_experiment,
     planned_jobs,
+    run_cli,
     run_workflow,
     small_classification_config,
     tree_digest,
@@ -344,6 +345,69 @@ def test_fit_jobs_carry_each_familys_priority_and_threads_in_snakemakes_own_plan
                                          "params": {"n_estimators": 30, "random_state": 0}})  # x 2 grid points
     write_config(bc_workdir, config)
     assert _fit_job_settings(run_workflow(bc_workdir, "-n")) == {"logistic": ("2.0", "1"), "tree": ("60.0", "1")}
+
+
+def test_jobs_per_fold_deals_a_familys_candidates_into_parts_in_snakemakes_own_plan(bc_workdir: Path) -> None:
+    """candidates.<family>.jobs_per_fold = N: N fit jobs per fold (never more than the family's candidates), each
+    with the family's threads and a priority from its own candidates' cost; other families keep one job."""
+    config = small_classification_config()
+    config["candidates"]["tree"].update({"cost": 10, "threads": 2, "jobs_per_fold": 2,
+                                         "grid": {"max_depth": [2, 3, 4]}})  # 3 candidates: parts of 2 and 1
+    config["candidates"]["logistic"]["jobs_per_fold"] = 7  # 2 candidates: one job each
+    write_config(bc_workdir, config)
+    settings = _fit_job_settings(run_workflow(bc_workdir, "-n"))
+    assert settings == {"logistic.1": ("1.0", "1"), "logistic.2": ("1.0", "1"), "tree.1": ("20.0", "2"),
+                        "tree.2": ("10.0", "2")}, settings
+    checked = run_cli(bc_workdir, "check", "config.yaml")
+    assert checked.returncode == 0 and "5 candidates in 2 families (4 fit jobs per fold)" in checked.stdout, checked
+
+
+def test_a_family_fitted_in_parts_gives_the_same_numbers_and_its_old_files_do_not_fail_the_audit(
+        bc_finished: Path, bc_workdir: Path) -> None:
+    """Each candidate is fitted alone whatever job it is in, so dealing families into parts changes no number: the
+    folds, ranking, choice and verdict are byte for byte those of one job per fold (bc_finished). Going back to one
+    job per fold leaves the parts' files and ledger lines behind; the audit follows the fit files the tally read
+    (its fit_groups), so it passes, and the learning curve finds the winner's stored record in its part."""
+    import hashlib
+
+    from holdfast import ledger
+
+    def digest(root: Path, name: str) -> str:
+        return hashlib.sha256((root / "results" / "bc" / name).read_bytes()).hexdigest()
+
+    config = small_classification_config()
+    for family in ("logistic", "tree"):
+        config["candidates"][family]["jobs_per_fold"] = 2
+    write_config(bc_workdir, config)
+    split = run_workflow(bc_workdir)
+    assert split.returncode == 0, split.stderr[-3000:]
+    exp = bc_workdir / "results" / "bc"
+    assert sorted(p.name for p in (exp / "fits").iterdir()) == ["logistic.1", "logistic.2", "tree.1", "tree.2"]
+    assert all(len(pd.read_parquet(f)) == 1 for f in (exp / "fits").rglob("*.parquet"))  # one candidate a job
+    for name in ("folds.parquet", "ranking.parquet", "choice.json"):
+        assert digest(bc_workdir, name) == digest(bc_finished, name), name
+    entries = ledger.read(exp / "ledger.jsonl")
+    curve = [e["details"] for e in entries if e["event"] == "learning_curve"]
+    assert curve and all(d["family"].split(".")[0] in ("logistic", "tree") and "." in d["family"]
+                         and d["fits_sha256"] for d in curve), curve
+    audit = run_cli(bc_workdir, "audit", "results/bc")
+    assert audit.returncode == 0 and "PASS" in audit.stdout, audit.stdout + audit.stderr
+
+    for family in ("logistic", "tree"):
+        config["candidates"][family]["jobs_per_fold"] = 1
+    write_config(bc_workdir, config)
+    whole = run_workflow(bc_workdir)
+    assert whole.returncode == 0, whole.stderr[-3000:]
+    assert (exp / "fits" / "tree" / "r0f0.parquet").exists() and (exp / "fits" / "tree.1" / "r0f0.parquet").exists()
+    tallies = [e["details"] for e in ledger.read(exp / "ledger.jsonl") if e["event"] == "tally"]
+    assert [t["fit_groups"] for t in tallies] == [["logistic.1", "logistic.2", "tree.1", "tree.2"],
+                                                  ["logistic", "tree"]]
+    audit = run_cli(bc_workdir, "audit", "results/bc")
+    assert audit.returncode == 0 and "PASS" in audit.stdout, audit.stdout + audit.stderr
+    opened = open_experiment(bc_workdir, "bc")
+    assert opened.returncode == 0, opened.stdout[-3000:] + opened.stderr[-3000:]
+    for name in ("ranking.parquet", "choice.json", "final/verdict.json"):
+        assert digest(bc_workdir, name) == digest(bc_finished, name), name
 
 
 def _memory_requests(result: subprocess.CompletedProcess[str]) -> dict[str, int]:

@@ -35,6 +35,7 @@ from .layout import (
     TEST,
     VERDICT,
     fit_file,
+    group_family,
 )
 from .ledger import Problem
 from .recorded import scope_folder, verify
@@ -143,7 +144,7 @@ def _check_folds(exp: Path, entries: list[dict[str, Any]], dev_keys: set[str], t
                                "row exactly once"))
             break
     sha = sha256_file(path)
-    stale = [e for e in _latest_fits(entries, "main").values() if e["details"].get("folds_sha256") != sha]
+    stale = [e for e in _current_fits(entries, "main").values() if e["details"].get("folds_sha256") != sha]
     if stale:
         out.append(Problem("fits-on-other-folds", f"{len(stale)} fit job(s) used a fold table other than the current "
                            "folds.parquet (folds changed after the fits)"))
@@ -159,6 +160,17 @@ def _latest_fits(entries: list[dict[str, Any]], scope: str) -> dict[tuple[str, i
         except (TypeError, ValueError):
             continue  # recorded.verify names a fit line whose details name no file
     return latest
+
+
+def _current_fits(entries: list[dict[str, Any]], scope: str) -> dict[tuple[str, int, int], dict[str, Any]]:
+    """:func:`_latest_fits` of the fit jobs the scope's latest tally read, when it recorded them (``fit_groups``):
+    files of a family part that an edit of jobs_per_fold left unused are not the ranking's."""
+    latest = _latest_fits(entries, scope)
+    tallies = ledger.events(entries, "tally", scope)
+    groups = (tallies[-1].get("details") or {}).get("fit_groups") if tallies else None
+    if not isinstance(groups, list):
+        return latest
+    return {key: e for key, e in latest.items() if key[0] in groups}
 
 
 def _check_choice(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) -> str | None:
@@ -221,8 +233,8 @@ def _ranking_against_fits(exp: Path, entries: list[dict[str, Any]], scope: str, 
     folds_sha = verified.get(folder + FOLDS)
     families = set(ranking["family"])
     used = sorted(folder + fit_file("fits", family, repeat, fold)
-                  for (family, repeat, fold), e in _latest_fits(entries, scope).items()
-                  if family in families and e["details"].get("folds_sha256") == folds_sha)
+                  for (family, repeat, fold), e in _current_fits(entries, scope).items()
+                  if group_family(family) in families and e["details"].get("folds_sha256") == folds_sha)
     if folds_sha is None or any(name not in verified for name in used):
         return  # the fold table or a fit file failed its own check, already named
     if len(used) != tally.get("fit_files"):

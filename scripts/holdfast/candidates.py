@@ -63,6 +63,25 @@ def expand(config: dict[str, Any]) -> dict[str, list[dict[str, Any]]]:
     return families
 
 
+def fit_groups(config: dict[str, Any], families: dict[str, list[dict[str, Any]]]) -> dict[str, list[dict[str, Any]]]:
+    """The candidates of each fit job, by the job's family part: ``<family>`` when the family has one job per fold,
+    else ``<family>.1`` .. ``<family>.N`` for ``candidates.<family>.jobs_per_fold`` = N (at most one per candidate).
+
+    Candidates are dealt in turn (the i-th to part i mod N), so neighbours of a grid, which often differ most in
+    cost (max_features 0.5 against sqrt), land in different jobs. Family names cannot hold a dot, so a part's name
+    never collides with a family's.
+    """
+    groups: dict[str, list[dict[str, Any]]] = {}
+    for name, cands in families.items():
+        parts = min(int(config["candidates"][name].get("jobs_per_fold", 1)), len(cands))
+        if parts <= 1:
+            groups[name] = cands
+            continue
+        for i in range(parts):
+            groups[f"{name}.{i + 1}"] = cands[i::parts]
+    return groups
+
+
 def family_payload(name: str, candidates: list[dict[str, Any]]) -> str:
     """Canonical JSON of one family: passed to its fit jobs as a param so edits re-run them."""
     return canonical_json({"family": name, "candidates": candidates})

@@ -136,8 +136,9 @@ def _check(args: argparse.Namespace) -> int:
     plan = prepare(read_yaml(args.configfile), main=True, results=args.results)
     n = sum(len(c) for c in plan.families.values())
     state = ("opened" if plan.opened else "sealed") if plan.manifest else "not sealed yet"
+    split = f" ({len(plan.groups)} fit jobs per fold)" if len(plan.groups) != len(plan.families) else ""
     print(f"config OK: experiment '{plan.config['experiment']}' ({state}), task {plan.config['task']}, "
-          f"{n} candidates in {len(plan.families)} families, {len(plan.fold_ids)} folds, "
+          f"{n} candidates in {len(plan.families)} families{split}, {len(plan.fold_ids)} folds, "
           f"primary metric {plan.config['metrics'][0]}")
     return 0
 

@@ -471,7 +471,7 @@ def fold_spec(config: dict[str, Any]) -> dict[str, Any]:
     return dict(config["folds"])
 
 
-RESOURCE_KEYS = ("threads", "mem_mb", "runtime", "cost")
+RESOURCE_KEYS = ("threads", "mem_mb", "runtime", "cost", "jobs_per_fold")
 
 
 def _without_defaults(value: Any, schema: dict[str, Any]) -> Any:

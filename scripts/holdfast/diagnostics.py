@@ -25,6 +25,7 @@ import pandas as pd
 from . import display, ledger
 from ._io import read_json, read_parquet, sha256_file, write_atomic, write_json
 from .dataset import KEY
+from .layout import group_family
 
 MAX_POINTS = 2000  # residuals drawn as points; more rows are summarised by the bins and sampled for the picture
 RESIDUAL_BINS = 10
@@ -119,7 +120,7 @@ def winner_oof(oof_paths: list[str], dev: pd.DataFrame, target: str, winner: str
     """The winner's stored out-of-fold rows (every repeat), each with its true target value."""
     frames = []
     for path in sorted(oof_paths):
-        if Path(path).parent.name != family:
+        if group_family(Path(path).parent.name) != family:  # the family's own files, or its parts' (forest.2)
             continue
         frame = pd.read_parquet(path)
         frames.append(frame[frame["candidate"] == winner])

@@ -38,6 +38,12 @@ def fit_file(kind: str, family: str, repeat: int, fold: int) -> str:
     return f"{kind}/{family}/r{repeat}f{fold}.parquet"
 
 
+def group_family(group: str) -> str:
+    """The family of a fit job's family part: ``forest`` for ``forest.2`` and for ``forest`` (see
+    candidates.fit_groups)."""
+    return group.split(".", 1)[0]
+
+
 def read_manifest(exp_dir: str | os.PathLike[str]) -> dict[str, Any] | None:
     """The experiment's seal manifest, or None before the seal."""
     path = Path(exp_dir) / MANIFEST

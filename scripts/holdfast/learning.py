@@ -83,12 +83,16 @@ def fitted_tables(ledger_path: str, key: str) -> set[str]:
 def learning_curve(exp_dir: str, dev_path: str, folds_path: str, choice_path: str, spec: dict[str, Any],
                    repeat: int, fold: int, metrics: list[str], task: str, sizes: list[float], seed: int,
                    threads: int, allowed: list[str], out_path: str, ledger_path: str, code: str = "",
-                   rule: str | None = None) -> pd.DataFrame:
-    """Write diagnostics/learning/r<R>f<F>.parquet: one row per size with training and validation scores."""
+                   rule: str | None = None, parts: dict[str, str] | None = None) -> pd.DataFrame:
+    """Write diagnostics/learning/r<R>f<F>.parquet: one row per size with training and validation scores.
+
+    ``parts`` maps a candidate of a family fitted in several jobs per fold to its job's family part (forest.2),
+    whose fit file holds the winner's stored record; other candidates' records are in their family's file.
+    """
     exp = Path(exp_dir)
     choice = read_json(choice_path)
     candidate = choice["winner"]["spec"]
-    family = str(candidate["family"])
+    family = (parts or {}).get(str(candidate["id"]), str(candidate["family"]))
     folds_sha, dev_sha = sha256_file(folds_path), sha256_file(dev_path)
     key = input_key(candidate, folds_sha, dev_sha, repeat, fold, sizes, seed, metrics, task, code)
     kept = exp / KEPT / f"{key[:24]}-r{repeat}f{fold}.parquet"
@@ -100,7 +104,7 @@ def learning_curve(exp_dir: str, dev_path: str, folds_path: str, choice_path: st
     else:
         limit_threads(threads)
         table, details = _fit_sizes(exp, dev_path, folds_path, candidate, spec, repeat, fold, metrics, task, sizes,
-                                    seed, threads, allowed)
+                                    seed, threads, allowed, family)
         write_parquet(out_path, table)
         kept.parent.mkdir(parents=True, exist_ok=True)
         shutil.copyfile(out_path, kept)
@@ -119,7 +123,7 @@ def learning_curve(exp_dir: str, dev_path: str, folds_path: str, choice_path: st
 
 def _fit_sizes(exp: Path, dev_path: str, folds_path: str, candidate: dict[str, Any], spec: dict[str, Any],
                repeat: int, fold: int, metrics: list[str], task: str, sizes: list[float], seed: int, threads: int,
-               allowed: list[str]) -> tuple[pd.DataFrame, dict[str, Any]]:
+               allowed: list[str], family: str) -> tuple[pd.DataFrame, dict[str, Any]]:
     dev = pd.read_parquet(dev_path)
     folds = pd.read_parquet(folds_path)
     training, validation = fold_rows(dev, folds, repeat, fold)
@@ -132,7 +136,7 @@ def _fit_sizes(exp: Path, dev_path: str, folds_path: str, candidate: dict[str, A
     for fraction, rows_in in zip(sizes, subsets, strict=True):
         base = {"repeat": repeat, "fold": fold, "fraction": fraction}
         if len(rows_in) == len(x_train):  # the full fold: the winner's stored fit record, not a new fit
-            stored_path = exp / fit_file("fits", str(candidate["family"]), repeat, fold)
+            stored_path = exp / fit_file("fits", family, repeat, fold)
             stored = pd.read_parquet(stored_path)
             record = stored[stored["candidate"] == candidate["id"]].iloc[0].to_dict()
             details["fits_sha256"] = sha256_file(stored_path)

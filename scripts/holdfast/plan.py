@@ -21,7 +21,7 @@ from . import ledger
 from ._io import canonical_json, read_json, sha256_file, sha256_text
 from .candidates import expand, family_payload
 from .errors import ConfigError, DataError, HoldfastError, SealedAccessError
-from .layout import DEV, LEDGER, MANIFEST, REQUEST, TEST, fit_file, read_manifest
+from .layout import DEV, LEDGER, MANIFEST, REQUEST, TEST, fit_file, group_family, read_manifest
 
 PACKAGE = Path(__file__).resolve().parent
 STAGE_MODULES = {
@@ -154,6 +154,17 @@ class Plan:
     main: bool = True
     facts: dict[str, Any] = field(default_factory=dict)
     _costs: dict[str, float] | None = field(default=None, repr=False)
+    _groups: dict[str, list[dict[str, Any]]] | None = field(default=None, repr=False)
+
+    @property
+    def groups(self) -> dict[str, list[dict[str, Any]]]:
+        """The candidates of each fit job by its family part (the fit rule's family wildcard): the family itself,
+        or ``<family>.<i>`` with candidates.<family>.jobs_per_fold above 1 (candidates.fit_groups)."""
+        if self._groups is None:
+            from .candidates import fit_groups
+
+            self._groups = fit_groups(self.config, self.families)
+        return self._groups
 
     @property
     def sealed(self) -> bool:
@@ -223,7 +234,7 @@ class Plan:
 
     def fit_files(self, kind: str) -> list[str]:
         """Every fits/ or oof/ file the fit jobs produce."""
-        return [self.path(fit_file(kind, fam, r, f)) for fam in self.families for r, f in self.fold_ids]
+        return [self.path(fit_file(kind, fam, r, f)) for fam in self.groups for r, f in self.fold_ids]
 
     def learning_files(self) -> list[str]:
         """The learning-curve tables, one per (repeat, fold); none when diagnostics.learning_curve is false."""
@@ -233,7 +244,7 @@ class Plan:
 
     def nested_fit_files(self, kind: str, outer: int) -> list[str]:
         """The fits/ or oof/ files of one nested outer fold."""
-        return [self.path(f"nested/o{outer}/{fit_file(kind, fam, r, f)}") for fam in self.families
+        return [self.path(f"nested/o{outer}/{fit_file(kind, fam, r, f)}") for fam in self.groups
                 for r, f in self.fold_ids]
 
     def outer_fold_spec(self) -> dict[str, Any]:
@@ -243,7 +254,13 @@ class Plan:
 
     def family_json(self, family: str) -> str:
         """The family's canonical JSON, a param of its fit jobs."""
-        return family_payload(family, self.families[family])
+        return family_payload(family, self.groups[family])
+
+    def parts_json(self) -> str:
+        """Canonical JSON {candidate id: family part} for the candidates of families fitted in several jobs per fold
+        (a param of the learning-curve jobs, which read the winner's stored fit record); ``{}`` when none is."""
+        return canonical_json({c["id"]: group for group, cands in self.groups.items() if "." in group
+                               for c in cands})
 
     def candidates_by_id(self) -> dict[str, dict[str, Any]]:
         """Every candidate spec keyed by id."""
@@ -261,9 +278,9 @@ class Plan:
                 if spec.get("simplicity")}
 
     def fit_costs(self) -> dict[str, float]:
-        """Expected seconds of one fit job per family: measured by its latest fit jobs in the ledger, else the
-        family's declared ``cost`` x candidates, else its candidates counted by :func:`ensemble_size`. Read once
-        per parse."""
+        """Expected seconds of one fit job per family part (:attr:`groups`): measured by its latest fit jobs in the
+        ledger, else the family's declared ``cost`` x the part's candidates, else those candidates counted by
+        :func:`ensemble_size`. Read once per parse."""
         if self._costs is None:
             measured: dict[str, list[float]] = {}
             path = self.exp / LEDGER
@@ -274,8 +291,8 @@ class Plan:
                             and isinstance(details.get("fit_seconds"), int | float):
                         measured.setdefault(str(details.get("family")), []).append(float(details["fit_seconds"]))
             costs = {}
-            for family, candidates in self.families.items():
-                declared = self.config["candidates"][family].get("cost")
+            for family, candidates in self.groups.items():
+                declared = self.config["candidates"][group_family(family)].get("cost")
                 recent = measured.get(family, [])[-len(self.fold_ids) or None:]
                 costs[family] = (sum(recent) / len(recent) if recent else
                                  float(declared) * len(candidates) if declared else
@@ -288,8 +305,8 @@ class Plan:
         return round(self.fit_costs().get(family, 0.0), 3)
 
     def threads(self, family: str) -> int:
-        """Threads declared for a family's fit jobs."""
-        return int(self.config["candidates"][family]["threads"])
+        """Threads declared for the fit jobs of a family (or of one of its parts)."""
+        return int(self.config["candidates"][group_family(family)]["threads"])
 
     def fingerprint(self) -> str:
         """What decides the winner: recorded at the opening, compared at every later parse."""
@@ -539,11 +556,11 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
         from . import openings
 
         plan.opened = openings.records(exp).count
-    jobs = len(plan.fold_ids) * len(families) * (1 + int(config["nested"]["k"]))
+    jobs = len(plan.fold_ids) * len(plan.groups) * (1 + int(config["nested"]["k"]))
     if jobs > MAX_FIT_JOBS:
         raise ConfigError(f"config keys 'folds' and 'candidates' give {jobs} fit jobs ({len(plan.fold_ids)} folds "
-                          f"and repeats x {len(families)} families), more than {MAX_FIT_JOBS}; use fewer folds, "
-                          "repeats or families")
+                          f"and repeats x {len(plan.groups)} fit jobs per fold), more than {MAX_FIT_JOBS}; use "
+                          "fewer folds, repeats, families or jobs_per_fold")
     if heavy:
         from .candidates import check_estimators
         from .folds import check_feasible

@@ -97,7 +97,9 @@ NOT_FILES: dict[tuple[str, tuple[str, ...]], str] = {
 SCOPE_FOLDERS = {"main": "", "outer": "nested/outer_", "nested": "nested/"}
 SCOPE_GLOBS = ("", "nested/outer_", "nested/", "nested/o[0-9]*/")
 _OUTER = re.compile(r"o(0|[1-9][0-9]*)")
-_FIELD = re.compile(r"[A-Za-z0-9_-]{1,80}")
+# A path field of a ledger line: a name (family, repeat, fold...), or a family part ``forest.2`` (jobs_per_fold);
+# never a separator or '..', so a forged line cannot name a file outside the experiment.
+_FIELD = re.compile(r"[A-Za-z0-9_-]{1,80}(\.[1-9][0-9]{0,3})?")
 
 
 def scope_folder(scope: Any) -> str | None:

@@ -35,6 +35,7 @@ from .layout import (
     REPORT,
     REPORT_FIGURES,
     VERDICT,
+    group_family,
 )
 
 TOP = 10  # candidates in the ranking's first table (every candidate is in the collapsed full table)
@@ -479,7 +480,7 @@ def _per_fold(exp: Path, files: Vouched, unit: str | None) -> str:
     frames = []
     for name in sorted(files.verified):
         parts = name.split("/")
-        if len(parts) == 3 and parts[0] == "fits" and parts[1] in families and parts[2].startswith("r"):
+        if len(parts) == 3 and parts[0] == "fits" and group_family(parts[1]) in families and parts[2].startswith("r"):
             frame = files.table(name)
             frames.append(frame[frame["candidate"].isin(wanted)])
     column = f"val_{metric}"

@@ -176,7 +176,7 @@ def learning_curve(smk: Any) -> None:
                          int(smk.wildcards.repeat), int(smk.wildcards.fold), json.loads(smk.params.metrics),
                          smk.params.task, [float(s) for s in curve["sizes"]], int(curve["seed"]), int(smk.threads),
                          json.loads(smk.params.allowed), smk.output.learning, smk.params.ledger,
-                         code=smk.params.code, rule=smk.rule)
+                         code=smk.params.code, rule=smk.rule, parts=json.loads(smk.params.parts))
     print(table.to_string())
 
 

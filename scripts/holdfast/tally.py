@@ -461,6 +461,7 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     ledger.append(ledger_path, "tally", {
         "scope": scope, "winner": winner["candidate"], "rule": rule, "metric": primary, "candidates": n_candidates,
         "failed": len(failed), "fit_files": len(fit_paths), "ranking_sha256": sha256_file(ranking_path),
+        "fit_groups": sorted({Path(p).parent.name for p in fit_paths}),
         "choice_sha256": sha256_file(choice_path), "plot": str(Path(plot_path).name),
         "bbc_seed": int(selection["seed"]), "bbc_draws": int(selection["bootstrap"]),
         **({"round": rounds_info["count"], "candidates_tried": rounds_info["candidates_tried"],

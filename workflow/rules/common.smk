@@ -1,11 +1,13 @@
 # Config loading, parse-time guards, wildcard constraints and input functions.
 import json
 import os
+import re
 import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(workflow.basedir) / "scripts"))
 
+from holdfast.layout import group_family  # noqa: E402
 from holdfast.plan import checked_config_or_exit, code_hash, job_script, prepare_or_exit  # noqa: E402
 
 # The config is read as plain data by holdfast's strict reader (no tags, no template marker, no repeated keys):
@@ -23,7 +25,7 @@ ALLOWED = json.dumps(PLAN.config["allowed_modules"])
 
 
 wildcard_constraints:
-    family="|".join(PLAN.families),
+    family="|".join(re.escape(group) for group in PLAN.groups),
     repeat=r"\d+",
     fold=r"\d+",
     outer=r"\d+",
@@ -37,7 +39,7 @@ def per_family(value_of):
     """The fit rule's threads, priority or a resource: one constant when every family has the same value, else a
     function of the family wildcard. Snakemake calls such a function (and inspects its signature) once per job, which
     at 10,000 fit jobs was a large part of a dry run's time (bench/scale.py)."""
-    values = {family: value_of(family) for family in PLAN.families}
+    values = {family: value_of(family) for family in PLAN.groups}
     if len(set(values.values())) == 1:
         return next(iter(values.values()))
     return lambda wildcards: values[wildcards.family]
@@ -48,7 +50,7 @@ family_threads = per_family(PLAN.threads)
 
 
 def family_resource(name):
-    return per_family(lambda family: int(PLAN.config["candidates"][family][name]))
+    return per_family(lambda family: int(PLAN.config["candidates"][group_family(family)][name]))
 
 
 def fits_of(kind):

@@ -15,6 +15,7 @@ rule learning_curve:
         metrics=METRICS,
         task=PLAN.config["task"],
         curve=json.dumps(PLAN.config["diagnostics"]["learning_curve"], sort_keys=True),
+        parts=PLAN.parts_json(),
         allowed=ALLOWED,
         ledger=LEDGER,
         code=code_hash("learning_curve"),

@@ -18,8 +18,9 @@ def _fit_line(s: Summary) -> str:
     fits = s.fits
     if fits.planned is None:
         return f"{fits.done} fit job(s) recorded; {fits.unknown}"
-    return (f"{fits.done} of {fits.planned} done ({fits.families} family(ies) x {fits.folds} fold(s), counting jobs "
-            "fitted on the current folds for the current candidates)")
+    split = f" in {fits.per_fold} job(s) per fold" if fits.per_fold != fits.families else ""
+    return (f"{fits.done} of {fits.planned} done ({fits.families} family(ies){split} x {fits.folds} fold(s), counting "
+            "jobs fitted on the current folds for the current candidates)")
 
 
 def _winner_line(s: Summary) -> str:

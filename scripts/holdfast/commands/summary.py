@@ -27,6 +27,7 @@ class FitJobs:
     done: int = 0
     planned: int | None = None
     families: int = 0
+    per_fold: int = 0  # fit jobs per fold: the families, or more with jobs_per_fold
     folds: int = 0
     unknown: str = ""  # why the planned number could not be worked out
     nested_done: int = 0
@@ -162,8 +163,9 @@ def fit_jobs(exp: Path, entries: list[dict[str, Any]]) -> FitJobs:
 
     A (family, repeat, fold) job counts as done when its latest fit line was made on the scope's current fold
     table (the latest assign_folds line's folds_sha256) for exactly the family's current candidates (the
-    line's random_states name every candidate id). Planned: the stored config's fold ids x families, as
-    holdfast.plan.prepare gives them; nested scopes are counted apart.
+    line's random_states name every candidate id). Planned: the stored config's fold ids x fit jobs per fold
+    (families, or their parts with jobs_per_fold), as holdfast.plan.prepare gives them; nested scopes are counted
+    apart.
     """
     out = FitJobs()
     plan, out.unknown = _planned(exp)
@@ -174,9 +176,10 @@ def fit_jobs(exp: Path, entries: list[dict[str, Any]]) -> FitJobs:
         out.done = len({(d.get("family"), d.get("repeat"), d.get("fold"))
                         for d in (e["details"] for e in ledger.events(entries, "fit"))})
         return out
-    ids = {family: {c["id"] for c in cands} for family, cands in plan.families.items()}
-    jobs = {(family, r, f) for family in plan.families for r, f in plan.fold_ids}
-    out.families, out.folds, out.planned = len(plan.families), len(plan.fold_ids), len(jobs)
+    ids = {group: {c["id"] for c in cands} for group, cands in plan.groups.items()}
+    jobs = {(group, r, f) for group in plan.groups for r, f in plan.fold_ids}
+    out.families, out.per_fold = len(plan.families), len(plan.groups)
+    out.folds, out.planned = len(plan.fold_ids), len(jobs)
 
     def done_in(scope: str) -> int:
         folds = ledger.events(entries, "assign_folds", scope)
