@@ -387,14 +387,11 @@ def fit_seconds(exp: Path) -> float:
 def curve_seconds(exp: Path) -> float:
     """Σ in-job fit seconds of the learning-curve jobs that fitted (not put back), as their ledger lines record them:
     diagnostic work holdfast does and the script does not."""
-    path = exp / "ledger.jsonl"
-    total = 0.0
-    for line in path.read_text().splitlines() if path.exists() else []:
-        entry = json.loads(line)
-        seconds = (entry.get("details") or {}).get("fit_seconds")
-        if entry.get("event") == "learning_curve" and isinstance(seconds, int | float):
-            total += float(seconds)
-    return total
+    from holdfast import ledger
+
+    entries = ledger.events(ledger.read(exp / "ledger.jsonl"), "learning_curve")
+    seconds = [e["details"].get("fit_seconds") for e in entries]
+    return float(sum(s for s in seconds if isinstance(s, int | float)))
 
 
 def schedule_bound(walls: Sequence[float], cores: int) -> float | None:

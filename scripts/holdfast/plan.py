@@ -19,7 +19,7 @@ from typing import Any
 from . import config as cfg
 from . import ledger
 from ._io import canonical_json, read_json, sha256_file, sha256_text
-from .candidates import expand, family_payload
+from .candidates import expand, family_payload, fit_groups
 from .errors import ConfigError, DataError, HoldfastError, SealedAccessError
 from .layout import DEV, LEDGER, MANIFEST, REQUEST, TEST, fit_file, group_family, read_manifest
 
@@ -161,8 +161,6 @@ class Plan:
         """The candidates of each fit job by its family part (the fit rule's family wildcard): the family itself,
         or ``<family>.<i>`` with candidates.<family>.jobs_per_fold above 1 (candidates.fit_groups)."""
         if self._groups is None:
-            from .candidates import fit_groups
-
             self._groups = fit_groups(self.config, self.families)
         return self._groups
 
@@ -259,7 +257,7 @@ class Plan:
     def parts_json(self) -> str:
         """Canonical JSON {candidate id: family part} for the candidates of families fitted in several jobs per fold
         (a param of the learning-curve jobs, which read the winner's stored fit record); ``{}`` when none is."""
-        return canonical_json({c["id"]: group for group, cands in self.groups.items() if "." in group
+        return canonical_json({c["id"]: group for group, cands in self.groups.items() if group_family(group) != group
                                for c in cands})
 
     def candidates_by_id(self) -> dict[str, dict[str, Any]]:
