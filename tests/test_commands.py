@@ -620,3 +620,23 @@ def test_list_and_compare_bad_inputs(tmp_path: Path) -> None:
     empty = run_cli(tmp_path, "list")
     assert empty.returncode == 0 and empty.stdout.strip() == "no experiments under 'results'"
     one_error_line(run_cli(tmp_path, "compare", "results/a", "results/b"), 2, "'results/a' does not exist")
+
+
+def test_a_reader_that_stops_early_ends_the_command_quietly(bc_finished: Path) -> None:
+    """`holdfast audit X | head -1`: the pipe closes before the audit writes; no traceback, the shell's SIGPIPE code."""
+    import os
+    import signal
+    import subprocess
+    import sys
+
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1] / "scripts")}
+    read, write = os.pipe()
+    os.close(read)  # the reader is gone before the command prints anything
+    try:
+        result = subprocess.run([sys.executable, "-m", "holdfast", "audit", "results/bc"], cwd=bc_finished,
+                                stdout=write, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL, text=True,
+                                timeout=300, env=env)
+    finally:
+        os.close(write)
+    assert result.returncode == 128 + signal.SIGPIPE, result.stderr
+    assert "Traceback" not in result.stderr and "BrokenPipe" not in result.stderr, result.stderr

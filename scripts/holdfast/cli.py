@@ -594,9 +594,14 @@ def entry() -> None:
 
     Everything holdfast writes is fsynced and closed before this point. Skipping the teardown avoids an abort
     ('terminate called without an active exception') seen now and then at exit, after the closing lines,
-    when native thread pools of the data libraries are torn down.
+    when native thread pools of the data libraries are torn down. A reader that stops early (``holdfast audit X |
+    head -1``) closes the pipe: that ends the command quietly with the shell's code for SIGPIPE, not a traceback.
     """
-    code = main()
-    sys.stdout.flush()
+    try:
+        code = main()
+        sys.stdout.flush()
+    except BrokenPipeError:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())  # Python's documented recipe (signal module)
+        code = 128 + signal.SIGPIPE
     sys.stderr.flush()
     os._exit(code)
