@@ -90,3 +90,27 @@ def test_summary_carries_the_corrected_standard_error(nested_run: Path) -> None:
         assert numbers["se"] == pytest.approx(math.sqrt(sd2 / j), rel=1e-12)
         assert numbers["se_corrected"] == pytest.approx(math.sqrt((1 / j + n_val / n_train) * sd2), rel=1e-12)
         assert numbers["se_corrected"] > numbers["se"]
+
+
+def test_families_fitted_in_parts_give_the_same_nested_estimate(nested_finished: Path, tmp_path: Path) -> None:
+    """candidates.<family>.jobs_per_fold inside each outer fold too: every family in 2 jobs per inner fold gives,
+    byte for byte, the outer folds' rankings and choices and the nested summary of one job per fold."""
+    import shutil
+
+    from conftest import nested_config, run_workflow, write_config
+
+    (tmp_path / "data_demo").mkdir()
+    shutil.copy(nested_finished / "data_demo" / "shipments.csv", tmp_path / "data_demo" / "shipments.csv")
+    config = nested_config()
+    for family in config["candidates"].values():
+        family["jobs_per_fold"] = 2
+    write_config(tmp_path, config)
+    result = run_workflow(tmp_path)
+    assert result.returncode == 0, result.stderr[-3000:]
+    split, whole = tmp_path / "results" / "nested-demo", nested_finished / "results" / "nested-demo"
+    assert sorted(p.name for p in (split / "nested/o0/fits").iterdir()) == ["logistic.1", "logistic.2", "tree.1",
+                                                                          "tree.2"]
+    names = ["nested/summary.json", "ranking.parquet", "choice.json"]
+    names += [f"nested/o{fold}/{name}" for fold in (0, 1) for name in ("ranking.parquet", "choice.json", "score.json")]
+    for name in names:
+        assert (split / name).read_bytes() == (whole / name).read_bytes(), name
