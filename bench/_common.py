@@ -395,24 +395,11 @@ def curve_seconds(exp: Path) -> float:
 
 
 def schedule_bound(walls: Sequence[float], cores: int) -> float | None:
-    """The shortest time in which ``cores`` cores can run jobs of these wall times, one job per core at a time,
-    whatever the order: a lower bound on the makespan.
+    """The shortest time in which ``cores`` cores can run jobs of these wall times whatever the order
+    (:func:`holdfast.balance.makespan_bound`, which ``holdfast status`` uses on the in-job seconds)."""
+    from holdfast.balance import makespan_bound
 
-    At least Σ / cores and the longest job; and for every k, among the k·cores + 1 longest jobs one core must run
-    k + 1, so at least the sum of the k + 1 shortest of them (a pigeonhole argument, proved by this sentence; the
-    setting is scheduling on identical machines as in R. L. Graham, "Bounds on multiprocessing timing anomalies",
-    SIAM J. Appl. Math. 17(2), 1969; reference from memory).
-    """
-    if not walls or cores < 1:
-        return None
-    p = sorted(walls, reverse=True)
-    bound = max(sum(p) / cores, p[0])
-    k = 1
-    while k * cores + 1 <= len(p):
-        top = p[:k * cores + 1]
-        bound = max(bound, sum(top[-(k + 1):]))
-        k += 1
-    return bound
+    return makespan_bound(walls, cores)
 
 
 def fit_job_walls(workdir: Path) -> list[float]:

@@ -23,6 +23,24 @@ def _fit_line(s: Summary) -> str:
             "jobs fitted on the current folds for the current candidates)")
 
 
+def _seconds(value: float) -> str:
+    return f"{value:.1f} s" if value >= 10 else f"{value:.2f} s"
+
+
+def _time_lines(s: Summary) -> list[str]:
+    """The fit jobs' measured time against this machine's cores, and a split that would share them better."""
+    b = s.fits.balance
+    if b is None:
+        return []
+    lines = [f"{_seconds(b.total)} in-job over {b.jobs} job(s); on this machine's {b.cores} core(s) no order of them "
+             f"ends sooner than {_seconds(b.bound)} ({_seconds(b.even)} if shared evenly)"]
+    if b.family is not None and b.split_bound is not None:
+        lines.append(f"candidates.{b.family}.jobs_per_fold: {b.per_fold} would lower that to "
+                     f"{_seconds(b.split_bound)} (by its candidates' measured seconds; each job also pays its own "
+                     "start)")
+    return lines
+
+
 def _winner_line(s: Summary) -> str:
     if s.choice is None:
         return f"not shown: {s.withheld}" if s.withheld else "none yet (no tally)"
@@ -67,6 +85,7 @@ def status_lines(s: Summary) -> list[str]:
         ("folds", s.folds),
         ("fit jobs", _fit_line(s)),
     ]
+    rows += [("fit time" if i == 0 else "", line) for i, line in enumerate(_time_lines(s))]
     if fits.nested_planned:
         rows.append(("nested", f"{fits.nested_done} of {fits.nested_planned} inner fit jobs done"))
     rows.append(("rounds", f"{s.rounds} selection round(s)"
@@ -81,7 +100,7 @@ def status_lines(s: Summary) -> list[str]:
 
 def main(args: argparse.Namespace) -> int:
     """Print the status; exit 0 whenever it could be read (`holdfast audit` is the gate that fails)."""
-    for line in status_lines(summarize(experiment_folder(args.experiment_dir))):
+    for line in status_lines(summarize(experiment_folder(args.experiment_dir), timing=True)):
         print(line)
     return 0
 

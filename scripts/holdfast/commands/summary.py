@@ -14,6 +14,7 @@ from typing import Any
 
 from .. import display, ledger
 from .._io import read_json
+from ..balance import Balance, balance
 from ..errors import HoldfastError
 from ..foldspec import KEYS
 from ..layout import CHOICE, CONFIG_COPY, LEDGER, MANIFEST, VERDICT
@@ -32,6 +33,7 @@ class FitJobs:
     unknown: str = ""  # why the planned number could not be worked out
     nested_done: int = 0
     nested_planned: int = 0
+    balance: Balance | None = None  # how the measured fit jobs can share this machine's cores (all jobs done)
 
 
 @dataclass
@@ -158,7 +160,7 @@ def _planned(exp: Path) -> tuple[Any, str]:
         return None, f"'{exp / CONFIG_COPY}' cannot be read ({type(exc).__name__})"
 
 
-def fit_jobs(exp: Path, entries: list[dict[str, Any]]) -> FitJobs:
+def fit_jobs(exp: Path, entries: list[dict[str, Any]], timing: bool = False) -> FitJobs:
     """Fit jobs done of those the stored config plans.
 
     A (family, repeat, fold) job counts as done when its latest fit line was made on the scope's current fold
@@ -181,21 +183,73 @@ def fit_jobs(exp: Path, entries: list[dict[str, Any]]) -> FitJobs:
     out.families, out.per_fold = len(plan.families), len(plan.groups)
     out.folds, out.planned = len(plan.fold_ids), len(jobs)
 
-    def done_in(scope: str) -> int:
+    def current_in(scope: str) -> dict[tuple[Any, Any, Any], dict[str, Any]]:
         folds = ledger.events(entries, "assign_folds", scope)
         current = folds[-1]["details"].get("folds_sha256") if folds else None
         latest: dict[tuple[Any, Any, Any], dict[str, Any]] = {}
         for entry in ledger.events(entries, "fit", scope):
             d = entry["details"]
             latest[(d.get("family"), d.get("repeat"), d.get("fold"))] = d
-        return sum(1 for key, d in latest.items() if key in jobs and d.get("folds_sha256") == current
-                   and set(d.get("random_states") or {}) == ids[key[0]])
+        return {key: d for key, d in latest.items() if key in jobs and d.get("folds_sha256") == current
+                and set(d.get("random_states") or {}) == ids[key[0]]}
 
-    out.done = done_in("main")
+    def done_in(scope: str) -> int:
+        return len(current_in(scope))
+
+    main = current_in("main")
+    out.done = len(main)
+    if timing and out.done == out.planned:
+        out.balance = _balance(exp, plan, main)
     outer = int(plan.config["nested"]["k"])
     out.nested_planned = outer * len(jobs)
     out.nested_done = sum(done_in(f"o{o}") for o in range(outer))
     return out
+
+
+def usable_cores() -> int:
+    """The cores this process may run on (what `holdfast run` gives Snakemake unless told otherwise)."""
+    import os
+
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1
+
+
+def _balance(exp: Path, plan: Any, current: dict[tuple[Any, Any, Any], dict[str, Any]]) -> Balance | None:
+    """How the current fit jobs' measured in-job seconds can share this machine's cores, and whether splitting the
+    family of the longest job would help. Per-candidate seconds come from the fit files the ledger recorded (a file
+    whose bytes differ gives no suggestion); families with more than one thread a job are not judged."""
+    import hashlib
+
+    import pandas as pd
+
+    from ..layout import fit_file, group_family
+
+    if any(int(plan.config["candidates"][f].get("threads", 1)) > 1 for f in plan.families):
+        return None
+    jobs: dict[str, list[float]] = {}
+    for (group, _, _), d in sorted(current.items(), key=lambda kv: str(kv[0])):
+        if not isinstance(d.get("fit_seconds"), int | float):
+            return None
+        jobs.setdefault(str(group), []).append(float(d["fit_seconds"]))
+    if not jobs:
+        return None
+    longest = group_family(max(jobs, key=lambda part: max(jobs[part])))
+    order = [c["id"] for c in plan.families[longest]]
+    parts = [g for g in plan.groups if group_family(g) == longest]
+    seconds: dict[tuple[int, int], dict[str, float]] = {}
+    for (group, repeat, fold), d in current.items():
+        if group not in parts:
+            continue
+        path = exp / fit_file("fits", str(group), int(repeat), int(fold))
+        try:
+            if hashlib.sha256(path.read_bytes()).hexdigest() != d.get("fits_sha256"):
+                return balance(jobs, {}, {}, usable_cores())
+            table = pd.read_parquet(path, columns=["candidate", "fit_seconds"])
+        except (OSError, ValueError, KeyError):
+            return balance(jobs, {}, {}, usable_cores())
+        seconds.setdefault((int(repeat), int(fold)), {}).update(
+            {str(c): float(s) for c, s in zip(table["candidate"], table["fit_seconds"], strict=True)})
+    folds = [[by_id.get(cid, 0.0) for cid in order] for _, by_id in sorted(seconds.items())]
+    return balance(jobs, {longest: folds}, {longest: len(parts)}, usable_cores())
 
 
 def _openings(entries: list[dict[str, Any]]) -> list[Opening]:
@@ -207,8 +261,9 @@ def _openings(entries: list[dict[str, Any]]) -> list[Opening]:
             for i, e in enumerate(ledger.events(entries, "open_test"))]
 
 
-def summarize(exp: Path) -> Summary:
-    """Audit the experiment now and gather its summary (nothing is written)."""
+def summarize(exp: Path, timing: bool = False) -> Summary:
+    """Audit the experiment now and gather its summary (nothing is written); with ``timing``, also how the fit
+    jobs' measured seconds can share this machine's cores (`holdfast status`)."""
     from .. import openings
     from ..audit import IN_PROGRESS, audit
     from ..closing import target_unit_of
@@ -233,7 +288,7 @@ def summarize(exp: Path) -> Summary:
     folds = ledger.events(entries, "assign_folds")
     if folds:
         out.folds, out.folds_short = _fold_text(folds[-1]["details"])
-    out.fits = fit_jobs(exp, entries)
+    out.fits = fit_jobs(exp, entries, timing)
     out.rounds = max((int(e["details"].get("round", 0)) for e in ledger.events(entries, "round")), default=0)
     tallies = ledger.events(entries, "tally")
     if tallies:
