@@ -16,7 +16,10 @@ Scenarios:
   benchmark", 2003: Gaussian clusters on hypercube vertices), two of its informative features cut
   into quantile bins and stored as text categories;
 - mixed grid, forests in parts: the same data and candidates, the forest family with
-  ``jobs_per_fold: 4`` (one fit job per forest candidate and fold); the script is unchanged.
+  ``jobs_per_fold: 4`` (one fit job per forest candidate and fold); the script is unchanged;
+- mixed grid, lean: the forests in the jobs per fold ``holdfast status`` suggests after a plain mixed run
+  (LEAN_FOREST_JOBS) and ``diagnostics.learning_curve: false``: holdfast doing the script's work and no more
+  (it still checks, records, tallies with its optimism estimates, makes diagnostics and the report, and audits).
 
 Printed per scenario (medians over the repetitions; ratios from the same runs): wall time of the
 whole workflow and of the fit phase on each side; Σ in-job fit time (holdfast: Σ fit_seconds of
@@ -41,6 +44,7 @@ import _common as c
 
 BASELINE = Path(__file__).resolve().parent / "gridsearch_baseline.py"
 TOLERANCE = 1e-9  # CV means and test scores must agree to this; identical fits give 0.0
+LEAN_FOREST_JOBS = 2  # what `holdfast status` suggests on the plain mixed grid's kept runs
 
 
 @dataclass
@@ -97,9 +101,10 @@ def mixed_frame(dev_rows: int, seed: int) -> Any:
     return frame
 
 
-def mixed(quick: bool, forest_jobs: int = 1) -> Scenario:
+def mixed(quick: bool, forest_jobs: int = 1, curves: bool = True) -> Scenario:
     """13 candidates: logistic, random forests, histogram boosting on a synthetic set; with ``forest_jobs`` > 1 the
-    forest family's candidates are dealt into that many fit jobs per fold (candidates.<family>.jobs_per_fold)."""
+    forest family's candidates are dealt into that many fit jobs per fold (candidates.<family>.jobs_per_fold);
+    without ``curves``, no learning curve (diagnostics.learning_curve: false), which the script does not make."""
     dev_rows, trees = (800, 10) if quick else (20_000, 200)
 
     def make(workdir: Path) -> None:
@@ -132,10 +137,15 @@ def mixed(quick: bool, forest_jobs: int = 1) -> Scenario:
         }
         if forest_jobs > 1:
             config["candidates"]["forest"]["jobs_per_fold"] = forest_jobs
+        if not curves:
+            config["diagnostics"] = {"learning_curve": False}
         (workdir / "config.yaml").write_text(yaml.safe_dump(config, sort_keys=False))
 
     label = (f"mixed grid (13 candidates: logistic, forests of {trees} trees, histogram boosting; "
              f"{dev_rows:,} development rows of make_classification)")
+    if not curves:
+        return Scenario("mixed-lean", label[:-1] + f"; forests in {forest_jobs} fit jobs per fold, no learning "
+                        "curve: the script's work)", make)
     if forest_jobs > 1:
         return Scenario("mixed-parts", label[:-1] + f"; forests in {forest_jobs} fit jobs per fold)", make)
     return Scenario("mixed", label, make)
@@ -345,11 +355,12 @@ def judge(target: str, value: float | None, limit: float, quick: bool, unit: str
 def main(argv: list[str] | None = None) -> int:
     """Parse options, run both scenarios, print the tables."""
     p = c.parser(__doc__)
-    p.add_argument("--only", choices=("demo", "mixed", "mixed-parts"), help="run one scenario")
+    p.add_argument("--only", choices=("demo", "mixed", "mixed-parts", "mixed-lean"), help="run one scenario")
     args = p.parse_args(argv)
     reps = c.reps_of(args)
     c.header("holdfast head to head: the whole workflow against the GridSearchCV script", args, reps)
-    scenarios = [s for s in (demo(args.quick), mixed(args.quick), mixed(args.quick, forest_jobs=4))
+    scenarios = [s for s in (demo(args.quick), mixed(args.quick), mixed(args.quick, forest_jobs=4),
+                             mixed(args.quick, forest_jobs=LEAN_FOREST_JOBS, curves=False))
                  if args.only in (None, s.name)]
     with c.workspace("head-to-head", args.keep) as root:
         results = {s.name: report(s, run_scenario(s, reps, args.cores, root), args.cores) for s in scenarios}
@@ -363,11 +374,12 @@ def main(argv: list[str] | None = None) -> int:
             print(f"        Snakemake alone needs {floor:.2f} s for this job graph with empty jobs, "
                   f"{100 * floor / script:.0f} % of the script's {script:.2f} s; 1.3x leaves "
                   f"{1.3 * script - floor:.2f} s above it for all of holdfast's work")
-    for name in ("mixed", "mixed-parts"):
+    for name in ("mixed", "mixed-parts", "mixed-lean"):
         if name not in results:
             continue
         m = results[name]
-        label = "mixed grid" + (", forests in parts" if name == "mixed-parts" else "")
+        label = "mixed grid" + {"mixed": "", "mixed-parts": ", forests in parts",
+                                "mixed-lean": ", forests in parts, no learning curve"}[name]
         judge(f"{label}, whole workflow <= 1.0x the script", c.ratio(m[f"holdfast {wall}"], m[f"script {wall}"]),
               1.0, args.quick, "x")
         judge(f"{label}, holdfast fit-phase efficiency >= 90 %", m["holdfast parallel efficiency, fit phase"], 0.9,
