@@ -8,11 +8,13 @@ refit. Functions, methods and other callables are refused whatever their name.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import io
 import json
 import platform
 import zipfile
+from collections.abc import Iterator
 from functools import cache
 from importlib.metadata import PackageNotFoundError, version
 from typing import Any
@@ -341,11 +343,36 @@ def _write_bytes(path: str, data: bytes) -> None:
         handle.write(data)
 
 
+@contextlib.contextmanager
+def spare_cores(estimator: Any, workers: int, params: dict[str, Any]) -> Iterator[None]:
+    """While fitting, let an estimator with ``n_jobs`` (forests, bagging, neighbours) use ``workers`` cores; put its
+    ``n_jobs`` back afterwards, so the saved model's bytes do not depend on the cores the job had.
+
+    scikit-learn's ``n_jobs`` divides the work (a forest draws every tree's seed before fitting any), so the fitted
+    model is the same (common practice in scikit-learn's design; checked for forests in tests/test_refit_cores.py).
+    An ``n_jobs`` the candidate sets itself is left alone.
+    """
+    current = estimator.get_params(deep=False).get("n_jobs", "absent")
+    if current == "absent" or "n_jobs" in params or workers <= max(1, int(current or 1)):
+        yield
+        return
+    estimator.set_params(n_jobs=workers)
+    try:
+        yield
+    finally:
+        estimator.set_params(n_jobs=current)
+
+
 def refit_winner(choice_path: str, dev_path: str, spec: dict[str, Any], threads: int, allowed: list[str],
                  model_path: str, provenance_path: str, ledger_path: str, rule: str | None = None,
-                 folds_path: str | None = None, scope: str = "main") -> dict[str, Any]:
+                 folds_path: str | None = None, scope: str = "main", workers: int | None = None) -> dict[str, Any]:
     """Fit the chosen candidate on all development rows (nested: the rows of ``folds_path``);
-    write model.skops and provenance.json (where the model came from: spec, data, files, versions)."""
+    write model.skops and provenance.json (where the model came from: spec, data, files, versions).
+
+    Numeric libraries are limited to ``threads`` (the families' declared threads). ``workers`` (the cores the job
+    was given, more in a local run) reach the fit only through the estimator's own ``n_jobs`` (see
+    :func:`spare_cores`), so the model file and its numbers are those of a fit with ``threads``.
+    """
     import skops.io as sio
 
     limit_threads(threads)
@@ -356,7 +383,8 @@ def refit_winner(choice_path: str, dev_path: str, spec: dict[str, Any], threads:
         dev = dev[dev[KEY].isin(set(pd.read_parquet(folds_path, columns=[KEY])[KEY]))].reset_index(drop=True)
     x, y = split_xy(dev, spec)
     model = build_pipeline(candidate, x, threads, allowed)
-    model.fit(x, y)
+    with spare_cores(model.named_steps["model"], workers or threads, candidate["params"]):
+        model.fit(x, y)
     data = sio.dumps(model)
     types, refused = _problems(data, None)
     if refused:  # checked before writing: a model holdfast would refuse to load is never saved

@@ -145,10 +145,13 @@ def refit_winner(smk: Any) -> None:
     """Rule refit_winner -> holdfast.refit.refit_winner."""
     from .refit import refit_winner as run_refit
 
-    card = run_refit(smk.input.choice, smk.input.dev, json.loads(smk.params.spec), int(smk.threads),
+    declared = int(getattr(smk.params, "declared_threads", smk.threads))
+    card = run_refit(smk.input.choice, smk.input.dev, json.loads(smk.params.spec), declared,
                      json.loads(smk.params.allowed), smk.output.model, smk.output.provenance, smk.params.ledger,
-                     rule=smk.rule, folds_path=getattr(smk.input, "folds", None), scope=_scope(smk))
-    print(f"refit {card['candidate']['id']} on {card['trained_on']['rows']} rows")
+                     rule=smk.rule, folds_path=getattr(smk.input, "folds", None), scope=_scope(smk),
+                     workers=int(smk.threads))
+    print(f"refit {card['candidate']['id']} on {card['trained_on']['rows']} rows; {int(smk.threads)} core(s) for "
+          f"the estimator's own n_jobs, numeric libraries limited to {declared} thread(s)")
 
 
 def open_test(smk: Any) -> None:

@@ -4,6 +4,7 @@ import os
 import re
 import sys
 from pathlib import Path
+from snakemake.exceptions import WorkflowError
 
 sys.path.insert(0, str(Path(workflow.basedir) / "scripts"))
 
@@ -74,6 +75,19 @@ def nested_scores():
 
 def max_threads():
     return max(PLAN.threads(f) for f in PLAN.families)
+
+
+def refit_threads():
+    """Cores for the refit: in a local run every core Snakemake was given (the refit often runs alone at the end,
+    and holdfast.refit uses the extra cores only through an estimator's own n_jobs, which splits work, not numbers);
+    on a cluster, or when the cores are unknown, the families' declared threads."""
+    declared = max_threads()
+    if not (workflow.local_exec and workflow.is_main_process):
+        return declared
+    try:
+        return max(declared, int(workflow.cores))
+    except (WorkflowError, TypeError, ValueError):
+        return declared
 
 
 def all_targets():

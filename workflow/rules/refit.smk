@@ -13,7 +13,8 @@ rule refit_winner:
         allowed=ALLOWED,
         ledger=LEDGER,
         code=code_hash("refit_winner"),
-    threads: max_threads()
+        declared_threads=max_threads(),  # what numeric libraries are limited to; extra cores go to n_jobs only
+    threads: refit_threads()
     # Before the learning-curve jobs, which become ready with it: the refit is the longest job after the tally and
     # the one the opening waits for. With equal priorities the greedy scheduler took two learning-curve jobs first
     # (larger inputs) and left the refit to run alone at the end (mixed grid: 27.6 s alone after 213 s).
