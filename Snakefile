@@ -29,7 +29,9 @@ if not PLAN.closed:
     include: "workflow/rules/diagnostics.smk"
 
 
-if PLAN.closed and verdict_to_restore():
+# A job process (a cluster job, or the Snakemake plain Snakemake starts per job without --force-use-threads) is never
+# "closed", but the one restoring the verdict must still find its rule.
+if (PLAN.closed or not workflow.is_main_process) and verdict_to_restore():
 
     include: "workflow/rules/restore.smk"
 
