@@ -429,67 +429,84 @@ def stage_times(workdir: Path, run: WorkflowRun) -> list[tuple[str, int, float]]
 # --------------------------------------------------------------------------- Snakemake's own floor
 
 # The job graph of a holdfast run and opening (seal, round, folds, FITS fit jobs, tally, refit, CURVES learning-curve
-# jobs, diagnostics, report; then the opening and the report again), each job an empty ``script:`` that only creates
-# its output. Run with the same scheduler options holdfast passes, it measures what Snakemake itself costs for this
-# graph: its start-up, parse and DAG, one cold Python process per job and its scheduling, and its exit.
+# jobs, diagnostics, report; then the opening and the report again), each job shaped like holdfast's: a ``run:`` body
+# in a thread of Snakemake (--force-use-threads) that starts a Python process, which only creates the outputs. Run with
+# the same scheduler options holdfast passes, it measures what Snakemake itself costs for this graph: its start-up,
+# parse and DAG, one Python process per job and its scheduling, and its exit.
 FLOOR_SNAKEFILE = """\
+import subprocess, sys
+
 FITS = int(config["fits"])
 CURVES = int(config["curves"])
-NOOP = "noop.py"
+
+
+def noop(output):
+    subprocess.run([sys.executable, "-P", "noop.py", *output], check=True)
 
 rule seal:
     output: "sealed.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule record_round:
     input: "sealed.txt"
     output: "round.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule assign_folds:
     input: "round.txt"
     output: "folds.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule fit_family:
     input: "folds.txt"
     output: "fits/{i}.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule tally:
     input: expand("fits/{i}.txt", i=range(FITS))
     output: "choice.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule refit_winner:
     input: "choice.txt"
     output: "model.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule learning_curve:
     input: "choice.txt"
     output: "curves/{j}.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule diagnostics:
     input: "choice.txt", expand("curves/{j}.txt", j=range(CURVES))
     output: "diagnostics.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule report:
     input: "diagnostics.txt", "model.txt"
     output: "report.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule open_test:
     input: "report.txt"
     output: "verdict.txt"
-    script: NOOP
+    run:
+        noop(output)
 
 rule report_opened:
     input: "verdict.txt"
     output: "opened.txt"
-    script: NOOP
+    run:
+        noop(output)
 """
 
 
@@ -503,11 +520,11 @@ def snakemake_floor(shape: dict[str, int], cores: int, root: Path, logs: Path) -
     """Snakemake alone on holdfast's job graph with empty jobs: the 'run' (to the report) and the 'open' command."""
     root.mkdir(parents=True, exist_ok=True)
     (root / "floor.smk").write_text(FLOOR_SNAKEFILE)
-    (root / "noop.py").write_text('for path in snakemake.output:\n    open(path, "w").close()\n')
+    (root / "noop.py").write_text('import sys\nfor path in sys.argv[1:]:\n    open(path, "w").close()\n')
     out = {}
     for label, target in (("run", "report.txt"), ("open", "opened.txt")):
         cmd = [PYTHON, "-m", "snakemake", "-s", "floor.smk", "--cores", str(cores), "--scheduler", "greedy",
-               "--config", f"fits={shape['fits']}", f"curves={shape['curves']}", "--", target]
+               "--force-use-threads", "--config", f"fits={shape['fits']}", f"curves={shape['curves']}", "--", target]
         run = measure(cmd, root, logs, f"floor-{label}")
         if run.rc != 0:
             raise BenchError(f"Snakemake alone on the floor graph failed in {root} (exit {run.rc}):\n{run.tail()}")
@@ -516,8 +533,9 @@ def snakemake_floor(shape: dict[str, int], cores: int, root: Path, logs: Path) -
 
 
 FLOOR_NOTE = ("Snakemake alone: the same job graph (seal, round, folds, the run's fit and learning-curve jobs, tally, "
-              "refit, diagnostics, report; then the opening and the report again) with empty script jobs, the same "
-              "--cores and --scheduler greedy; what any workflow built of these Snakemake jobs pays before any work")
+              "refit, diagnostics, report; then the opening and the report again) with empty jobs shaped like "
+              "holdfast's (a run: body in a thread starting a Python process), the same --cores, --scheduler greedy "
+              "and --force-use-threads; what any workflow built of these Snakemake jobs pays before any work")
 
 
 # --------------------------------------------------------------------------- tables

@@ -68,6 +68,7 @@ def run_workflow(workdir: Path, *args: str, configfile: str | None = "config.yam
                  timeout: int = 1200) -> subprocess.CompletedProcess[str]:
     """Run the real Snakemake on the repository's Snakefile inside ``workdir`` (jobs forked by the warm worker)."""
     cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(workdir), "--cores", "2",
+           "--force-use-threads",
            *args]
     if configfile is not None:  # last: --configfile takes every following word
         cmd += ["--configfile", str(workdir / configfile)]

@@ -374,20 +374,6 @@ def test_a_write_removes_the_temporary_file_a_killed_writer_left(tmp_path: Path)
     assert sorted(p.name for p in tmp_path.iterdir()) == [".ranking.parquet.a1b2c3.tmp", "choice.json"]
 
 
-def test_the_job_script_is_dated_1970_and_restored_when_edited(tmp_path: Path) -> None:
-    # Snakemake re-runs a script rule whose script is newer than its outputs; holdfast's one job script
-    # must never be, so that only holdfast's code-hash params decide which rules re-run.
-    from holdfast.plan import job_script
-
-    path = Path(job_script(str(tmp_path / "holdfast")))
-    assert path.stat().st_mtime == 0
-    text = path.read_text()
-    assert "from holdfast.steps import StepError, run" in text and "run(snakemake)" in text
-    path.write_text("print('edited')\n")
-    assert Path(job_script(str(tmp_path / "holdfast"))) == path
-    assert path.read_text() == text and path.stat().st_mtime == 0
-
-
 @pytest.mark.parametrize(("values", "expected"), [
     ({"cv_corrected_bbc": 0.85, "cv_corrected_tibshirani": 0.86}, "inside"),
     ({"cv_corrected_bbc": 0.70, "cv_corrected_tibshirani": 0.71}, "test better than cv"),

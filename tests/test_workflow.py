@@ -65,12 +65,6 @@ def test_second_run_has_nothing_to_do(bc_copy: Path) -> None:
     again = run_workflow(bc_copy)
     assert again.returncode == 0
     assert tree_digest(bc_copy / "results") == before
-    # Every rule runs one generated script; a touched (or rewritten) script must not re-run every rule.
-    script = bc_copy / ".snakemake" / "holdfast" / "run_job.py"
-    script.write_text(script.read_text() + "# edited\n")
-    touched = run_workflow(bc_copy, "-n")
-    assert touched.returncode == 0 and planned_jobs(touched) == [], touched.stdout[-2000:]
-    assert script.stat().st_mtime == 0 and "# edited" not in script.read_text()
 
 
 def test_fit_records_are_flat_rows_per_candidate(bc_finished: Path) -> None:

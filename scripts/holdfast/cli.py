@@ -23,7 +23,8 @@ SNAKEFILE = REPO / "Snakefile"
 OWN_OPTIONS = ("--configfile", "--configfiles", "--config", "-C", "--snakefile", "-s", "--directory", "-d")
 CORE_OPTIONS = ("--cores", "-c", "--jobs", "-j", "--executor", "-e", "--profile", "--workflow-profile")
 DRY_RUN = ("-n", "--dry-run", "--dryrun")
-PLAIN_FLAGS = (*DRY_RUN, "-p", "--printshellcmds", "--rerun-incomplete", "--ri", "-k", "--keep-going")
+PLAIN_FLAGS = (*DRY_RUN, "-p", "--printshellcmds", "--rerun-incomplete", "--ri", "-k", "--keep-going",
+               "--force-use-threads")
 PLAIN_VALUED = ("--cores", "-c", "--jobs", "-j", "--scheduler")
 """Snakemake options that can neither force, delete, touch nor narrow a run (exact spellings only: argparse would
 also take an abbreviation such as --forcer), so a command line of only these needs no parse by Snakemake's parser."""
@@ -187,6 +188,10 @@ def _snakemake(configfile: Path, extra: list[str], exp: Path, show: bool, label:
         # file temp(), so the ILP's extra aim (deleting temporary files early) never applies, and the greedy
         # scheduler still starts jobs in priority order (longest fits first).
         argv += ["--scheduler", "greedy"]
+    if "--force-use-threads" not in extra:
+        # Every rule's `run:` block only hands its job to a small process of its own (holdfast.job); in a thread of
+        # this Snakemake, not in a new Snakemake per job that imports Snakemake and parses the workflow again.
+        argv.append("--force-use-threads")
     argv += extra
     env = {**_job_env(), "HOLDFAST_CLOSING_BY_CLI": "1"}
     env.pop("HOLDFAST_OPENING", None)  # only 'holdfast open' says which opening its Snakemake makes (env_extra)

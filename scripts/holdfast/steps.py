@@ -1,7 +1,7 @@
 """Adapters from a Snakemake job's named fields to the package functions.
 
-Every rule runs one generated script (``plan.job_script``) that calls :func:`run` with
-Snakemake's job object (input, output, params, wildcards, threads, log, rule, config). The adapter
+Every rule's job reaches :func:`run` as a :class:`holdfast.job.Job` (input, output, params, wildcards,
+threads, log, rule, config as plain data; see holdfast.job). The adapter
 sends output to the rule's log before any heavy import, reads named fields and calls
 exactly one package function. A holdfast error becomes one line in the log and on
 stderr, and the job's exit code.

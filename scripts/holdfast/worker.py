@@ -2,13 +2,13 @@
 
 Every Snakemake job is a new Python process, and a job's imports (pandas, pyarrow, scikit-learn) cost about
 two seconds before any work, which on a laptop is most of what a small fit job costs. ``holdfast run`` and
-``holdfast open`` start this worker before Snakemake (local runs only); the job script then hands its job to
-the worker over a Unix socket, with its own stdout and stderr, and the worker forks a child that runs the step
-with everything already imported. The job script waits for the child's exit code, so Snakemake sees an
-ordinary job. If the job script dies (Snakemake was killed), the child is killed too. When no worker answers
-(a cluster job, plain ``snakemake``, ``HOLDFAST_NO_WORKER=1``) the job script runs the step itself, as before.
+``holdfast open`` start this worker before Snakemake (local runs only); the job process (holdfast.job) then
+hands its job to the worker over a Unix socket, with its own stdout and stderr, and the worker forks a child that
+runs the step with everything already imported. The job process waits for the child's exit code, so Snakemake sees an
+ordinary job. If the job process dies (Snakemake was killed), the child is killed too. When no worker answers
+(a cluster job, plain ``snakemake``, ``HOLDFAST_NO_WORKER=1``) the job process runs the step itself, as before.
 
-Only the standard library is imported at module level: the job script imports :func:`submit` cheaply.
+Only the standard library is imported at module level: the job process imports :func:`submit` cheaply.
 """
 
 from __future__ import annotations
@@ -31,7 +31,7 @@ HEADER = struct.Struct("!Q")
 PRELOAD = ("numpy", "pandas", "pyarrow", "pyarrow.parquet", "scipy.stats", "sklearn.base", "sklearn.pipeline",
            "sklearn.compose", "sklearn.impute", "sklearn.preprocessing", "sklearn.metrics", "sklearn.linear_model",
            "sklearn.ensemble", "sklearn.tree", "sklearn.neighbors", "sklearn.model_selection", "threadpoolctl",
-           "snakemake.iocontainers", "holdfast.steps", "holdfast.fit", "holdfast.folds", "holdfast.seal",
+           "holdfast.job", "holdfast.steps", "holdfast.fit", "holdfast.folds", "holdfast.seal",
            "holdfast.tally", "holdfast.refit", "holdfast.rounds", "skops.io", "holdfast.opening")
 # What only the later steps import (plots, the report, diagnostics, the audit): loaded after the socket is up, so a job
 # that comes meanwhile waits for these (under a second) instead of running cold; every step that draws sets Agg too.
@@ -44,7 +44,7 @@ def _recv_exact(conn: socket.socket, size: int) -> bytes:
     while left:
         chunk = conn.recv(min(left, 1 << 20))
         if not chunk:
-            raise ConnectionError("the job script closed the connection")
+            raise ConnectionError("the job process closed the connection")
         chunks.append(chunk)
         left -= len(chunk)
     return b"".join(chunks)
@@ -87,7 +87,8 @@ def _connect(address: str) -> socket.socket | None:
 
 
 def submit(address: str, job: Any) -> int | None:
-    """Run ``job`` (Snakemake's job object) in the worker; its exit code, or None when no worker answers."""
+    """Run ``job`` (a plain description, :func:`holdfast.job.describe`) in the worker; its exit code, or None when
+    no worker answers."""
     payload = pickle.dumps({"job": job, "cwd": os.getcwd(), "env": dict(os.environ)}, protocol=4)
     conn = _connect(address)
     if conn is None:
@@ -116,7 +117,7 @@ def _run_child(conn: socket.socket) -> None:
     os.environ.pop(ENV, None)
     os.environ.pop(PID_ENV, None)
 
-    def watch() -> None:  # the job script died (its Snakemake was killed): this job must not outlive it
+    def watch() -> None:  # the job process died (its Snakemake was killed): this job must not outlive it
         try:
             if not conn.recv(1):
                 os.kill(os.getpid(), signal.SIGKILL)
@@ -126,10 +127,11 @@ def _run_child(conn: socket.socket) -> None:
     threading.Thread(target=watch, daemon=True).start()
     code = 1
     try:
+        from holdfast.job import Job
         from holdfast.steps import StepError, run
 
         try:
-            run(request["job"])
+            run(Job(request["job"]))
             code = 0
         except StepError:
             code = 1  # the one-line message is already in the log and on stderr

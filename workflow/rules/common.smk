@@ -9,7 +9,8 @@ from snakemake.exceptions import WorkflowError
 sys.path.insert(0, str(Path(workflow.basedir) / "scripts"))
 
 from holdfast.layout import group_family  # noqa: E402
-from holdfast.plan import checked_config_or_exit, code_hash, job_script, prepare_or_exit  # noqa: E402
+from holdfast.job import describe, hand_over  # noqa: E402
+from holdfast.plan import checked_config_or_exit, code_hash, prepare_or_exit  # noqa: E402
 
 # The config is read as plain data by holdfast's strict reader (no tags, no template marker, no repeated keys):
 # the demo's config/config.yaml when no --configfile is given, and every --configfile is read again and must
@@ -17,8 +18,6 @@ from holdfast.plan import checked_config_or_exit, code_hash, job_script, prepare
 checked_config_or_exit(config, [str(f) for f in workflow.overwrite_configfiles], workflow.config_settings.config,
                        "config/config.yaml")
 PLAN = prepare_or_exit(config, main=workflow.is_main_process)
-# Every rule's body: one generated script that hands the job to holdfast.steps.run (see plan.job_script).
-JOB_SCRIPT = job_script()
 LEDGER = PLAN.path("ledger.jsonl")
 SPEC = json.dumps(PLAN.spec, sort_keys=True)  # column roles, task and test partition
 METRICS = json.dumps(PLAN.config["metrics"])
@@ -30,6 +29,14 @@ wildcard_constraints:
     repeat=r"\d+",
     fold=r"\d+",
     outer=r"\d+",
+
+
+def run_step(input, output, params, wildcards, threads, resources, log, rule):
+    """Every rule's body: the job, as plain data, runs in a small process of its own that hands it to the local
+    worker or runs holdfast.steps itself (holdfast.job). A failed step has already written its one-line message."""
+    code = hand_over(describe(rule, input, output, params, wildcards, threads, resources, log, config))
+    if code:
+        raise WorkflowError(f"holdfast step {rule} failed (exit code {code}); its log is {log[0]}")
 
 
 def family_json(wildcards):

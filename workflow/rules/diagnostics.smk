@@ -23,8 +23,8 @@ rule learning_curve:
     resources:
         mem_mb=4000,
         runtime=60,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)
 
 
 # diagnostics: validation curves from the stored fits, the learning curve, and the winner's out-of-fold confusion
@@ -52,5 +52,5 @@ rule diagnostics:
     resources:
         mem_mb=2000,
         runtime=30,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)

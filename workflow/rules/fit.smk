@@ -21,5 +21,5 @@ rule fit_family:
     resources:
         mem_mb=family_resource("mem_mb"),
         runtime=family_resource("runtime"),
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)

@@ -20,5 +20,5 @@ rule assign_folds:
     resources:
         mem_mb=PLAN.data_mem_mb(2000),
         runtime=30,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)

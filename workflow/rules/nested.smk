@@ -88,8 +88,8 @@ rule score_outer:
     resources:
         mem_mb=2000,
         runtime=30,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)
 
 
 rule nested_summary:
@@ -106,5 +106,5 @@ rule nested_summary:
     resources:
         mem_mb=1000,
         runtime=10,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)

@@ -24,5 +24,5 @@ rule open_test:
     resources:
         mem_mb=4000,
         runtime=30,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)

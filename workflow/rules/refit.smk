@@ -22,5 +22,5 @@ rule refit_winner:
     resources:
         mem_mb=4000,
         runtime=60,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)

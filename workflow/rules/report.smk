@@ -20,5 +20,5 @@ rule report:
     resources:
         mem_mb=2000,
         runtime=10,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)

@@ -10,5 +10,5 @@ rule restore_verdict:
     resources:
         mem_mb=500,
         runtime=5,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)

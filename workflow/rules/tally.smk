@@ -13,8 +13,8 @@ rule record_round:
     resources:
         mem_mb=1000,
         runtime=10,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)
 
 
 # tally: per-candidate summaries over folds, the ranking and the choice of winner.
@@ -44,5 +44,5 @@ rule tally:
     resources:
         mem_mb=2000,
         runtime=30,
-    script:
-        JOB_SCRIPT
+    run:
+        run_step(input, output, params, wildcards, threads, resources, log, rule)
