@@ -80,7 +80,7 @@ def _plain(value: Any) -> Any:
         return value
     if isinstance(value, dict):
         return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)) or hasattr(value, "__iter__"):
+    if hasattr(value, "__iter__"):  # lists, tuples and Snakemake's named lists
         return [_plain(v) for v in value]
     return value
 
@@ -108,8 +108,8 @@ def hand_over(description: dict[str, Any]) -> int:
     scripts = str(Path(__file__).resolve().parents[1])
     env["PYTHONPATH"] = os.pathsep.join(p for p in (scripts, env.get("PYTHONPATH", "")) if p)
     payload = pickle.dumps(description, protocol=4)
-    return subprocess.run([sys.executable, "-P", str(Path(__file__).resolve()), "--stdin"], input=payload,
-                          env=env, check=False).returncode
+    return subprocess.run([sys.executable, "-P", str(Path(__file__).resolve())], input=payload, env=env,
+                          check=False).returncode
 
 
 def main() -> int:
