@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-from conftest import REPO, breast_cancer_frame, run_workflow, tree_digest, write_config
+from conftest import REPO, breast_cancer_frame, run_cli, run_workflow, tree_digest, write_config
 from holdfast.dataset import hash_unit
 
 Edit = Callable[[Path, dict[str, Any]], None]
@@ -717,6 +717,12 @@ CLI_RUN = {"metric-binary-on-three-classes", "metric-default-on-three-classes", 
            "experiment-trailing-newline", "reopen-reason-blank", "reopen-reason-repeated", "results-symlink-outside",
            "experiment-symlink-outside"}
 
+# Through the real `holdfast run`, whose full check runs in a child of the command's job worker (holdfast.worker.call,
+# holdfast.cli._in_worker): one case per error class and per kind of check (config, data, estimator import, metric,
+# folds, a sealed experiment's data); the error must come back as the same line and exit code.
+WORKER_RUN = {"target-column-missing", "k-above-smallest-class", "estimator-os-system", "scorer-unknown",
+              "sealed-data-file-deleted", "labels-differ-by-case"}
+
 
 def prepared_case(workdir: Path, edit: Edit) -> dict[str, Any]:
     """The finished experiment's config with one case's edit applied (and written to config.yaml)."""
@@ -765,6 +771,24 @@ def test_bad_input_stops_the_real_workflow_with_one_line(bc_copy: Path, edit: Ed
     assert "Traceback" not in result.stderr, result.stderr[-3000:]
     assert snapshot(results) == before, "a bad input must not write under results/"
     assert not (bc_copy / "escape").exists() and not (bc_copy / "results" / "team").exists()
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(("edit", "exit_code", "pattern"), [c for c in CASES if c.id in WORKER_RUN])
+def test_bad_input_stops_holdfast_run_from_its_worker_with_one_line(bc_copy: Path, edit: Edit, exit_code: int,
+                                                                     pattern: str) -> None:
+    """`holdfast run` checks in its worker's child: the same one line and exit code, nothing under results/."""
+    prepared_case(bc_copy, edit)
+    results = bc_copy / "results"
+    before = snapshot(results)
+
+    result = run_cli(bc_copy, "run", "config.yaml", "--cores", "2")
+
+    last = last_stderr_line(result.stderr)
+    assert result.returncode == exit_code, result.stdout + result.stderr
+    assert last.startswith("holdfast:") and re.search(pattern, last), result.stderr
+    assert "Traceback" not in result.stderr and "worker" not in result.stderr, result.stderr
+    assert snapshot(results) == before, "a refused run must not write under results/"
 
 
 @pytest.mark.slow

@@ -14,6 +14,7 @@ import subprocess
 import sys
 import time
 from pathlib import Path
+from typing import Any
 
 import pytest
 from conftest import REPO
@@ -111,3 +112,56 @@ def test_ctrl_c_before_the_request_leaves_the_ready_snakemake_quiet(tmp_path: Pa
     _, err = process.communicate("", timeout=120)
     assert "Traceback" not in err and "KeyboardInterrupt" not in err, err
     assert process.returncode == 0
+
+
+@pytest.fixture(scope="module")
+def started_worker(tmp_path_factory: pytest.TempPathFactory) -> Any:
+    """A real worker process, as `holdfast run` starts one; yields (address, pid)."""
+    address = str(tmp_path_factory.mktemp("worker") / "w.sock")
+    process = subprocess.Popen([sys.executable, "-m", "holdfast.worker", address], env=ENV,
+                               stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    yield address, str(process.pid)
+    process.terminate()
+    process.wait(timeout=30)
+
+
+def test_a_call_in_the_worker_runs_in_the_callers_folder_and_environment(
+        started_worker: tuple[str, str], tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+        capfd: pytest.CaptureFixture[str]) -> None:
+    address, pid = started_worker
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setenv("HOLDFAST_TEST_MARK", "sent")
+    assert worker.call(address, "os:getcwd", pid=pid) == str(tmp_path)  # waits for the worker's imports first
+    assert worker.call(address, "os:getenv", "HOLDFAST_TEST_MARK", pid=pid) == "sent"
+    assert worker.call(address, "os:getpid", pid=pid) not in (os.getpid(), int(pid))  # a forked child
+    worker.call(address, "builtins:print", "printed by the child", pid=pid)
+    assert "printed by the child" in capfd.readouterr().out  # its stdout is the caller's
+
+
+def test_a_call_in_the_worker_raises_what_the_function_raised(started_worker: tuple[str, str], tmp_path: Path,
+                                                              capfd: pytest.CaptureFixture[str]) -> None:
+    from holdfast.config import read_yaml
+    from holdfast.errors import ConfigError
+
+    address, pid = started_worker
+    missing = str(tmp_path / "missing.yaml")
+    with pytest.raises(ConfigError) as here:
+        read_yaml(missing)
+    with pytest.raises(ConfigError) as there:
+        worker.call(address, "holdfast.config:read_yaml", missing, pid=pid)
+    assert there.value.format_message() == here.value.format_message()
+    assert there.value.exit_code == here.value.exit_code
+    assert "Traceback" not in capfd.readouterr().err  # a deliberate error is one line, as in the caller
+    # An error holdfast did not raise on purpose: its traceback on the caller's stderr, a RuntimeError naming it.
+    with pytest.raises(RuntimeError, match="ZeroDivisionError in holdfast's worker"):
+        worker.call(address, "operator:truediv", 1, 0, pid=pid)
+    assert "ZeroDivisionError" in capfd.readouterr().err
+
+
+def test_a_call_without_a_worker_says_so_at_once(tmp_path: Path) -> None:
+    ended = subprocess.Popen([sys.executable, "-c", "pass"])
+    ended.wait()
+    t0 = time.monotonic()
+    with pytest.raises(worker.NoAnswerError):
+        worker.call(str(tmp_path / "none.sock"), "os:getcwd", pid=str(ended.pid))
+    assert time.monotonic() - t0 < 5

@@ -377,28 +377,56 @@ REOPENING_STATES = ("opened-more-than-once", "opened-other-model")
 
 def _finish(exp: Path, target_unit: str | None = None) -> int:
     """Audit now and print the closing lines; exit 1 for any problem beyond :data:`REOPENING_STATES`."""
-    from .closing import finish
-
-    result, lines = finish(exp, target_unit)
+    result, lines = _in_worker("holdfast.closing:finish", exp, target_unit)
     for line in lines:
         _say(line)
     return 1 if any(p["code"] not in REOPENING_STATES for p in result["problems"]) else 0
+
+
+def _in_worker(target: str, *args: Any) -> Any:
+    """``module:function(*args)`` in a child of this command's worker when one runs, else in this process.
+
+    The worker imports pandas, pyarrow and scikit-learn for the jobs anyway; the command's own heavy work (the
+    full check before a seal, the audits) done there spares the command importing them again on the same two
+    cores while the worker and Snakemake start. Errors come back as the same exceptions, printed output goes to
+    this command's stdout and stderr.
+    """
+    if _WORKER:
+        from .worker import NoAnswerError, call
+
+        try:
+            return call(_WORKER["address"], target, *args, pid=_WORKER["pid"])
+        except NoAnswerError:
+            pass  # the worker could not take it (it ended): do it here
+    import importlib
+
+    module, _, name = target.partition(":")
+    return getattr(importlib.import_module(module), name)(*args)
+
+
+def full_check(raw: dict[str, Any], results: str) -> dict[str, Any]:
+    """plan.prepare in full (data, metrics, estimators, folds, overlap); record and return the facts it found."""
+    from ._io import write_json
+    from .plan import cached_facts, prepare
+
+    plan = prepare(raw, main=True, results=results)
+    write_json(cached_facts(raw)[1], plan.facts)
+    return plan.facts
 
 
 def _prepare_cached(raw: dict[str, Any], results: str = "results") -> Any:
     """plan.prepare in full the first time a config and its data are seen; later with the recorded facts only.
 
     The facts are written after a full check passed, so the Snakefile's main process (and the next run) skip
-    re-reading the data and importing scikit-learn for checks that already passed.
+    re-reading the data and importing scikit-learn for checks that already passed. The full check runs in the
+    worker when there is one (see _in_worker); the guards that read this command's options run here.
     """
-    from ._io import write_json
     from .plan import cached_facts, prepare
 
-    facts, path = cached_facts(raw)
-    plan = prepare(raw, main=True, results=results, facts=facts)
+    facts, _ = cached_facts(raw)
     if facts is None:
-        write_json(path, plan.facts)
-    return plan
+        facts = _in_worker("holdfast.cli:full_check", raw, results)
+    return prepare(raw, main=True, results=results, facts=facts)
 
 
 def _run(args: argparse.Namespace, extra: list[str]) -> int:
@@ -456,9 +484,7 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
     if not (exp / MODEL).exists() or not (exp / CHOICE).exists():
         raise SealedAccessError(f"experiment '{exp}' has no refit winner yet; run 'holdfast run {config_path}' "
                                 "first")
-    from .audit import audit
-
-    before = audit(str(exp))
+    before = _in_worker("holdfast.audit:audit", str(exp))
     # After a first opening, a reason in the config allows another: the audit then names that state, which is
     # no reason to refuse the opening the reason was written for.
     expected = REOPENING_STATES if plan.opened else ()

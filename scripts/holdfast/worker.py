@@ -16,6 +16,7 @@ from __future__ import annotations
 import contextlib
 import os
 import pickle
+import select
 import signal
 import socket
 import struct
@@ -27,16 +28,20 @@ ENV = "HOLDFAST_WORKER"
 PID_ENV = "HOLDFAST_WORKER_PID"  # the worker's process: a job that finds no socket yet waits while it runs
 STARTUP_WAIT = 60.0  # seconds a job waits for a worker that is still importing (about 2 s alone, more when busy)
 HEADER = struct.Struct("!Q")
+# Seconds the worker waits, once ready, for a first connection before it starts the later imports: the command that
+# started it is usually polling for it already (its check or audit), and an import under way would hold that up.
+FIRST_WAIT = 0.25
 # What the steps import; loaded once in the worker so that no job pays for it again.
 PRELOAD = ("numpy", "pandas", "pyarrow", "pyarrow.parquet", "scipy.stats", "sklearn.base", "sklearn.pipeline",
            "sklearn.compose", "sklearn.impute", "sklearn.preprocessing", "sklearn.metrics", "sklearn.linear_model",
            "sklearn.ensemble", "sklearn.tree", "sklearn.neighbors", "sklearn.model_selection", "threadpoolctl",
            "holdfast.job", "holdfast.steps", "holdfast.fit", "holdfast.folds", "holdfast.seal",
-           "holdfast.tally", "holdfast.refit", "holdfast.rounds", "skops.io", "holdfast.opening")
-# What only the later steps import (plots, the report, diagnostics, the audit): loaded after the socket is up, so a job
-# that comes meanwhile waits for these (under a second) instead of running cold; every step that draws sets Agg too.
-LATE = ("matplotlib", "matplotlib.pyplot", "holdfast.learning", "holdfast.diagnostics", "holdfast.nested",
-        "holdfast.audit", "holdfast.report")
+           "holdfast.tally", "holdfast.refit", "holdfast.rounds")
+# What only the later steps import (plots, the report, diagnostics, the audit): loaded one by one after the socket is
+# up, between connections, so the first jobs and the command's own check do not wait for them; every step that draws
+# sets Agg too.
+LATE = ("holdfast.audit", "holdfast.closing", "skops.io", "holdfast.opening", "matplotlib", "matplotlib.pyplot",
+        "holdfast.learning", "holdfast.diagnostics", "holdfast.nested", "holdfast.report")
 
 
 def _recv_exact(conn: socket.socket, size: int) -> bytes:
@@ -67,12 +72,12 @@ def _alive(pid: int) -> bool:
     return True
 
 
-def _connect(address: str) -> socket.socket | None:
-    """A connection to the worker at ``address``; while it is still importing (its process named in
-    :data:`PID_ENV` runs, for up to :data:`STARTUP_WAIT` seconds) wait for it rather than run cold."""
+def _connect(address: str, pid: str | None = None) -> socket.socket | None:
+    """A connection to the worker at ``address``; while it is still importing (its process ``pid``, else the one
+    named in :data:`PID_ENV`, runs, for up to :data:`STARTUP_WAIT` seconds) wait for it rather than run cold."""
     import time
 
-    pid = os.environ.get(PID_ENV, "")
+    pid = os.environ.get(PID_ENV, "") if pid is None else pid
     deadline = time.monotonic() + STARTUP_WAIT
     while True:
         conn = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
@@ -102,6 +107,37 @@ def submit(address: str, job: Any) -> int | None:
     return answer[0]
 
 
+class NoAnswerError(Exception):
+    """The worker could not take the call, or its child ended without an answer: the caller runs it itself."""
+
+
+def call(address: str, target: str, *args: Any, pid: str | None = None) -> Any:
+    """Run ``module:function(*args)`` in a child of the worker, with this process's stdout, stderr, directory and
+    environment; return its value, or raise the exception it raised.
+
+    Used by the holdfast command for its own heavy work (the full check before a seal, the audits), so that the
+    command imports neither pandas nor scikit-learn while the worker imports them anyway. Raises
+    :class:`NoAnswerError` when no worker answers or the child died without a word.
+    """
+    payload = pickle.dumps({"call": target, "args": args, "cwd": os.getcwd(), "env": dict(os.environ)}, protocol=4)
+    conn = _connect(address, pid)
+    if conn is None:
+        raise NoAnswerError(f"no worker at {address}")
+    with conn:
+        sys.stdout.flush()
+        sys.stderr.flush()
+        socket.send_fds(conn, [HEADER.pack(len(payload))], [1, 2])
+        conn.sendall(payload)
+        try:
+            (size,) = HEADER.unpack(_recv_exact(conn, HEADER.size))
+            kind, value = pickle.loads(_recv_exact(conn, size))
+        except Exception as exc:  # no answer, a cut one, or one that cannot be rebuilt here: do it in the caller
+            raise NoAnswerError(f"the worker's child ended without an answer ({exc})") from None
+    if kind == "raise":
+        raise value
+    return value
+
+
 def _run_child(conn: socket.socket) -> None:
     """In the forked child: take the job, its stdout/stderr and environment, run the step, answer the code."""
     message, fds, _, _ = socket.recv_fds(conn, HEADER.size, 2)
@@ -125,6 +161,8 @@ def _run_child(conn: socket.socket) -> None:
             os.kill(os.getpid(), signal.SIGKILL)
 
     threading.Thread(target=watch, daemon=True).start()
+    if "call" in request:
+        _answer_call(conn, request)
     code = 1
     try:
         from holdfast.job import Job
@@ -148,6 +186,40 @@ def _run_child(conn: socket.socket) -> None:
             os._exit(code)
 
 
+def _answer_call(conn: socket.socket, request: dict[str, Any]) -> None:
+    """In the forked child: run the requested function and send back ("return", value) or ("raise", exception).
+
+    An exception that cannot be pickled, or one holdfast did not raise on purpose, is printed here as a traceback
+    (on the caller's stderr) and answered as a RuntimeError naming it.
+    """
+    import importlib
+
+    try:
+        module, _, name = request["call"].partition(":")
+        answer: tuple[str, Any] = ("return", getattr(importlib.import_module(module), name)(*request["args"]))
+    except KeyboardInterrupt:
+        os._exit(130)  # Ctrl-C reached the whole process group: the caller is stopping too
+    except BaseException as exc:  # every failure goes back to the caller, who raises it
+        from holdfast.errors import HoldfastError
+
+        if not isinstance(exc, HoldfastError):
+            import traceback
+
+            traceback.print_exc()
+            exc = RuntimeError(f"{type(exc).__name__} in holdfast's worker: {exc}")
+        answer = ("raise", exc)
+    try:
+        payload = pickle.dumps(answer, protocol=4)
+    except Exception as exc:  # an answer that cannot travel is a failure of its own
+        payload = pickle.dumps(("raise", RuntimeError(f"the answer of {request['call']} cannot be sent: {exc}")))
+    sys.stdout.flush()
+    sys.stderr.flush()
+    try:
+        conn.sendall(HEADER.pack(len(payload)) + payload)
+    finally:
+        os._exit(0)
+
+
 def serve(address: str) -> None:
     """Import everything the steps need, then fork one child per job until the parent process goes away."""
     import importlib
@@ -164,19 +236,17 @@ def serve(address: str) -> None:
     listener.bind(tmp)
     listener.listen(64)
     os.replace(tmp, address)  # the socket appears only once the imports every step needs are done
-    for name in LATE:  # a connection made meanwhile waits in the listen backlog
-        try:
-            importlib.import_module(name)
-            if name == "matplotlib":
-                import matplotlib
-
-                matplotlib.use("Agg")
-        except ImportError:
-            continue
+    late = list(LATE)
+    select.select([listener], [], [], FIRST_WAIT)
     listener.settimeout(1.0)
     signal.signal(signal.SIGCHLD, lambda *_: _reap())
     try:
         while os.getppid() == parent:
+            # The later steps' imports go one by one between connections: a job or call that comes meanwhile is
+            # served first (the first ones need none of them), and a child forked early imports what it uses.
+            if late and not select.select([listener], [], [], 0)[0]:
+                _import_late(late.pop(0))
+                continue
             try:
                 conn, _ = listener.accept()
             except TimeoutError:
@@ -194,6 +264,19 @@ def serve(address: str) -> None:
         listener.close()
         with contextlib.suppress(FileNotFoundError):
             os.unlink(address)
+
+
+def _import_late(name: str) -> None:
+    import importlib
+
+    try:
+        importlib.import_module(name)
+        if name == "matplotlib":
+            import matplotlib
+
+            matplotlib.use("Agg")
+    except ImportError:
+        pass
 
 
 def _reap() -> None:
