@@ -90,6 +90,19 @@ def test_defaults_are_filled_from_the_schema() -> None:
     assert config["allowed_modules"] == ["sklearn"]
 
 
+def test_the_schema_reads_the_same_with_pyyamls_c_and_python_parsers() -> None:
+    # holdfast.config._schema uses PyYAML's C parser when the installed PyYAML has one; the pure-Python SafeLoader is
+    # the reference (PyYAML documents both as the same safe subset of YAML).
+    import yaml
+
+    with open(cfg.SCHEMA_PATH, encoding="utf-8") as handle:
+        reference = yaml.safe_load(handle)
+    assert cfg._schema() == reference
+    if hasattr(yaml, "CSafeLoader"):
+        with open(cfg.SCHEMA_PATH, encoding="utf-8") as handle:
+            assert yaml.load(handle, Loader=yaml.CSafeLoader) == reference
+
+
 def test_shipped_configs_are_valid() -> None:
     for name in ("config.yaml", "regression.yaml"):
         cfg.load(REPO / "config" / name)

@@ -31,8 +31,11 @@ HEADER = struct.Struct("!Q")
 # Seconds the worker waits, once ready, for a first connection before it starts the later imports: the command that
 # started it is usually polling for it already (its check or audit), and an import under way would hold that up.
 FIRST_WAIT = 0.25
-# What the steps import; loaded once in the worker so that no job pays for it again.
-PRELOAD = ("numpy", "pandas", "pyarrow", "pyarrow.parquet", "scipy.stats", "sklearn.base", "sklearn.pipeline",
+# What the steps import; loaded once in the worker so that no job pays for it again (pyarrow.dataset: pandas's
+# read_parquet with columns; narwhals' pandas part: scikit-learn's column handling imports it at a fit; jsonschema: the
+# config's validation; py-spy showed each fit job importing the first two itself).
+PRELOAD = ("numpy", "pandas", "pyarrow", "pyarrow.parquet", "pyarrow.dataset", "scipy.stats", "sklearn.base",
+           "sklearn.pipeline", "jsonschema", "narwhals._pandas_like.namespace",
            "sklearn.compose", "sklearn.impute", "sklearn.preprocessing", "sklearn.metrics", "sklearn.linear_model",
            "sklearn.ensemble", "sklearn.tree", "sklearn.neighbors", "sklearn.model_selection", "threadpoolctl",
            "holdfast.job", "holdfast.steps", "holdfast.fit", "holdfast.folds", "holdfast.seal",
