@@ -718,10 +718,9 @@ CLI_RUN = {"metric-binary-on-three-classes", "metric-default-on-three-classes", 
            "experiment-symlink-outside"}
 
 # Through the real `holdfast run`, whose full check runs in a child of the command's job worker (holdfast.worker.call,
-# holdfast.cli._in_worker): one case per error class and per kind of check (config, data, estimator import, metric,
-# folds, a sealed experiment's data); the error must come back as the same line and exit code.
-WORKER_RUN = {"target-column-missing", "k-above-smallest-class", "estimator-os-system", "scorer-unknown",
-              "sealed-data-file-deleted", "labels-differ-by-case"}
+# holdfast.cli._in_worker): config and data errors, one case per kind of check (data, estimator import, metric, a sealed
+# experiment's data); the error must come back as the same line and exit code.
+WORKER_RUN = {"target-column-missing", "estimator-os-system", "scorer-unknown", "sealed-data-file-deleted"}
 
 
 def prepared_case(workdir: Path, edit: Edit) -> dict[str, Any]:

@@ -165,3 +165,19 @@ def test_a_call_without_a_worker_says_so_at_once(tmp_path: Path) -> None:
     with pytest.raises(worker.NoAnswerError):
         worker.call(str(tmp_path / "none.sock"), "os:getcwd", pid=str(ended.pid))
     assert time.monotonic() - t0 < 5
+
+
+def test_a_call_whose_child_dies_unanswered_is_done_by_the_command_itself(
+        started_worker: tuple[str, str], tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from holdfast import cli
+
+    address, pid = started_worker
+    with pytest.raises(worker.NoAnswerError):
+        worker.call(address, "os:_exit", 3, pid=pid)  # the child ends without a word (as if killed)
+    # holdfast.cli._in_worker then does the work in the command: with no worker answering, the value is its own.
+    monkeypatch.setitem(cli._WORKER, "address", str(tmp_path / "gone.sock"))
+    monkeypatch.setitem(cli._WORKER, "pid", "")
+    assert cli._in_worker("os:getpid") == os.getpid()
+    monkeypatch.setitem(cli._WORKER, "address", address)
+    monkeypatch.setitem(cli._WORKER, "pid", pid)
+    assert cli._in_worker("os:getpid") != os.getpid()  # and with the worker answering, a child of it did it
