@@ -42,6 +42,17 @@ def last_stderr_line(stderr: str) -> str:
     return lines[-1] if lines else ""
 
 
+def assert_refused(result: subprocess.CompletedProcess[str], exit_code: int, pattern: str, results: Path,
+                   before: tuple[dict[str, str], list[str]]) -> None:
+    """The run ended with ``exit_code``, its last stderr line is holdfast's one line matching ``pattern``, it printed no
+    traceback, and nothing under ``results`` changed."""
+    last = last_stderr_line(result.stderr)
+    assert result.returncode == exit_code, result.stdout + result.stderr[-3000:]
+    assert last.startswith("holdfast:") and re.search(pattern, last), result.stderr[-3000:]
+    assert "Traceback" not in result.stderr, result.stderr[-3000:]
+    assert snapshot(results) == before, "a bad input must not write under results/"
+
+
 # --- cases: each edits the config dict and/or writes a data file ----------------------------------------------------
 
 def missing_data_file(workdir: Path, config: dict[str, Any]) -> None:
@@ -762,13 +773,7 @@ def test_bad_input_stops_the_real_workflow_with_one_line(bc_copy: Path, edit: Ed
 
     result = run_workflow(bc_copy)
 
-    last = last_stderr_line(result.stderr)
-    assert result.returncode != 0, result.stderr[-3000:]
-    assert last.startswith("holdfast:"), result.stderr[-3000:]
-    assert re.search(pattern, last), last
-    assert result.returncode == exit_code, last
-    assert "Traceback" not in result.stderr, result.stderr[-3000:]
-    assert snapshot(results) == before, "a bad input must not write under results/"
+    assert_refused(result, exit_code, pattern, results, before)
     assert not (bc_copy / "escape").exists() and not (bc_copy / "results" / "team").exists()
 
 
@@ -783,11 +788,8 @@ def test_bad_input_stops_holdfast_run_from_its_worker_with_one_line(bc_copy: Pat
 
     result = run_cli(bc_copy, "run", "config.yaml", "--cores", "2")
 
-    last = last_stderr_line(result.stderr)
-    assert result.returncode == exit_code, result.stdout + result.stderr
-    assert last.startswith("holdfast:") and re.search(pattern, last), result.stderr
-    assert "Traceback" not in result.stderr and "worker" not in result.stderr, result.stderr
-    assert snapshot(results) == before, "a refused run must not write under results/"
+    assert_refused(result, exit_code, pattern, results, before)
+    assert "worker" not in result.stderr, result.stderr
 
 
 @pytest.mark.slow
