@@ -7,6 +7,8 @@ hands its job to the worker over a Unix socket, with its own stdout and stderr, 
 runs the step with everything already imported. The job process waits for the child's exit code, so Snakemake sees an
 ordinary job. If the job process dies (Snakemake was killed), the child is killed too. When no worker answers
 (a cluster job, plain ``snakemake``, ``HOLDFAST_NO_WORKER=1``) the job process runs the step itself, as before.
+The command that started the worker sends it its own heavy work the same way (:func:`call`: the full check before a
+seal, the audits), so that only one process imports the libraries while Snakemake starts.
 
 Only the standard library is imported at module level: the job process imports :func:`submit` cheaply.
 """
