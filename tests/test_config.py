@@ -92,7 +92,7 @@ def test_defaults_are_filled_from_the_schema() -> None:
 
 def test_the_schema_reads_the_same_with_pyyamls_c_and_python_parsers() -> None:
     # holdfast.config._schema uses PyYAML's C parser when the installed PyYAML has one; the pure-Python SafeLoader is
-    # the reference (PyYAML documents both as the same safe subset of YAML).
+    # the reference (PyYAML offers CSafeLoader as the LibYAML-based equivalent of SafeLoader; from memory).
     import yaml
 
     with open(cfg.SCHEMA_PATH, encoding="utf-8") as handle:

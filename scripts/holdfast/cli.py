@@ -404,13 +404,14 @@ def _in_worker(target: str, *args: Any) -> Any:
     return getattr(importlib.import_module(module), name)(*args)
 
 
-def full_check(raw: dict[str, Any], results: str) -> dict[str, Any]:
-    """plan.prepare in full (data, metrics, estimators, folds, overlap); record and return the facts it found."""
+def full_check(raw: dict[str, Any], results: str, facts_path: Path) -> dict[str, Any]:
+    """plan.prepare in full (data, metrics, estimators, folds, overlap); record the facts it found at ``facts_path``
+    (plan.cached_facts) and return them."""
     from ._io import write_json
-    from .plan import cached_facts, prepare
+    from .plan import prepare
 
     plan = prepare(raw, main=True, results=results)
-    write_json(cached_facts(raw)[1], plan.facts)
+    write_json(facts_path, plan.facts)
     return plan.facts
 
 
@@ -423,9 +424,9 @@ def _prepare_cached(raw: dict[str, Any], results: str = "results") -> Any:
     """
     from .plan import cached_facts, prepare
 
-    facts, _ = cached_facts(raw)
+    facts, path = cached_facts(raw)
     if facts is None:
-        facts = _in_worker("holdfast.cli:full_check", raw, results)
+        facts = _in_worker("holdfast.cli:full_check", raw, results, path)
     return prepare(raw, main=True, results=results, facts=facts)
 
 

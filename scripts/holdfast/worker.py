@@ -96,16 +96,25 @@ def _connect(address: str, pid: str | None = None) -> socket.socket | None:
         time.sleep(0.02)
 
 
+def _sent(address: str, request: dict[str, Any], pid: str | None = None) -> socket.socket | None:
+    """Connect to the worker and send ``request`` with this process's stdout, stderr, folder and environment; the
+    open connection for the answer, or None when no worker answers."""
+    payload = pickle.dumps({**request, "cwd": os.getcwd(), "env": dict(os.environ)}, protocol=4)
+    conn = _connect(address, pid)
+    if conn is None:
+        return None
+    socket.send_fds(conn, [HEADER.pack(len(payload))], [1, 2])
+    conn.sendall(payload)
+    return conn
+
+
 def submit(address: str, job: Any) -> int | None:
     """Run ``job`` (a plain description, :func:`holdfast.job.describe`) in the worker; its exit code, or None when
     no worker answers."""
-    payload = pickle.dumps({"job": job, "cwd": os.getcwd(), "env": dict(os.environ)}, protocol=4)
-    conn = _connect(address)
+    conn = _sent(address, {"job": job})
     if conn is None:
         return None
     with conn:
-        socket.send_fds(conn, [HEADER.pack(len(payload))], [1, 2])
-        conn.sendall(payload)
         answer = conn.recv(1)
     if not answer:
         return 1  # the child died without an answer (killed, or it crashed hard): a failed job
@@ -124,15 +133,12 @@ def call(address: str, target: str, *args: Any, pid: str | None = None) -> Any:
     command imports neither pandas nor scikit-learn while the worker imports them anyway. Raises
     :class:`NoAnswerError` when no worker answers or the child died without a word.
     """
-    payload = pickle.dumps({"call": target, "args": args, "cwd": os.getcwd(), "env": dict(os.environ)}, protocol=4)
-    conn = _connect(address, pid)
+    sys.stdout.flush()
+    sys.stderr.flush()
+    conn = _sent(address, {"call": target, "args": args}, pid)
     if conn is None:
         raise NoAnswerError(f"no worker at {address}")
     with conn:
-        sys.stdout.flush()
-        sys.stderr.flush()
-        socket.send_fds(conn, [HEADER.pack(len(payload))], [1, 2])
-        conn.sendall(payload)
         try:
             (size,) = HEADER.unpack(_recv_exact(conn, HEADER.size))
             kind, value = pickle.loads(_recv_exact(conn, size))
@@ -227,14 +233,9 @@ def _answer_call(conn: socket.socket, request: dict[str, Any]) -> None:
 
 def serve(address: str) -> None:
     """Import everything the steps need, then fork one child per job until the parent process goes away."""
-    import importlib
-
     # The numeric libraries must not have started thread pools before fork; each job sets its own limits.
     for name in PRELOAD:
-        try:
-            importlib.import_module(name)
-        except ImportError:
-            continue
+        _import(name)
     parent = os.getppid()
     listener = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
     tmp = f"{address}.{os.getpid()}.tmp"
@@ -250,7 +251,7 @@ def serve(address: str) -> None:
             # The later steps' imports go one by one between connections: a job or call that comes meanwhile is
             # served first (the first ones need none of them), and a child forked early imports what it uses.
             if late and not select.select([listener], [], [], 0)[0]:
-                _import_late(late.pop(0))
+                _import(late.pop(0))
                 continue
             try:
                 conn, _ = listener.accept()
@@ -271,7 +272,8 @@ def serve(address: str) -> None:
             os.unlink(address)
 
 
-def _import_late(name: str) -> None:
+def _import(name: str) -> None:
+    """Import module ``name`` into the worker if it is installed (matplotlib with its file-only Agg backend)."""
     import importlib
 
     try:
