@@ -144,9 +144,11 @@ class Plan:
         Only the archive copy whose hash the ledger's last opening recorded qualifies. Also in a job process, which
         defines every rule up to the opening (see :attr:`closed`) but must find this one to run it.
         """
-        from .layout import VERDICT
+        from .layout import ARCHIVE, VERDICT
 
         if (self.exp / VERDICT).exists() or not (self.exp / LEDGER).exists():
+            return ""
+        if not (self.exp / ARCHIVE).is_dir():  # no opening archived a verdict: nothing to restore, no ledger to read
             return ""
         if not self.main:  # a job process (a cluster job, plain Snakemake's own process per job) counts them now
             from . import openings
