@@ -39,10 +39,11 @@ def test_a_ready_snakemake_runs_the_command_line_as_python_m_snakemake_would(tmp
     # The Snakefile sees sys.argv as under `python -m snakemake` (holdfast.plan.snakemake_flags reads it there),
     # the environment it was sent, and its output goes to the named log; Snakemake's exit code comes back.
     (tmp_path / "Snakefile").write_text(
-        "import json, os, sys\n"
+        "import atexit, json, os, sys\n"
         f"sys.path.insert(0, {str(REPO / 'scripts')!r})\n"
         "from holdfast.plan import snakemake_flags\n"
         "if '--target-jobs' not in sys.argv:  # the main process (a job's own Snakemake has that option)\n"
+        "    atexit.register(lambda: open('exit_handler_ran', 'w').close())\n"
         "    with open('seen.json', 'w') as handle:\n"
         "        json.dump({'flags': snakemake_flags(), 'argv0': sys.argv[0],\n"
         "                   'mark': os.environ.get('HOLDFAST_TEST_MARK')}, handle, default=sorted)\n"
@@ -61,6 +62,9 @@ def test_a_ready_snakemake_runs_the_command_line_as_python_m_snakemake_would(tmp
     assert seen["mark"] == "sent"
     assert "Finished job" in log.read_text() or "steps (100%) done" in log.read_text()
     assert out == ""  # everything went to the log
+    # It ends without the interpreter's module teardown after a success, but only after every exit handler ran
+    # (Snakemake's and its plugins' clean-ups; here one the Snakefile registered).
+    assert (tmp_path / "exit_handler_ran").exists()
 
     failing = {**request, "argv": ["-s", "Missing.smk", "--cores", "1"]}
     process = _ready(tmp_path)
