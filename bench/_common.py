@@ -485,13 +485,19 @@ rule learning_curve:
         noop(output)
 
 rule diagnostics:
-    input: "choice.txt", expand("curves/{j}.txt", j=range(CURVES))
+    input: "choice.txt"
     output: "diagnostics.txt"
     run:
         noop(output)
 
+rule learning_summary:
+    input: "choice.txt", expand("curves/{j}.txt", j=range(CURVES))
+    output: "learning.txt"
+    run:
+        noop(output)
+
 rule report:
-    input: "diagnostics.txt", "model.txt"
+    input: "diagnostics.txt", "model.txt", ["learning.txt"] if CURVES else []
     output: "report.txt"
     run:
         noop(output)
@@ -533,9 +539,10 @@ def snakemake_floor(shape: dict[str, int], cores: int, root: Path, logs: Path) -
 
 
 FLOOR_NOTE = ("Snakemake alone: the same job graph (seal, round, folds, the run's fit and learning-curve jobs, tally, "
-              "refit, diagnostics, report; then the opening and the report again) with empty jobs shaped like "
-              "holdfast's (a run: body in a thread starting a Python process), the same --cores, --scheduler greedy "
-              "and --force-use-threads; what any workflow built of these Snakemake jobs pays before any work")
+              "refit, diagnostics, the learning curve's summary, report; then the opening and the report again) "
+              "with empty jobs shaped like holdfast's (a run: body in a thread starting a Python process), the same "
+              "--cores, --scheduler greedy and --force-use-threads; what any workflow built of these Snakemake jobs "
+              "pays before any work")
 
 
 # --------------------------------------------------------------------------- tables

@@ -443,16 +443,17 @@ def test_cluster_jobs_ran_under_slurm(local_experiment: Experiment, cluster_expe
     states = dict(line.split("|") for line in shown.split())
     assert states == dict.fromkeys(jobs, "COMPLETED"), shown
     # ... the grouped steps of the first run shared a job (the profile's groups: seal and fold assignment; round
-    # record, tally and refit; the learning curve's folds and the diagnostics), and each fit job was a SLURM job of
-    # its own ...
+    # record, tally and refit; the learning curve's folds and its summary; the diagnostics, connected to neither in
+    # the workflow, are a job of their own), and each fit job was a SLURM job of its own ...
     job_of: dict[str, str] = {}
     for entry in by_rule:
         job_of.setdefault(entry["event"], entry["actor"]["slurm_job"])
     assert job_of["seal"] == job_of["assign_folds"] and job_of["round"] == job_of["tally"] == job_of["refit"], job_of
-    first_diagnostics = next(i for i, e in enumerate(by_rule) if e["event"] == "diagnostics")
-    diagnosed = {e["actor"]["slurm_job"] for e in by_rule[:first_diagnostics + 1]
-                 if e["event"] in ("learning_curve", "diagnostics")}
-    assert len(diagnosed) == 1 and sum(e["event"] == "learning_curve" for e in by_rule[:first_diagnostics]) == 3, \
+    first_summary = next(i for i, e in enumerate(by_rule) if e["event"] == "learning_summary")
+    first_run = by_rule[:first_summary + 1]
+    curves = {e["actor"]["slurm_job"] for e in first_run if e["event"] in ("learning_curve", "learning_summary")}
+    assert len(curves) == 1 and sum(e["event"] == "learning_curve" for e in first_run) == 3 and \
+        job_of["diagnostics"] not in curves | {job_of["refit"], job_of["seal"]}, \
         [(e["event"], e["actor"]["slurm_job"]) for e in by_rule]
     fit_jobs = [e["actor"]["slurm_job"] for e in by_rule if e["event"] == "fit"]
     assert len(fit_jobs) == 6 + 3 and len(set(fit_jobs)) == len(fit_jobs), fit_jobs

@@ -25,6 +25,7 @@ from conftest import (
     write_config,
 )
 from holdfast import ledger
+from holdfast._io import sha256_file
 from holdfast.config import learning_sizes, validate
 from holdfast.diagnostics import axis_label, calibration, confusion, residuals, validation_curves
 from holdfast.errors import ConfigError
@@ -142,6 +143,29 @@ def test_learning_curve_settings() -> None:
     assert learning_sizes(validate({**BASE, "diagnostics": {"learning_curve": {"sizes": [1, 0.3]}}})) == [0.3, 1.0]
 
 
+def test_learning_tables_of_another_candidate_than_the_winner_are_refused(tmp_path: Path) -> None:
+    from holdfast._io import write_json
+    from holdfast.diagnostics import summarise_learning
+    from holdfast.errors import DataError
+
+    write_json(tmp_path / "choice.json", {"metric": "accuracy", "winner": {"candidate": "aaa", "family": "f"}})
+    paths = []
+    for fold, candidate in enumerate(("aaa", "bbb")):
+        path = tmp_path / f"r0f{fold}.parquet"
+        pd.DataFrame({"candidate": [candidate], "fraction": [1.0], "n_train": [10], "status": ["ok"],
+                      "train_accuracy": [0.9], "val_accuracy": [0.8]}).to_parquet(path)
+        paths.append(str(path))
+    with pytest.raises(DataError, match=r"tables under diagnostics/learning/ are of candidate bbb, not the winner aaa"):
+        summarise_learning(paths, str(tmp_path / "choice.json"), ["accuracy"], None, str(tmp_path / "learning.json"),
+                           str(tmp_path / "learning.png"), str(tmp_path / "ledger.jsonl"))
+    assert not any((tmp_path / name).exists() for name in ("learning.json", "learning.png", "ledger.jsonl"))
+    summary = summarise_learning(paths[:1], str(tmp_path / "choice.json"), ["accuracy"], None,
+                                 str(tmp_path / "learning.json"), str(tmp_path / "learning.png"),
+                                 str(tmp_path / "ledger.jsonl"))
+    assert summary["points"][0]["metrics"]["accuracy"]["val_mean"] == 0.8
+    assert (tmp_path / "learning.png").read_bytes().startswith(b"\x89PNG")
+
+
 # --- real runs -------------------------------------------------------------------------------------------------------
 
 
@@ -185,7 +209,10 @@ def test_every_plotted_number_is_the_stored_one_and_an_unchanged_winner_fits_not
     # Learning curve: means over the fold tables; the full fold is the winner's stored fit record.
     tables = pd.concat([pd.read_parquet(p) for p in sorted((exp / "diagnostics/learning").glob("r*f*.parquet"))])
     assert sorted(tables["fraction"].unique()) == [0.25, 0.5, 1.0] and set(tables["candidate"]) == {winner}
-    for point in result["learning_curve"]["points"]:
+    assert result["learning_curve"] == {"summary": "learning.json"}
+    learning = json.loads((exp / "diagnostics/learning.json").read_text())
+    assert learning["candidate"] == winner and learning["files"] == 3
+    for point in learning["points"]:
         part = tables[tables["fraction"] == point["fraction"]]
         assert point["metrics"][metric]["val_mean"] == pytest.approx(part[f"val_{metric}"].mean(), abs=1e-12)
         assert point["n_train"] == pytest.approx(part["n_train"].mean())
@@ -205,9 +232,11 @@ def test_every_plotted_number_is_the_stored_one_and_an_unchanged_winner_fits_not
     [curve] = result["calibration"]["curves"]
     assert np.allclose(curve["observed"], observed) and np.allclose(curve["predicted"], predicted)
     assert sum(curve["count"]) == len(oof) == len(dev)
-    assert sorted(result["plots"]) == ["calibration", "confusion", "learning", "validation"]
+    assert sorted(result["plots"]) == ["calibration", "confusion", "validation"]
+    [summary] = _events(exp, "learning_summary")
+    assert summary["png_sha256"] == sha256_file(exp / "diagnostics/learning.png") and summary["points"] == 3
     audit = json.loads((exp / "audit.json").read_text())
-    assert audit["passed"] and {"diagnostics/diagnostics.json", "diagnostics/plots/learning.png",
+    assert audit["passed"] and {"diagnostics/diagnostics.json", "diagnostics/learning.json", "diagnostics/learning.png",
                                 "diagnostics/learning/r0f2.parquet"} <= set(audit["verified"])
     page = (exp / "report.html").read_text()
     assert '<section id="diagnostics"><h2>Diagnostics</h2>' in page and "withheld" not in page.split(
@@ -216,6 +245,10 @@ def test_every_plotted_number_is_the_stored_one_and_an_unchanged_winner_fits_not
     ok = run_workflow(tmp_path)  # the ledger joins the report's inputs after the first run: one remake
     assert ok.returncode == 0, ok.stderr[-3000:]
     assert planned_jobs(run_workflow(tmp_path, "-n")) == [], "changing nothing re-runs nothing"
+    # The diagnostics do not wait for the learning-curve jobs (they run beside them); only its summary does.
+    planned = planned_jobs(run_workflow(tmp_path, "-n", "--forcerun", "learning_curve"))
+    assert set(planned) == {"learning_curve", "learning_summary", "report", "all"}, planned
+    assert planned.count("learning_curve") == 3 and "diagnostics" not in planned
 
     # A non-winning family edited: the tally runs again and the learning-curve jobs follow it, but fit nothing.
     losing = "tree" if choice["winner"]["family"] == "logistic" else "logistic"
@@ -268,6 +301,7 @@ def test_regression_residuals_are_the_stored_out_of_fold_ones_and_the_learning_c
     block = json.loads((exp / "diagnostics/diagnostics.json").read_text())
     assert block["learning_curve"] == {"unavailable": "turned off (diagnostics.learning_curve: false)"}
     assert not (exp / "diagnostics/learning").exists() and "rule learning_curve" not in result.stderr
+    assert not (exp / "diagnostics/learning.json").exists() and "rule learning_summary" not in result.stderr
     assert sorted(block["plots"]) == ["residuals", "validation"] and "confusion" not in block
     winner = json.loads((exp / "choice.json").read_text())["winner"]["candidate"]
     oof = _fits(exp, "oof")

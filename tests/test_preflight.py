@@ -25,7 +25,8 @@ def test_shipped_profile_names_only_rules_the_workflow_has() -> None:
     assert profile.get("executor") == "slurm"
     assert profile.pairs("groups") == {"seal": "prepare", "assign_folds": "prepare", "record_round": "conclude",
                                        "tally": "conclude", "refit_winner": "conclude",
-                                       "learning_curve": "diagnose", "diagnostics": "diagnose"}
+                                       "learning_curve": "diagnose", "diagnostics": "diagnose",
+                                       "learning_summary": "diagnose"}
 
 
 def test_profile_options_read_from_either_yaml_form(tmp_path: Path) -> None:

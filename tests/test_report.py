@@ -234,6 +234,40 @@ def test_a_run_in_progress_withholds_everything_but_the_report_step_audits_as_la
     assert last["state"] == "pass" and "Audit PASS" in page_text((tmp_path / "last.html").read_text())[0]
 
 
+def test_a_learning_curve_kept_in_the_diagnostics_file_as_before_its_own_step_is_still_shown(bc_copy: Path,
+                                                                                                tmp_path: Path) -> None:
+    # An experiment closed before rule learning_summary existed keeps its learning curve in diagnostics.json (with
+    # the points) and its picture in diagnostics/plots/learning.png, recorded by the diagnostics step's ledger line;
+    # nothing remakes them once it is closed. Here that layout is rebuilt from a new experiment's files.
+    from holdfast._io import sha256_file, write_json
+
+    exp = bc_copy / "results" / "bc"
+    result = json.loads((exp / "diagnostics/diagnostics.json").read_text())
+    learning = json.loads((exp / "diagnostics/learning.json").read_text())
+    result["learning_curve"] = {k: learning[k] for k in ("candidate", "files", "points")}
+    result["learning_curve"]["points"][0]["n_train"] = 12345.0  # tells this file's numbers from learning.json's
+    result["plots"]["learning"] = "plots/learning.png"
+    write_json(exp / "diagnostics/diagnostics.json", result)
+    shutil.copy(exp / "diagnostics/learning.png", exp / "diagnostics/plots/learning.png")
+    details = ledger.events(ledger.read(exp / "ledger.jsonl"), "diagnostics")[-1]["details"]
+    details.update(diagnostics_sha256=sha256_file(exp / "diagnostics/diagnostics.json"),
+                   learning_png_sha256=sha256_file(exp / "diagnostics/plots/learning.png"))
+    ledger.append(exp / "ledger.jsonl", "diagnostics", details, rule="diagnostics")
+    made = write_report(exp, tmp_path / "old-layout.html")
+    assert made["state"] == "pass", made
+    html = (tmp_path / "old-layout.html").read_text()
+    section = html.split("<h3>Learning curve of the winner</h3>")[1].split("<h3>")[0]
+    assert "<img" in section and "withheld" not in section and "Not made" not in section, section[:500]
+    assert "12345" in section, section[:2000]
+
+    # That picture changed after its record: the audit names it and the report shows none of the diagnostics.
+    (exp / "diagnostics/plots/learning.png").write_bytes(b"not the picture")
+    tampered = write_report(exp, tmp_path / "tampered.html")
+    text = (tmp_path / "tampered.html").read_text()
+    assert tampered["state"] == "fail" and "diagnostics/plots/learning.png" in text, tampered
+    assert "<h3>Learning curve of the winner</h3>" not in text
+
+
 def test_the_report_step_reads_only_and_stays_in_a_closed_experiment(bc_copy: Path) -> None:
     exp = bc_copy / "results" / "bc"
     before = (exp / "ledger.jsonl").read_bytes()

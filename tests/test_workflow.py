@@ -312,8 +312,12 @@ def _fit_job_settings(result: subprocess.CompletedProcess[str]) -> dict[str, tup
             key, _, value = line.partition(":")
             blocks[-1][key.strip()] = value.strip()
     refits = [block for block in blocks if block["rule"] == "rule refit_winner:"]
-    # the refit goes before the learning-curve jobs (priority 0) that become ready with it
-    assert refits and all(block.get("priority") == "1" for block in refits), refits
+    # the refit goes before the learning-curve jobs (priority 1), and those before the diagnostics (priority 0), that
+    # become ready with it
+    assert refits and all(block.get("priority") == "2" for block in refits), refits
+    curves = [block for block in blocks if block["rule"] == "rule learning_curve:"]
+    assert curves and all(block.get("priority") == "1" for block in curves), curves
+    assert all(block.get("priority", "0") == "0" for block in blocks if block["rule"] == "rule diagnostics:")
     for block in blocks:
         if block["rule"] == "rule fit_family:":
             family = block["wildcards"].split(",")[0].split("=")[1]

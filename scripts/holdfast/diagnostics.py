@@ -2,12 +2,14 @@
 
 - validation curves: per family and numeric grid parameter, the mean training and validation score over folds
   against the parameter, the other parameters held at the family's best candidate (the winner in its own family);
-- the winner's learning curve, from the learning-curve jobs (:mod:`holdfast.learning`);
+- the winner's learning curve, from the learning-curve jobs (:mod:`holdfast.learning`), summarised by a step of its
+  own (:func:`summarise_learning`) so that the rest does not wait for those jobs and runs beside them;
 - classification: the winner's out-of-fold confusion matrix (scikit-learn's ``confusion_matrix``) and reliability
   curve (scikit-learn's ``calibration_curve``, equal-width bins);
 - regression: the winner's out-of-fold residuals (true minus predicted) against its predictions.
 
-Every number goes to ``diagnostics/diagnostics.json``; the pictures drawn from it go to ``diagnostics/plots/``.
+Every number goes to ``diagnostics/diagnostics.json`` (the learning curve's to ``diagnostics/learning.json``); the
+pictures drawn from them go to ``diagnostics/plots/`` (the learning curve's to ``diagnostics/learning.png``).
 Only development rows are read. Scores keep the scorer convention in the JSON (greater is better); the pictures
 show errors positive in the target's unit, through :mod:`holdfast.display`.
 """
@@ -29,7 +31,7 @@ from .layout import group_family
 
 MAX_POINTS = 2000  # residuals drawn as points; more rows are summarised by the bins and sampled for the picture
 RESIDUAL_BINS = 10
-PLOTS = ("validation", "learning", "confusion", "calibration", "residuals")
+LEARNING_SUMMARY = "learning.json"  # under diagnostics/, beside diagnostics.json; its picture is learning.png
 
 
 def _numeric(value: Any) -> bool:
@@ -189,10 +191,13 @@ def axis_label(metric: str, unit: str | None) -> str:
     return f"{display.label(metric)} ({shown})" if shown else display.label(metric)
 
 
-def diagnose(fit_paths: list[str], oof_paths: list[str], learning_paths: list[str], dev_path: str, choice_path: str,
+def diagnose(fit_paths: list[str], oof_paths: list[str], learning: bool, dev_path: str, choice_path: str,
              target: str, task: str, metrics: list[str], bins: int, unit: str | None, out_path: str, plots_dir: str,
              ledger_path: str, rule: str | None = None) -> dict[str, Any]:
-    """Write diagnostics/diagnostics.json and its pictures; append one ledger line with the hashes of both."""
+    """Write diagnostics/diagnostics.json and its pictures; append one ledger line with the hashes of both.
+
+    ``learning``: whether the learning curve is on; its numbers and picture are :func:`summarise_learning`'s.
+    """
     choice = read_json(choice_path)
     primary = str(choice["metric"])
     winner, family = str(choice["winner"]["candidate"]), str(choice["winner"]["family"])
@@ -203,14 +208,8 @@ def diagnose(fit_paths: list[str], oof_paths: list[str], learning_paths: list[st
         "validation_note": ("mean over folds of each candidate's stored training and validation scores; the other "
                             "parameters held at the family's best candidate (the winner in its own family)"),
     }
-    if learning_paths:
-        table = pd.concat([pd.read_parquet(p) for p in sorted(learning_paths)], ignore_index=True)
-        stale = sorted(set(table["candidate"]) - {winner})
-        result["learning_curve"] = {"candidate": winner, "files": len(learning_paths),
-                                    "points": learning_summary(table, metrics)} if not stale else {
-            "unavailable": f"the learning-curve tables are of candidate {stale[0]}, not the winner {winner}"}
-    else:
-        result["learning_curve"] = {"unavailable": "turned off (diagnostics.learning_curve: false)"}
+    result["learning_curve"] = {"summary": LEARNING_SUMMARY} if learning else {
+        "unavailable": "turned off (diagnostics.learning_curve: false)"}
     dev = read_parquet(dev_path, columns=[KEY, target])
     oof = winner_oof(oof_paths, dev, target, winner, family)
     result["out_of_fold"] = {"rows": len(oof), "repeats": int(oof["repeat"].nunique())}
@@ -240,11 +239,42 @@ def diagnose(fit_paths: list[str], oof_paths: list[str], learning_paths: list[st
 
     ledger.append(ledger_path, "diagnostics", {
         "scope": "main", "winner": winner, "metric": primary, "curves": len(result["validation_curves"]),
-        "learning_files": len(learning_paths), "oof_rows": len(oof),
-        "choice_sha256": sha256_file(choice_path), "diagnostics_sha256": sha256_file(out_path),
-        "validation_png_sha256": png("validation"), "learning_png_sha256": png("learning"),
+        "oof_rows": len(oof), "choice_sha256": sha256_file(choice_path), "diagnostics_sha256": sha256_file(out_path),
+        # learning.png under plots/ is learning_summary's diagnostics/learning.png now; null says this run wrote none
+        "validation_png_sha256": png("validation"), "learning_png_sha256": None,
         "confusion_png_sha256": png("confusion"), "calibration_png_sha256": png("calibration"),
         "residuals_png_sha256": png("residuals"),
+    }, rule=rule)
+    return result
+
+
+def summarise_learning(learning_paths: list[str], choice_path: str, metrics: list[str], unit: str | None,
+                       out_path: str, picture_path: str, ledger_path: str, rule: str | None = None) -> dict[str, Any]:
+    """Write diagnostics/learning.json (the winner's learning curve: means and sds over the fold tables) and
+    diagnostics/learning.png; append one ledger line with the hashes of both.
+
+    A step of its own, after every learning-curve job, so that :func:`diagnose` does not wait for them. Tables of
+    another candidate than the winner are refused: Snakemake remakes every table after each tally.
+    """
+    from .errors import DataError
+
+    choice = read_json(choice_path)
+    primary = str(choice["metric"])
+    winner = str(choice["winner"]["candidate"])
+    table = pd.concat([pd.read_parquet(p) for p in sorted(learning_paths)], ignore_index=True)
+    stale = sorted(set(table["candidate"]) - {winner})
+    if stale:
+        raise DataError(f"the learning-curve tables under diagnostics/learning/ are of candidate {stale[0]}, not "
+                        f"the winner {winner}; run 'holdfast run' again to remake them")
+    result = {"candidate": winner, "metric": primary, "files": len(learning_paths),
+              "points": learning_summary(table, metrics)}
+    picture = draw_learning(result, primary, unit)
+    write_atomic(picture_path, lambda tmp: Path(tmp).write_bytes(picture))
+    write_json(out_path, result)
+    ledger.append(ledger_path, "learning_summary", {
+        "scope": "main", "winner": winner, "metric": primary, "files": len(learning_paths),
+        "points": len(result["points"]), "choice_sha256": sha256_file(choice_path),
+        "summary_sha256": sha256_file(out_path), "png_sha256": sha256_file(picture_path),
     }, rule=rule)
     return result
 
@@ -278,12 +308,39 @@ def _png(fig: Any) -> bytes:
     return buffer.getvalue()
 
 
-def draw(result: dict[str, Any], unit: str | None) -> dict[str, bytes]:
-    """The pictures of a diagnostics result, by name (only those it has data for)."""
+def _pyplot() -> Any:
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
+
+    return plt
+
+
+def draw_learning(learning: dict[str, Any], metric: str, unit: str | None) -> bytes:
+    """The picture of the winner's learning curve (a :func:`summarise_learning` result)."""
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(6, 3.8))
+    x = [p["n_train"] for p in learning["points"]]
+    scores = [p["metrics"][metric] for p in learning["points"]]
+    _band(ax, x, [s["train_mean"] for s in scores], [s["train_sd"] for s in scores], metric, TRAIN,
+          "training", "--")
+    _band(ax, x, [s["val_mean"] for s in scores], [s["val_sd"] for s in scores], metric, VALID,
+          "validation", "-")
+    ax.set_xlabel("training rows (mean over folds)")
+    ax.set_ylabel(axis_label(metric, unit))
+    ax.set_title(f"Learning curve of the winner {learning['candidate']}: mean over folds ± 1 sd "
+                 f"({display.direction(metric)})", fontsize=9)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    return _png(fig)
+
+
+def draw(result: dict[str, Any], unit: str | None) -> dict[str, bytes]:
+    """The pictures of a diagnostics result, by name (only those it has data for; the learning curve's is
+    :func:`draw_learning`'s)."""
+    plt = _pyplot()
 
     metric = result["metric"]
     out: dict[str, bytes] = {}
@@ -312,23 +369,6 @@ def draw(result: dict[str, Any], unit: str | None) -> dict[str, bytes]:
         fig.suptitle(f"Validation curves: mean over folds ± 1 sd ({display.direction(metric)})", fontsize=10)
         fig.tight_layout()
         out["validation"] = _png(fig)
-    learning = result.get("learning_curve") or {}
-    if learning.get("points"):
-        fig, ax = plt.subplots(figsize=(6, 3.8))
-        x = [p["n_train"] for p in learning["points"]]
-        scores = [p["metrics"][metric] for p in learning["points"]]
-        _band(ax, x, [s["train_mean"] for s in scores], [s["train_sd"] for s in scores], metric, TRAIN,
-              "training", "--")
-        _band(ax, x, [s["val_mean"] for s in scores], [s["val_sd"] for s in scores], metric, VALID,
-              "validation", "-")
-        ax.set_xlabel("training rows (mean over folds)")
-        ax.set_ylabel(axis_label(metric, unit))
-        ax.set_title(f"Learning curve of the winner {learning['candidate']}: mean over folds ± 1 sd "
-                     f"({display.direction(metric)})", fontsize=9)
-        ax.grid(alpha=0.3)
-        ax.legend(fontsize=8)
-        fig.tight_layout()
-        out["learning"] = _png(fig)
     if "confusion" in result:
         block = result["confusion"]
         matrix = np.array(block["matrix"])

@@ -27,7 +27,7 @@ PACKAGE = Path(__file__).resolve().parent
 STAGE_MODULES = {
     "assign_folds": "folds", "fit_family": "fit", "record_round": "rounds", "tally": "tally", "refit_winner": "refit",
     "open_test": "opening", "score_outer": "nested", "nested_summary": "nested", "report": "report",
-    "learning_curve": "learning", "diagnostics": "diagnostics",
+    "learning_curve": "learning", "diagnostics": "diagnostics", "learning_summary": "diagnostics",
 }
 
 

@@ -85,6 +85,9 @@ def describe(entry: dict[str, Any], tracker: Tracker) -> str | None:
     if event == "diagnostics":
         return (f"diagnostics of {details.get('winner')}: {details.get('curves')} validation curve(s), "
                 f"{details.get('oof_rows')} out-of-fold predictions")
+    if event == "learning_summary":
+        return (f"learning curve of {details.get('winner')} summarised: {details.get('points')} size(s) over "
+                f"{details.get('files')} fold(s)")
     return None
 
 

@@ -82,6 +82,11 @@ RECORDED: tuple[Recorded, ...] = (
     *(Recorded("diagnostics", (f"{name}_png_sha256",), f"diagnostics/plots/{name}.png", "diagnostics-plot",
                f"{name} picture of the diagnostics", none_means_absent=True)
       for name in ("validation", "learning", "confusion", "calibration", "residuals")),
+    Recorded("learning_summary", ("choice_sha256",), "choice.json", "choice", "choice"),
+    Recorded("learning_summary", ("summary_sha256",), "diagnostics/learning.json", "learning-summary",
+             "learning curve's summary"),
+    Recorded("learning_summary", ("png_sha256",), "diagnostics/learning.png", "learning-plot",
+             "learning curve's picture"),
 )
 
 # Hashes in the ledger that name no file under the experiment, and why the audit does not check them there.

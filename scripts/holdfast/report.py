@@ -777,10 +777,12 @@ def _verdict(exp: Path, files: Vouched, unit: str | None, figures: dict[str, byt
 DIAGNOSTICS = "diagnostics/diagnostics.json"
 
 
-def _figure(files: Vouched, figures: dict[str, bytes], name: str, alt: str, caption: str) -> str:
-    """A verified diagnostics picture, also handed to Snakemake's report as diagnostics_<name>.png."""
+def _figure(files: Vouched, figures: dict[str, bytes], name: str, alt: str, caption: str,
+            path: str | None = None) -> str:
+    """A verified diagnostics picture (``path``, else diagnostics/plots/<name>.png), also handed to Snakemake's
+    report as diagnostics_<name>.png."""
     try:
-        data = files.data(f"diagnostics/plots/{name}.png")
+        data = files.data(path or f"diagnostics/plots/{name}.png")
     except WithheldError as reason:
         return f'<p class="withheld">The picture is {_e(reason)}</p>'
     figures[f"diagnostics_{name}.png"] = data
@@ -790,6 +792,21 @@ def _figure(files: Vouched, figures: dict[str, bytes], name: str, alt: str, capt
 def _mean_sd(metric: str, mean: Any, sd: Any, unit: str | None) -> str:
     shown = display.number(metric, mean, unit)
     return shown if _num(sd) is None else f"{shown} ± {display.spread(metric, sd, unit)}"
+
+
+LEARNING = "diagnostics/learning.json"
+
+
+def _learning_summary(files: Vouched, winner: str) -> tuple[dict[str, Any], str | None]:
+    """The learning curve's summary (diagnostics/learning.json) and its picture's path, or why it is not shown."""
+    try:
+        learning = files.json(LEARNING)
+    except WithheldError as reason:
+        return {"unavailable": f"diagnostics/learning.json is {reason}"}, None
+    if learning.get("candidate") != winner:
+        return {"unavailable": f"the learning curve is of {learning.get('candidate')}, not of the winner {winner}: "
+                               "run again to remake it"}, None
+    return learning, "diagnostics/learning.png"
 
 
 def _diagnostics(exp: Path, files: Vouched, unit: str | None, figures: dict[str, bytes]) -> str:
@@ -830,11 +847,14 @@ def _diagnostics(exp: Path, files: Vouched, unit: str | None, figures: dict[str,
         out.append("<p>No family has a grid parameter with at least two numeric values.</p>")
     out.append("<h3>Learning curve of the winner</h3>")
     learning = result.get("learning_curve") or {}
+    picture = None  # diagnostics/plots/learning.png: where diagnostics made it before it had a step of its own
+    if "summary" in learning:
+        learning, picture = _learning_summary(files, choice["winner"]["candidate"])
     if learning.get("points"):
         out.append(_figure(files, figures, "learning", "the winner's learning curve",
                            "The winner fitted on nested subsets of each training fold (each inside the next) and "
                            "scored on the fold's validation rows: mean over folds ± 1 sd. The full fold's point is "
-                           "the winner's own fit record."))
+                           "the winner's own fit record.", picture))
         rows = [[_e(f"{p['fraction']:.0%}"), _e(f"{p['n_train']:.0f}"),
                  _e(_mean_sd(metric, p["metrics"][metric]["train_mean"], p["metrics"][metric]["train_sd"], unit)),
                  _e(_mean_sd(metric, p["metrics"][metric]["val_mean"], p["metrics"][metric]["val_sd"], unit)),
@@ -966,6 +986,8 @@ def _event_words(entry: Mapping[str, Any]) -> str:
                 + (": kept from an earlier run" if d.get("reused") else f": {d.get('points')} sizes"))
     if event == "diagnostics":
         return f"diagnostics of {d.get('winner')}: {d.get('curves')} validation curve(s)"
+    if event == "learning_summary":
+        return f"learning curve of {d.get('winner')} summarised over {d.get('files')} folds"
     return str(event)
 
 

@@ -188,12 +188,23 @@ def diagnostics(smk: Any) -> None:
     from .diagnostics import diagnose
 
     spec = json.loads(smk.params.spec)
-    result = diagnose(list(smk.input.fits), list(smk.input.oof), list(smk.input.learning), smk.input.dev,
+    result = diagnose(list(smk.input.fits), list(smk.input.oof), bool(smk.params.learning), smk.input.dev,
                       smk.input.choice, spec["target"], smk.params.task, json.loads(smk.params.metrics),
                       int(smk.params.bins), smk.params.unit or None, smk.output.diagnostics, smk.output.plots,
                       smk.params.ledger, rule=smk.rule)
     print(f"diagnostics of {result['winner']['candidate']}: {len(result['validation_curves'])} validation "
           f"curve(s); pictures: {', '.join(result['plots']) or 'none'}")
+
+
+def learning_summary(smk: Any) -> None:
+    """Rule learning_summary -> holdfast.diagnostics.summarise_learning (after every learning-curve job)."""
+    from .diagnostics import summarise_learning
+
+    result = summarise_learning(list(smk.input.learning), smk.input.choice, json.loads(smk.params.metrics),
+                                smk.params.unit or None, smk.output.summary, smk.output.picture, smk.params.ledger,
+                                rule=smk.rule)
+    print(f"learning curve of {result['candidate']} summarised: {len(result['points'])} size(s) over "
+          f"{result['files']} fold table(s)")
 
 
 def report(smk: Any) -> None:
@@ -234,7 +245,7 @@ def nested_summary(smk: Any) -> None:
 
 
 STEPS = {f.__name__: f for f in (seal, assign_folds, fit_family, record_round, tally, refit_winner, open_test,
-                                 restore_verdict, report, learning_curve, diagnostics,
+                                 restore_verdict, report, learning_curve, diagnostics, learning_summary,
                                  score_outer, nested_summary)}
 # Nested copies of the stages run the same adapters (Snakemake's `use rule ... as nested_<rule>`).
 STEPS.update({f"nested_{name}": STEPS[name] for name in ("assign_folds", "fit_family", "tally", "refit_winner")})

@@ -114,13 +114,15 @@ def all_targets():
     ]
     if PLAN.config["nested"]["k"]:
         targets.append(PLAN.path("nested/summary.json"))
-    return targets + [PLAN.path("diagnostics/diagnostics.json"), page]
+    learning = [PLAN.path("diagnostics/learning.json")] if learning_files() else []
+    return targets + [PLAN.path("diagnostics/diagnostics.json"), *learning, page]
 
 
 def report_inputs(wildcards):
-    """What the report shows and must follow: ranking, choice and the model's provenance; the nested summary and
-    the diagnostics, so the report is the run's last job (once the experiment is closed, only when they exist: their
-    rules have left the workflow); and, once the experiment is closed, the verdict.
+    """What the report shows and must follow: ranking, choice and the model's provenance; the nested summary, the
+    diagnostics and the learning curve's summary, so the report is the run's last job (once the experiment is
+    closed, only when they exist: their rules have left the workflow); and, once the experiment is closed, the
+    verdict.
 
     Not the ledger: it exists only from the seal on, so the first run would record an input set without it and every
     later run would remake the report for "set of input files has changed". Whatever the report shows from the
@@ -138,6 +140,9 @@ def report_inputs(wildcards):
     diagnosed = PLAN.path("diagnostics/diagnostics.json")
     if not PLAN.closed or Path(diagnosed).exists():
         inputs["diagnostics"] = diagnosed
+    learning = PLAN.path("diagnostics/learning.json")
+    if learning_files() and (not PLAN.closed or Path(learning).exists()):
+        inputs["learning"] = learning
     verdict = PLAN.path("final/verdict.json")
     if (PLAN.closed and (Path(verdict).exists() or verdict_to_restore())) or closing_opening():
         inputs["verdict"] = verdict

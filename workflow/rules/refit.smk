@@ -15,10 +15,11 @@ rule refit_winner:
         code=code_hash("refit_winner"),
         declared_threads=max_threads(),  # what numeric libraries are limited to; extra cores go to n_jobs only
     threads: refit_threads()
-    # Before the learning-curve jobs, which become ready with it: the refit is the longest job after the tally and
-    # the one the opening waits for. With equal priorities the greedy scheduler took two learning-curve jobs first
-    # (larger inputs) and left the refit to run alone at the end (mixed grid: 27.6 s alone after 213 s).
-    priority: 1
+    # Before the learning-curve jobs (priority 1) and the diagnostics, which become ready with it: the refit is the
+    # longest job after the tally and the one the opening waits for. With equal priorities the greedy scheduler took
+    # two learning-curve jobs first (larger inputs) and left the refit to run alone at the end (mixed grid: 27.6 s
+    # alone after 213 s).
+    priority: 2
     resources:
         mem_mb=4000,
         runtime=60,

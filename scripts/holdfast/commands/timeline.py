@@ -41,6 +41,8 @@ DIRECTION: dict[tuple[str, tuple[str, ...]], str] = {
     ("diagnostics", ("choice_sha256",)): "read", ("diagnostics", ("diagnostics_sha256",)): "wrote",
     **{("diagnostics", (f"{name}_png_sha256",)): "wrote"
        for name in ("validation", "learning", "confusion", "calibration", "residuals")},
+    ("learning_summary", ("choice_sha256",)): "read", ("learning_summary", ("summary_sha256",)): "wrote",
+    ("learning_summary", ("png_sha256",)): "wrote",
 }
 VERBS = ("read", "to read", "wrote")
 
