@@ -245,6 +245,10 @@ def test_every_plotted_number_is_the_stored_one_and_an_unchanged_winner_fits_not
     ok = run_workflow(tmp_path)  # the ledger joins the report's inputs after the first run: one remake
     assert ok.returncode == 0, ok.stderr[-3000:]
     assert planned_jobs(run_workflow(tmp_path, "-n")) == [], "changing nothing re-runs nothing"
+    # A deleted learning-curve picture is made again (the report shows it, so it is one of the report's inputs).
+    (exp / "diagnostics/learning.png").unlink()
+    planned = planned_jobs(run_workflow(tmp_path, "-n"))
+    assert set(planned) == {"learning_summary", "report", "all"}, planned
     # The diagnostics do not wait for the learning-curve jobs (they run beside them); only its summary does.
     planned = planned_jobs(run_workflow(tmp_path, "-n", "--forcerun", "learning_curve"))
     assert set(planned) == {"learning_curve", "learning_summary", "report", "all"}, planned

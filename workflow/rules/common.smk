@@ -114,7 +114,7 @@ def all_targets():
     ]
     if PLAN.config["nested"]["k"]:
         targets.append(PLAN.path("nested/summary.json"))
-    learning = [PLAN.path("diagnostics/learning.json")] if learning_files() else []
+    learning = [PLAN.path(f"diagnostics/learning.{kind}") for kind in ("json", "png")] if learning_files() else []
     return targets + [PLAN.path("diagnostics/diagnostics.json"), *learning, page]
 
 
@@ -140,9 +140,11 @@ def report_inputs(wildcards):
     diagnosed = PLAN.path("diagnostics/diagnostics.json")
     if not PLAN.closed or Path(diagnosed).exists():
         inputs["diagnostics"] = diagnosed
-    learning = PLAN.path("diagnostics/learning.json")
-    if learning_files() and (not PLAN.closed or Path(learning).exists()):
-        inputs["learning"] = learning
+    # Both of the summary's files: the report shows the picture, and a deleted one is then made again.
+    for kind, name in (("json", "learning"), ("png", "learning_picture")):
+        learning = PLAN.path(f"diagnostics/learning.{kind}")
+        if learning_files() and (not PLAN.closed or Path(learning).exists()):
+            inputs[name] = learning
     verdict = PLAN.path("final/verdict.json")
     if (PLAN.closed and (Path(verdict).exists() or verdict_to_restore())) or closing_opening():
         inputs["verdict"] = verdict
