@@ -82,7 +82,10 @@ def _end_without_teardown() -> None:
     waited for its threads and run every other exit handler, without tearing down the modules one by one."""
     if _CODE == [0]:
         if "logging" in sys.modules:
-            sys.modules["logging"].shutdown()  # idempotent; flushes Snakemake's log handlers
+            # Only a safeguard: logging's own exit handler already flushed Snakemake's handlers (logging is imported
+            # after this handler was registered, so its handler runs first); this matters only when something such
+            # as a sitecustomize imported logging before us. shutdown() is idempotent.
+            sys.modules["logging"].shutdown()
         sys.stdout.flush()
         sys.stderr.flush()
         os._exit(0)
