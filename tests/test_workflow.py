@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -54,6 +55,41 @@ def test_the_run_after_the_first_plans_nothing_before_any_opening(nested_sealed_
     assert dry.returncode == 0, dry.stderr[-2000:]
     assert planned_jobs(dry) == [], dry.stdout[-3000:] + dry.stderr[-3000:]
     assert "Nothing to be done" in dry.stdout + dry.stderr
+
+
+def _planned_files(result: subprocess.CompletedProcess[str], field: str) -> dict[str, set[str]]:
+    """{rule: the files of its planned jobs' `field` line ('input' or 'output')} from a dry run's job listing."""
+    files: dict[str, set[str]] = {}
+    rule = None
+    for line in (result.stdout + result.stderr).splitlines():
+        text = line.strip()
+        if text.startswith(("rule ", "localrule ")) and text.endswith(":"):
+            rule = text.split()[1].rstrip(":")
+        elif rule and text.startswith(f"{field}: "):
+            files.setdefault(rule, set()).update(text[len(field) + 2:].split(", "))
+    return files
+
+
+def test_every_file_the_development_loop_writes_is_a_target(nested_sealed_copy: Path) -> None:
+    """Snakemake makes a missing file again only when a job that reads it has to run anyway (or when it is a
+    target): every file a job of the loop writes must be one of rule all's inputs, nested outer folds included."""
+    dry = run_workflow(nested_sealed_copy, "-n", "--forceall")
+    assert dry.returncode == 0, dry.stderr[-2000:]
+    written = _planned_files(dry, "output")
+    targets = _planned_files(dry, "input")["all"]
+    every = set().union(*written.values())
+    assert {"fit_family", "nested_fit_family", "score_outer", "learning_curve", "report"} <= set(written)
+    assert "results/nested-demo/oof/tree/r0f0.parquet" in every and "open_test" not in written
+    missing = {rule: sorted(files - targets) for rule, files in written.items() if files - targets}
+    assert not missing, missing
+
+    # And so a deleted one is made again: a fit's out-of-fold table, the report's pictures folder, a nested score.
+    exp = nested_sealed_copy / "results" / "nested-demo"
+    deleted = ["oof/tree/r0f1.parquet", "report_figures", "nested/o1/score.json", "diagnostics/plots"]
+    for name in deleted:
+        (exp / name).unlink() if (exp / name).is_file() else shutil.rmtree(exp / name)
+    planned = set().union(*_planned_files(run_workflow(nested_sealed_copy, "-n"), "output").values())
+    assert {f"results/nested-demo/{name}" for name in deleted} <= planned, planned
 
 
 def test_second_run_has_nothing_to_do(bc_copy: Path) -> None:

@@ -98,7 +98,8 @@ def refit_threads():
 
 
 def all_targets():
-    """The development loop's outputs and the report; the verdict only once an opening made it (holdfast open)."""
+    """Every file of the development loop, the report's included (written_files); once the experiment is closed, the
+    verdict and the report (only what exists or can be restored)."""
     page = PLAN.path("report.html")
     if PLAN.closed:  # only what exists or can be restored: nothing up to the opening can run
         verdict = PLAN.path("final/verdict.json")
@@ -106,16 +107,31 @@ def all_targets():
         if all(Path(PLAN.path(name)).exists() for name in ("ranking.parquet", "choice.json", "model/provenance.json")):
             targets.append(page)
         return targets
-    targets = [
-        PLAN.path("ranking.parquet"),
-        PLAN.path("choice.json"),
-        PLAN.path("model/model.skops"),
-        PLAN.path("model/provenance.json"),
-    ]
-    if PLAN.config["nested"]["k"]:
-        targets.append(PLAN.path("nested/summary.json"))
-    learning = [PLAN.path(f"diagnostics/learning.{kind}") for kind in ("json", "png")] if learning_files() else []
-    return targets + [PLAN.path("diagnostics/diagnostics.json"), *learning, page]
+    return written_files()
+
+
+# The development loop's rules without wildcards, and those with only the nested outer fold's: every file they write
+# is a target. Snakemake by itself makes a missing file again only when a job that reads it has to run anyway, so a
+# deleted fold table, fit table, picture or report folder would stay missing (and the audit fail on it) until its
+# step ran for some other reason.
+WHOLE_RULES = ("assign_folds", "record_round", "tally", "refit_winner", "diagnostics", "report")
+NESTED_WHOLE_RULES = ("assign_outer_folds", "nested_summary")
+PER_OUTER_RULES = ("nested_assign_folds", "nested_tally", "nested_refit_winner", "score_outer")
+
+
+def written_files():
+    """Every file the development loop writes (rule all's input before the experiment is closed)."""
+    def outputs(names, **wildcards):
+        return [str(f) for name in names for f in expand(getattr(rules, name).output, **wildcards)]
+
+    files = outputs(WHOLE_RULES) + fits_of("fits") + fits_of("oof")
+    if learning_files():
+        files += learning_files() + outputs(["learning_summary"])
+    k = PLAN.config["nested"]["k"]
+    if k:
+        files += outputs(NESTED_WHOLE_RULES) + outputs(PER_OUTER_RULES, outer=range(k))
+        files += [f for outer in range(k) for kind in ("fits", "oof") for f in PLAN.nested_fit_files(kind, outer)]
+    return files
 
 
 def report_inputs(wildcards):
