@@ -90,3 +90,46 @@ def test_plain_snakemake_without_worker_or_threads_still_runs_a_step(bc_workdir:
     assert "sealed" in log and "test rows" in log
     ledger = [json.loads(line) for line in (bc_workdir / "results/bc/ledger.jsonl").read_text().splitlines()]
     assert [entry["event"] for entry in ledger] == ["seal"]
+
+
+def _job_reading(paths: list[str], params: list[str] | None = None) -> Job:
+    """A described job whose inputs are ``paths`` (and whose params are ``params``), of experiment 'e'."""
+    fields = _snakemake_fields()
+    fields["input"] = _named(InputFiles, paths, {})
+    fields["params"] = _named(Params, params or [], {})
+    return Job(describe("tally", threads=1, resources=_named(Params, [], {}), config={"experiment": "e"}, **fields))
+
+
+def test_a_step_that_failed_on_a_cut_or_overwritten_file_is_told_which_one(tmp_path: Path) -> None:
+    """holdfast.steps.unreadable_files: asked after a step failed with an error holdfast did not raise on purpose."""
+    import pandas as pd
+    from holdfast.steps import _damaged_message, unreadable_files
+
+    good = tmp_path / "good.parquet"
+    pd.DataFrame({"row_key": [f"k{i}" for i in range(5000)], "x": range(5000)}).to_parquet(good)
+    (tmp_path / "good.json").write_text('{"a": 1}')
+    (tmp_path / "notes.txt").write_text("not read: neither Parquet nor JSON")
+    readable = [str(good), str(tmp_path / "good.json"), str(tmp_path / "notes.txt")]
+    assert unreadable_files(_job_reading(readable)) == [], "a step's own failure keeps its traceback"
+
+    cut = tmp_path / "cut.parquet"
+    cut.write_bytes(good.read_bytes()[:300])
+    overwritten = tmp_path / "choice.json"
+    overwritten.write_text('{"winner": ')
+    inner = tmp_path / "inner.parquet"  # footer intact, a data page overwritten: only reading it whole tells
+    data = bytearray(good.read_bytes())
+    data[8:2008] = b"\xff" * 2000
+    inner.write_bytes(bytes(data))
+    named = str(tmp_path / "test_keys.parquet")  # a file named by a param (assign_folds reads the test keys so)
+    Path(named).write_bytes(b"PAR1 not a table")
+    damaged = unreadable_files(_job_reading([*readable, str(cut), str(overwritten), str(inner)],
+                                            params=['{"spec": 1}', named, str(tmp_path / "absent.parquet")]))
+    assert [path for path, _ in damaged] == [str(cut), str(overwritten), str(inner), named]
+    assert damaged[0][1] == "Parquet magic bytes not found in footer" and all(reason for _, reason in damaged)
+
+    job = _job_reading([str(cut)])
+    line = _damaged_message(job, damaged)
+    assert line.startswith(f"'{cut}' cannot be read (Parquet magic bytes not found in footer) (and 3 more")
+    assert "'holdfast audit results/e'" in line and "delete the file and run again" in line
+    sealed = _damaged_message(job, [("results/e/dev.parquet", "cut")])
+    assert "the seal never runs again" in sealed and "delete" not in sealed

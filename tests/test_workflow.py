@@ -92,6 +92,29 @@ def test_every_file_the_development_loop_writes_is_a_target(nested_sealed_copy: 
     assert {f"results/nested-demo/{name}" for name in deleted} <= planned, planned
 
 
+def test_a_file_cut_short_after_its_step_stops_the_next_step_with_one_line_and_deleting_it_mends(
+        nested_sealed_copy: Path) -> None:
+    exp = nested_sealed_copy / "results" / "nested-demo"
+    table = exp / "oof/logistic/r0f2.parquet"
+    recorded = table.read_bytes()
+    table.write_bytes(recorded[:300])  # newer than the ranking: the tally runs again and reads it
+    broken = run_cli(nested_sealed_copy, "run", "config.yaml", "--cores", "2")
+    assert broken.returncode != 0
+    screen = broken.stdout + broken.stderr
+    errors = [line for line in screen.splitlines() if line.startswith("holdfast: data error:")]
+    assert errors == [f"holdfast: data error: '{table.relative_to(nested_sealed_copy)}' cannot be read (Parquet magic "
+                      "bytes not found in footer): it was cut short or changed after the step that wrote it; "
+                      "'holdfast audit results/nested-demo' names every file that no longer matches the ledger; put "
+                      "back the copy the ledger recorded, or delete the file and run again to have it made again"
+                      ], screen
+    assert "Traceback" not in screen and "ArrowInvalid" in (exp / "logs/tally.log").read_text()
+
+    table.unlink()
+    mended = run_cli(nested_sealed_copy, "run", "config.yaml", "--cores", "2")
+    assert mended.returncode == 0, mended.stdout[-3000:] + mended.stderr[-3000:]
+    assert "audit PASS" in mended.stdout and table.read_bytes() == recorded
+
+
 def test_second_run_has_nothing_to_do(bc_copy: Path) -> None:
     dry = run_workflow(bc_copy, "-n")
     assert dry.returncode == 0, dry.stderr[-2000:]

@@ -15,7 +15,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from .errors import HoldfastError
+from .errors import DataError, HoldfastError
 
 
 def _redirect_log(path: str) -> int:
@@ -274,11 +274,76 @@ def run(smk: Any) -> None:
             with ledger.locked(experiment_dir(smk.config) / STEPS_LOCK, shared=True):
                 STEPS[smk.rule](smk)
     except HoldfastError as exc:
-        print(exc.format_message(), flush=True)
-        os.write(stderr, (exc.format_message() + "\n").encode())
-        # An ordinary exception, not SystemExit, so that run() is safe to call in any thread (a SystemExit
-        # in a Snakemake worker thread leaves the run waiting for ever); the job script exits 1 on it.
-        raise StepError(exc.format_message()) from None
+        _fail(exc, stderr)
+    except Exception:
+        damaged = unreadable_files(smk)
+        if not damaged:
+            raise  # a failure of the step itself: its traceback goes to the log
+        import traceback
+
+        traceback.print_exc()  # what the step tripped on, for the log; the one line below says why
+        _fail(DataError(_damaged_message(smk, damaged)), stderr)
+
+
+def _fail(exc: HoldfastError, stderr: int) -> None:
+    """Write the error's one line to the log and to the job's stderr, and end the step with StepError."""
+    print(exc.format_message(), flush=True)
+    os.write(stderr, (exc.format_message() + "\n").encode())
+    # An ordinary exception, not SystemExit, so that run() is safe to call in any thread (a SystemExit
+    # in a Snakemake worker thread leaves the run waiting for ever); the job script exits 1 on it.
+    raise StepError(exc.format_message()) from None
+
+
+def unreadable_files(smk: Any) -> list[tuple[str, str]]:
+    """The job's Parquet and JSON files (its inputs, and params naming an existing file) that cannot be read
+    whole, each with pyarrow's or json's reason; empty when every one reads.
+
+    Asked only after a step failed with an error holdfast did not raise on purpose: a recorded file that was cut
+    short or overwritten after the step that wrote it then gets one line naming it instead of a traceback.
+    """
+    paths = [p for p in smk.input if isinstance(p, str)]
+    paths += [p for p in smk.params if isinstance(p, str) and p.endswith((".parquet", ".json")) and os.path.isfile(p)]
+    damaged = []
+    for path in dict.fromkeys(paths):
+        reason = _unreadable(path)
+        if reason is not None:
+            damaged.append((path, reason))
+    return damaged
+
+
+def _unreadable(path: str) -> str | None:
+    """Why the whole of a Parquet or JSON file cannot be read, or None when it can (or is neither)."""
+    try:
+        if path.endswith(".parquet"):
+            import pyarrow.parquet as pq
+
+            with pq.ParquetFile(path) as source:
+                for _ in source.iter_batches(batch_size=1 << 16):
+                    pass
+        elif path.endswith(".json"):
+            with open(path, encoding="utf-8") as handle:
+                json.load(handle)
+    except Exception as exc:  # what pyarrow or json says, up to its first full stop, is the reason shown
+        return " ".join(str(exc).split()).split(". ")[0].rstrip(".") or type(exc).__name__
+    return None
+
+
+def _damaged_message(smk: Any, damaged: list[tuple[str, str]]) -> str:
+    """The one line for a step that failed on files changed after they were written: the first, how many, what
+    to do (the seal's own files are never made again, so they must be put back)."""
+    from .config import experiment_dir
+    from .layout import DEV, MANIFEST, TEST
+
+    exp = experiment_dir(smk.config)
+    path, reason = damaged[0]
+    more = f" (and {len(damaged) - 1} more of this step's files)" if len(damaged) > 1 else ""
+    sealed = {str(exp / name) for name in (DEV, MANIFEST, TEST)}
+    if any(p in sealed for p, _ in damaged):
+        mend = "put back the copy the ledger recorded (the seal never runs again)"
+    else:
+        mend = "put back the copy the ledger recorded, or delete the file and run again to have it made again"
+    return (f"'{path}' cannot be read ({reason}){more}: it was cut short or changed after the step that wrote it; "
+            f"'holdfast audit {exp}' names every file that no longer matches the ledger; {mend}")
 
 
 class StepError(Exception):
