@@ -70,22 +70,27 @@ def _planned_files(result: subprocess.CompletedProcess[str], field: str) -> dict
     return files
 
 
-def test_every_file_the_development_loop_writes_is_a_target(nested_sealed_copy: Path) -> None:
-    """Snakemake makes a missing file again only when a job that reads it has to run anyway (or when it is a
-    target): every file a job of the loop writes must be one of rule all's inputs, nested outer folds included."""
+def test_every_file_the_development_loop_writes_is_a_target_or_made_again_when_deleted(
+        nested_sealed_copy: Path) -> None:
+    """Snakemake makes a missing file again only when it is a target or a job that reads it has to run anyway.
+    Every file a job of the loop writes is one of rule all's inputs, but the per-fold files (two per fit job, one per
+    learning-curve job: many), which are targets only when missing; nested outer folds included."""
     dry = run_workflow(nested_sealed_copy, "-n", "--forceall")
     assert dry.returncode == 0, dry.stderr[-2000:]
     written = _planned_files(dry, "output")
     targets = _planned_files(dry, "input")["all"]
-    every = set().union(*written.values())
-    assert {"fit_family", "nested_fit_family", "score_outer", "learning_curve", "report"} <= set(written)
-    assert "results/nested-demo/oof/tree/r0f0.parquet" in every and "open_test" not in written
+    per_fold = {"fit_family", "nested_fit_family", "learning_curve"}
+    assert per_fold | {"score_outer", "nested_tally", "report", "diagnostics"} <= set(written)
+    assert "results/nested-demo/oof/tree/r0f0.parquet" in written["fit_family"] and "open_test" not in written
     missing = {rule: sorted(files - targets) for rule, files in written.items() if files - targets}
-    assert not missing, missing
+    assert set(missing) == per_fold, missing
+    assert not set().union(*(written[rule] for rule in per_fold)) & targets, "present per-fold files are no targets"
 
-    # And so a deleted one is made again: a fit's out-of-fold table, the report's pictures folder, a nested score.
+    # So a deleted one is made again, per-fold or not: out-of-fold and learning-curve tables, a nested fit table, the
+    # report's pictures folder, a nested score, the diagnostics' pictures folder.
     exp = nested_sealed_copy / "results" / "nested-demo"
-    deleted = ["oof/tree/r0f1.parquet", "report_figures", "nested/o1/score.json", "diagnostics/plots"]
+    deleted = ["oof/tree/r0f1.parquet", "diagnostics/learning/r0f2.parquet", "nested/o0/fits/logistic/r0f0.parquet",
+               "report_figures", "nested/o1/score.json", "diagnostics/plots"]
     for name in deleted:
         (exp / name).unlink() if (exp / name).is_file() else shutil.rmtree(exp / name)
     planned = set().union(*_planned_files(run_workflow(nested_sealed_copy, "-n"), "output").values())

@@ -110,28 +110,51 @@ def all_targets():
     return written_files()
 
 
-# The development loop's rules without wildcards, and those with only the nested outer fold's: every file they write
-# is a target. Snakemake by itself makes a missing file again only when a job that reads it has to run anyway, so a
-# deleted fold table, fit table, picture or report folder would stay missing (and the audit fail on it) until its
-# step ran for some other reason.
+# Every file the development loop writes is a target, or is asked for by a job that will run. Snakemake by itself makes
+# a missing file again only when it is a target or a job that reads it has to run anyway, so a deleted fold table,
+# fit table, picture or report folder would stay missing (and the audit fail on it) until its step ran for some other
+# reason. The rules without wildcards (or with only the nested outer fold's) write a few files each: all are targets.
+# The per-fold files (two per fit job, one per learning-curve job) are many: one is a target only when it is missing
+# after the job that reads them has run (missing_after). All of them as targets made a dry run of 30,000 fit jobs
+# about a fifth slower and its peak memory pass 1 GiB (bench/scale.py).
 WHOLE_RULES = ("assign_folds", "record_round", "tally", "refit_winner", "diagnostics", "report")
 NESTED_WHOLE_RULES = ("assign_outer_folds", "nested_summary")
 PER_OUTER_RULES = ("nested_assign_folds", "nested_tally", "nested_refit_winner", "score_outer")
 
 
 def written_files():
-    """Every file the development loop writes (rule all's input before the experiment is closed)."""
+    """Every file the development loop writes that no job would otherwise make (rule all's input before the
+    experiment is closed)."""
     def outputs(names, **wildcards):
         return [str(f) for name in names for f in expand(getattr(rules, name).output, **wildcards)]
 
-    files = outputs(WHOLE_RULES) + fits_of("fits") + fits_of("oof")
+    files = outputs(WHOLE_RULES) + missing_after(rules.tally.output.ranking, fits_of("fits") + fits_of("oof"))
     if learning_files():
-        files += learning_files() + outputs(["learning_summary"])
+        files += outputs(["learning_summary"]) + missing_after(rules.learning_summary.output.summary,
+                                                               learning_files())
     k = PLAN.config["nested"]["k"]
     if k:
         files += outputs(NESTED_WHOLE_RULES) + outputs(PER_OUTER_RULES, outer=range(k))
-        files += [f for outer in range(k) for kind in ("fits", "oof") for f in PLAN.nested_fit_files(kind, outer)]
+        for outer in range(k):
+            files += missing_after(expand(rules.nested_tally.output.ranking, outer=outer)[0],
+                                   PLAN.nested_fit_files("fits", outer) + PLAN.nested_fit_files("oof", outer))
     return files
+
+
+def missing_after(reader_output, paths):
+    """Those of ``paths`` that are not on disk once the job that reads them has run (``reader_output`` exists);
+    none before, when that job will ask for them itself. One listing per folder, not one look per file (a cluster's
+    shared file system is slow at many), and only in the main Snakemake: a cluster job's never reads rule all."""
+    if not workflow.is_main_process or not os.path.exists(reader_output):
+        return []
+    by_folder = {}
+    for path in paths:
+        by_folder.setdefault(os.path.dirname(path), []).append(path)
+    missing = []
+    for folder, inside in by_folder.items():
+        present = set(os.listdir(folder)) if os.path.isdir(folder) else set()
+        missing += [path for path in inside if os.path.basename(path) not in present]
+    return missing
 
 
 def report_inputs(wildcards):
