@@ -27,6 +27,7 @@ import pandas as pd
 from . import display, ledger
 from ._io import read_json, read_parquet, sha256_file, write_atomic, write_json
 from .dataset import KEY
+from .errors import DataError
 from .layout import group_family
 
 MAX_POINTS = 2000  # residuals drawn as points; more rows are summarised by the bins and sampled for the picture
@@ -256,8 +257,6 @@ def summarise_learning(learning_paths: list[str], choice_path: str, metrics: lis
     A step of its own, after every learning-curve job, so that :func:`diagnose` does not wait for them. Tables of
     another candidate than the winner are refused: Snakemake remakes every table after each tally.
     """
-    from .errors import DataError
-
     choice = read_json(choice_path)
     primary = str(choice["metric"])
     winner = str(choice["winner"]["candidate"])
