@@ -33,6 +33,9 @@ class Recorded:
     none_means_absent: bool = False  # the key present with null: the step wrote no such file (its latest record)
 
 
+# The pictures a diagnostics ledger line names (learning: the older layout's plots/learning.png, recorded null now).
+DIAGNOSTICS_PICTURES = ("validation", "learning", "confusion", "calibration", "residuals")
+
 RECORDED: tuple[Recorded, ...] = (
     Recorded("seal", ("files", "test.parquet"), "sealed/test.parquet", "test", "sealed test file", fixed=True),
     Recorded("seal", ("files", "dev.parquet"), "dev.parquet", "dev", "development set", fixed=True),
@@ -81,7 +84,7 @@ RECORDED: tuple[Recorded, ...] = (
              "diagnostics' numbers"),
     *(Recorded("diagnostics", (f"{name}_png_sha256",), f"diagnostics/plots/{name}.png", "diagnostics-plot",
                f"{name} picture of the diagnostics", none_means_absent=True)
-      for name in ("validation", "learning", "confusion", "calibration", "residuals")),
+      for name in DIAGNOSTICS_PICTURES),
     Recorded("learning_summary", ("choice_sha256",), "choice.json", "choice", "choice"),
     Recorded("learning_summary", ("summary_sha256",), "diagnostics/learning.json", "learning-summary",
              "learning curve's summary"),

@@ -16,7 +16,7 @@ from typing import Any
 from .. import ledger
 from ..layout import LEDGER, MANIFEST
 from ..progress import Tracker, describe
-from ..recorded import RECORDED, file_of
+from ..recorded import DIAGNOSTICS_PICTURES, RECORDED, file_of
 from ._common import experiment_folder, short, when
 
 # For every hash an event records (recorded.RECORDED): did the step read that file, write it, or name the file
@@ -40,7 +40,7 @@ DIRECTION: dict[tuple[str, tuple[str, ...]], str] = {
     ("learning_curve", ("learning_sha256",)): "wrote",
     ("diagnostics", ("choice_sha256",)): "read", ("diagnostics", ("diagnostics_sha256",)): "wrote",
     **{("diagnostics", (f"{name}_png_sha256",)): "wrote"
-       for name in ("validation", "learning", "confusion", "calibration", "residuals")},
+       for name in DIAGNOSTICS_PICTURES},
     ("learning_summary", ("choice_sha256",)): "read", ("learning_summary", ("summary_sha256",)): "wrote",
     ("learning_summary", ("png_sha256",)): "wrote",
 }
