@@ -6,6 +6,7 @@ import json
 import shutil
 import subprocess
 import sys
+from collections.abc import Iterator
 from pathlib import Path
 
 import pandas as pd
@@ -57,15 +58,22 @@ def test_the_run_after_the_first_plans_nothing_before_any_opening(nested_sealed_
     assert "Nothing to be done" in dry.stdout + dry.stderr
 
 
-def _planned_files(result: subprocess.CompletedProcess[str], field: str) -> dict[str, set[str]]:
-    """{rule: the files of its planned jobs' `field` line ('input' or 'output')} from a dry run's job listing."""
-    files: dict[str, set[str]] = {}
+def _job_lines(result: subprocess.CompletedProcess[str]) -> Iterator[tuple[str, str]]:
+    """(rule, line) for every line of a dry run's job listing that follows a job's 'rule NAME:' header."""
     rule = None
     for line in (result.stdout + result.stderr).splitlines():
         text = line.strip()
         if text.startswith(("rule ", "localrule ")) and text.endswith(":"):
             rule = text.split()[1].rstrip(":")
-        elif rule and text.startswith(f"{field}: "):
+        elif rule:
+            yield rule, text
+
+
+def _planned_files(result: subprocess.CompletedProcess[str], field: str) -> dict[str, set[str]]:
+    """{rule: the files of its planned jobs' `field` line ('input' or 'output')} from a dry run's job listing."""
+    files: dict[str, set[str]] = {}
+    for rule, text in _job_lines(result):
+        if text.startswith(f"{field}: "):
             files.setdefault(rule, set()).update(text[len(field) + 2:].split(", "))
     return files
 
@@ -475,12 +483,8 @@ def test_a_family_fitted_in_parts_gives_the_same_numbers_and_its_old_files_do_no
 def _memory_requests(result: subprocess.CompletedProcess[str]) -> dict[str, int]:
     """rule -> mem_mb of each job a dry run prints (the rules that plan more than one job must agree)."""
     found: dict[str, set[int]] = {}
-    rule = None
-    for line in (result.stdout + result.stderr).splitlines():
-        text = line.strip()
-        if text.startswith(("rule ", "localrule ")) and text.endswith(":"):
-            rule = text.split()[1].rstrip(":")
-        elif rule and text.startswith("resources:"):
+    for rule, text in _job_lines(result):
+        if text.startswith("resources:"):
             values = dict(part.strip().split("=", 1) for part in text[len("resources:"):].split(","))
             if "mem_mb" in values:  # the target rule 'all' asks for nothing
                 found.setdefault(rule, set()).add(int(values["mem_mb"]))
