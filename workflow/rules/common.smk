@@ -128,27 +128,30 @@ def written_files():
     def outputs(names, **wildcards):
         return [str(f) for name in names for f in expand(getattr(rules, name).output, **wildcards)]
 
-    files = outputs(WHOLE_RULES) + missing_after(rules.tally.output.ranking, fits_of("fits") + fits_of("oof"))
+    files = outputs(WHOLE_RULES)
+    files += missing_after(rules.tally.output.ranking, lambda: fits_of("fits") + fits_of("oof"))
     if learning_files():
         files += outputs(["learning_summary"]) + missing_after(rules.learning_summary.output.summary,
-                                                               learning_files())
+                                                               learning_files)
     k = PLAN.config["nested"]["k"]
     if k:
         files += outputs(NESTED_WHOLE_RULES) + outputs(PER_OUTER_RULES, outer=range(k))
         for outer in range(k):
             files += missing_after(expand(rules.nested_tally.output.ranking, outer=outer)[0],
-                                   PLAN.nested_fit_files("fits", outer) + PLAN.nested_fit_files("oof", outer))
+                                   lambda outer=outer: [f for kind in ("fits", "oof")
+                                                        for f in PLAN.nested_fit_files(kind, outer)])
     return files
 
 
-def missing_after(reader_output, paths):
-    """Those of ``paths`` that are not on disk once the job that reads them has run (``reader_output`` exists);
-    none before, when that job will ask for them itself. One listing per folder, not one look per file (a cluster's
-    shared file system is slow at many), and only in the main Snakemake: a cluster job's never reads rule all."""
+def missing_after(reader_output, listed):
+    """Those of the paths ``listed()`` gives that are not on disk once the job that reads them has run
+    (``reader_output`` exists); none before, when that job will ask for them itself (and the list is not even built).
+    One listing per folder, not one look per file (a cluster's shared file system is slow at many), and only in the
+    main Snakemake: a cluster job's never reads rule all."""
     if not workflow.is_main_process or not os.path.exists(reader_output):
         return []
     by_folder = {}
-    for path in paths:
+    for path in listed():
         by_folder.setdefault(os.path.dirname(path), []).append(path)
     missing = []
     for folder, inside in by_folder.items():
