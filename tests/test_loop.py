@@ -112,18 +112,36 @@ def test_run_change_run_add_run_open_counts_three_rounds_and_reruns_only_what_ch
     assert choice["optimism"]["candidates_counted"] == 7 and choice["candidates"] == 7
 
 
-def test_optimism_counts_candidates_of_earlier_rounds(work: Path) -> None:
-    """Eight trees that differ only by their seed, then only the best of them kept: the optimism over both rounds
-    must exceed the last round's alone (selection among noise is optimistic; one candidate has nothing to pick)."""
-    exp = work / "results" / "bc"
+@pytest.fixture(scope="module")
+def two_rounds_once(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """Eight trees that differ only by their seed, then only the best of them kept: two rounds through the CLI,
+    once for this module (tests take copies of it)."""
+    work = tmp_path_factory.mktemp("rounds")
+    breast_cancer_frame().to_csv(work / "data.csv", index=False)
+    write_config(work, small_classification_config())
     edit(work, lambda c: c.update(candidates={"tree": {
         "estimator": "sklearn.tree.DecisionTreeClassifier", "params": {"max_features": 0.3},
         "grid": {"random_state": list(range(8))}}}, metrics=["accuracy"]))
     ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
-    winner = json.loads((exp / "choice.json").read_text())["winner"]["spec"]["params"]["random_state"]
+    winner = json.loads((work / "results" / "bc" / "choice.json").read_text())["winner"]["spec"]["params"][
+        "random_state"]
     edit(work, lambda c: c["candidates"]["tree"]["grid"].update(random_state=[winner]))
     ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
-    choice = json.loads((exp / "choice.json").read_text())
+    return work
+
+
+@pytest.fixture
+def two_rounds(two_rounds_once: Path, tmp_path: Path) -> Path:
+    """A private copy of the two-round project, times and Snakemake metadata included."""
+    target = tmp_path / "rounds"
+    shutil.copytree(two_rounds_once, target, symlinks=True)
+    return target
+
+
+def test_optimism_counts_candidates_of_earlier_rounds(two_rounds: Path) -> None:
+    """The optimism over both rounds must exceed the last round's alone (selection among noise is optimistic; one
+    candidate has nothing to pick)."""
+    choice = json.loads((two_rounds / "results" / "bc" / "choice.json").read_text())
     assert choice["rounds"]["count"] == 2 and choice["rounds"]["candidates_tried"] == 8
     assert choice["candidates"] == 1
     everything, last_round = choice["optimism"], choice["optimism"]["this_round_only"]
@@ -132,6 +150,109 @@ def test_optimism_counts_candidates_of_earlier_rounds(work: Path) -> None:
     # happens to be best on every fold of round 1 too (0 either way); it may never be smaller over more candidates.
     assert everything["tibshirani"]["optimism"] >= last_round["tibshirani"]["optimism"] == 0.0
     assert everything["bbc_candidates"] == 8 and everything["tibshirani_candidates"] == 8
+
+
+@pytest.mark.parametrize("damage", ["deleted", "cut short", "round 1 taken out"])
+def test_a_lost_or_shortened_history_index_stops_the_tally_until_it_is_put_back(two_rounds: Path,
+                                                                                 damage: str) -> None:
+    """The attack: delete history/index.json (or cut it, or take round 1's candidates out of it) and make the tally
+    run again. Before, the tally started the history afresh: "8 candidates tried in all" became 1, the optimism
+    lost round 1, and the audit passed. Now the tally stops with one line and writes nothing; put back, it runs."""
+    exp = two_rounds / "results" / "bc"
+    index_path = exp / "history" / "index.json"
+    recorded = index_path.read_bytes()
+    index = json.loads(recorded)
+    current = json.loads((exp / "choice.json").read_text())["winner"]["candidate"]  # round 2's one candidate
+    kept = {c: e for c, e in index["candidates"].items() if c == current}
+    assert len(index["candidates"]) == 8 and len(kept) == 1
+    if damage == "deleted":
+        index_path.unlink()
+        said = "is missing, but the tally at ledger seq"
+    elif damage == "cut short":
+        index_path.write_bytes(recorded[:40])
+        said = "cannot be read as the history index"
+    else:
+        index_path.write_text(json.dumps({**index, "candidates": kept}))
+        said = "lists 1 candidate(s), but the tally"
+    (exp / "ranking.parquet").unlink()  # the tally must run again
+    history = tree_digest(exp / "history")
+    ledger_before = (exp / "ledger.jsonl").read_bytes()
+    result = run_cli(two_rounds, "run", "config.yaml", "--cores", "2")
+    assert result.returncode == 1
+    errors = [line for line in result.stderr.splitlines() if line.startswith("holdfast: data error:")]
+    assert len(errors) == 1 and said in errors[0], result.stderr[-3000:]
+    assert "'results/bc/history/index.json'" in errors[0] and "counted 8 candidate(s) tried in all" in errors[0]
+    assert "Traceback" not in result.stderr + result.stdout
+    assert tree_digest(exp / "history") == history, "the history the tally refused must stay as it was"
+    assert (exp / "ledger.jsonl").read_bytes() == ledger_before, "a refused tally records nothing"
+    if damage == "deleted":  # put back (once is enough: the same bytes whatever the damage was), the run goes on
+        index_path.write_bytes(recorded)
+        ok(run_cli(two_rounds, "run", "config.yaml", "--cores", "2"))
+        choice = json.loads((exp / "choice.json").read_text())
+        assert choice["rounds"]["candidates_tried"] == 8 and choice["optimism"]["bbc_candidates"] == 8
+        assert ok(run_cli(two_rounds, "audit", "results/bc")).stdout.startswith("PASS")
+
+
+def _earlier_candidate_file(exp: Path, kind: str, nth: int = 0) -> Path:
+    """The history file (``kind`` 'fits' or 'oof') of a round-1 candidate that round 2 no longer has."""
+    index = json.loads((exp / "history" / "index.json").read_text())
+    current = json.loads((exp / "choice.json").read_text())["winner"]["candidate"]
+    return exp / sorted(e[kind] for c, e in index["candidates"].items() if c != current)[nth]
+
+
+@pytest.mark.parametrize("case", ["round set-up overwritten", "history oof cut short", "history fits swapped"])
+def test_a_damaged_round_or_history_file_stops_its_step_with_one_line(two_rounds: Path, case: str) -> None:
+    """Files a step finds by itself, not through its inputs: rounds/<n>.json (record_round copies or compares a
+    set-up from it) and the history the tally's optimism estimates read. Damaged, each stops its step with one
+    line naming it (its sha256 against the ledger's or the index's record); put back, the run goes on."""
+    exp = two_rounds / "results" / "bc"
+    if case == "round set-up overwritten":
+        damaged, forced = exp / "rounds" / "2.json", exp / "rounds" / "current.json"
+        original = damaged.read_bytes()
+        damaged.write_text('{"round": 2, "setup": {}}\n')  # valid JSON, not what was recorded
+        said = "(selection round 2's set-up, recorded at ledger seq"
+    else:
+        damaged = _earlier_candidate_file(exp, "oof" if "oof" in case else "fits")
+        forced, original = exp / "ranking.parquet", damaged.read_bytes()
+        if "cut" in case:
+            damaged.write_bytes(original[:300])
+        else:
+            damaged.write_bytes(_earlier_candidate_file(exp, "fits", 1).read_bytes())  # another real fit table
+        said = "kept in history/index.json for the optimism estimates of later rounds) is not the file the index"
+    forced.unlink()  # the step must run again
+    ledger_before = (exp / "ledger.jsonl").read_bytes()
+    result = run_cli(two_rounds, "run", "config.yaml", "--cores", "2")
+    assert result.returncode == 1
+    errors = [line for line in result.stderr.splitlines() if line.startswith("holdfast: data error:")]
+    assert len(errors) == 1 and said in errors[0], result.stderr[-3000:]
+    assert f"'{damaged.relative_to(two_rounds)}'" in errors[0] and "put back" in errors[0]
+    assert "Traceback" not in result.stderr + result.stdout
+    assert (exp / "ledger.jsonl").read_bytes() == ledger_before, "a refused step records nothing"
+    if case == "history oof cut short":  # put back (once: the other cases are the same mechanism), it runs
+        damaged.write_bytes(original)
+        ok(run_cli(two_rounds, "run", "config.yaml", "--cores", "2"))
+        assert json.loads((exp / "choice.json").read_text())["rounds"]["candidates_tried"] == 8
+
+
+def test_the_audit_names_a_tally_that_counted_fewer_candidates_than_an_earlier_one(two_rounds: Path) -> None:
+    """What an older holdfast wrote after a lost history index: a later tally counting fewer candidates tried. The
+    ledger stays a consistent chain (forged here as such a run would have written it), so only this check sees it."""
+    from holdfast._io import canonical_json
+
+    exp = two_rounds / "results" / "bc"
+    assert ok(run_cli(two_rounds, "audit", "results/bc")).stdout.startswith("PASS")
+    items = entries(exp)
+    last = max(i for i, e in enumerate(items) if e["event"] == "tally")
+    again = json.loads(json.dumps(items[last]))
+    again["details"]["candidates_tried"] = 1
+    items.append(again)
+    rechain(items, len(items) - 1)
+    (exp / "ledger.jsonl").write_text("".join(canonical_json(e) + "\n" for e in items))
+    audit = run_cli(two_rounds, "audit", "results/bc")
+    assert audit.returncode == 1, audit.stdout
+    problems = [line for line in audit.stdout.splitlines() if line.strip().startswith("- [")]
+    assert len(problems) == 1 and "[history-shrank]" in problems[0], audit.stdout
+    assert f"seq {len(items) - 1} counted 1 candidate(s) tried in all, fewer than the 8" in problems[0]
 
 
 # --- the opening: once, deliberately ---------------------------------------------------------------------------------

@@ -2,10 +2,11 @@
 
 It recomputes the hash chain, then checks every file whose sha256 the ledger records (the table in
 ``recorded.py``), then what those files say: the development/test split, the folds, the ranking against
-the fit records, the choice against the ranking and its declared rule, the nested summary against the
-outer scores, the model and the openings. It reads only the ``row_key`` column of the sealed test file,
-never its features or target. It runs only while no step is writing: every step holds the experiment's
-steps lock shared, and the audit takes it exclusively or reports that a run is in progress.
+the fit records, the choice against the ranking and its declared rule, the count of candidates tried (it
+never falls from one tally to the next), the nested summary against the outer scores, the model and the
+openings. It reads only the ``row_key`` column of the sealed test file, never its features or target. It
+runs only while no step is writing: every step holds the experiment's steps lock shared, and the audit
+takes it exclusively or reports that a run is in progress.
 """
 
 from __future__ import annotations
@@ -43,7 +44,8 @@ from .recorded import scope_folder, verify
 PASS, FAIL, IN_PROGRESS = "pass", "fail", "in progress"
 CHECKS = ["hash chain", "seal anchor and experiment name", "every file whose sha256 the ledger records",
           "dev/test overlap", "fold coverage", "fits on the current folds", "ranking against the fit records",
-          "choice against the ranking and its rule", "nested summary against the outer scores",
+          "choice against the ranking and its rule",
+          "no tally counting fewer candidates tried than an earlier one", "nested summary against the outer scores",
           "model against the choice", "openings and verdict"]
 
 
@@ -549,6 +551,24 @@ def _check_history(exp: Path, entries: list[dict[str, Any]], verified: dict[str,
                 verified[entry[kind]] = actual
 
 
+def _check_tried_count(exp: Path, entries: list[dict[str, Any]], verified: dict[str, str],
+                       out: list[Problem]) -> None:
+    """No tally counted fewer candidates tried in all than an earlier one: the history only grows, so a smaller
+    count means candidates of earlier rounds were dropped, and that tally's optimism estimates leave them out."""
+    most, most_seq = 0, None
+    for entry in ledger.events(entries, "tally"):
+        tried = entry.get("details", {}).get("candidates_tried")
+        if tried is None:
+            continue
+        if int(tried) < most:
+            out.append(Problem("history-shrank", f"the tally at ledger seq {entry['seq']} counted {int(tried)} "
+                               f"candidate(s) tried in all, fewer than the {most} the tally at seq {most_seq} "
+                               "counted: candidates of earlier rounds were dropped from history/index.json, and "
+                               "that tally's optimism estimates leave them out"))
+        elif int(tried) > most:
+            most, most_seq = int(tried), entry["seq"]
+
+
 def _guarded(name: str, check: Any, exp: Path, entries: list[dict[str, Any]], verified: dict[str, str],
              out: list[Problem]) -> None:
     """Run a check of what verified files say; content no holdfast step writes is a problem, not a crash."""
@@ -572,6 +592,7 @@ def _audit_now(exp: Path, expect_head: tuple[int, str] | None, public_key: str |
         _guarded("ranking and choice", _check_rankings, exp, entries, verified, problems)
         _guarded("nested summary", _check_nested_summary, exp, entries, verified, problems)
         _guarded("history", _check_history, exp, entries, verified, problems)
+        _guarded("candidates tried", _check_tried_count, exp, entries, verified, problems)
         model_sha = _check_choice(exp, entries, problems)
         openings = _check_openings(exp, entries, model_sha, problems)
     extra = {"signed_with": signed_with,

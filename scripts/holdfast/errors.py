@@ -7,6 +7,12 @@ user sees one line and knows the fix (format: ``<what is wrong>; <what to do>``)
 from __future__ import annotations
 
 
+def first_sentence(exc: BaseException) -> str:
+    """What a library's exception says, on one line and up to its first full stop (its class name if it says
+    nothing): the reason shown inside holdfast's own one-line message about a file that cannot be read."""
+    return " ".join(str(exc).split()).split(". ")[0].rstrip(".") or type(exc).__name__
+
+
 class HoldfastError(Exception):
     """Base of every deliberate holdfast failure."""
 

@@ -18,9 +18,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from . import ledger
 from ._io import read_json, sha256_file, write_json, write_parquet
 from .dataset import KEY
-from .errors import DataError
+from .errors import DataError, first_sentence
 
 HISTORY = "history"
 INDEX = "history/index.json"
@@ -35,6 +36,42 @@ def read_index(exp: Path) -> dict[str, Any]:
     """The history index: candidate id → family, fold table, first round and files (empty before any tally)."""
     path = exp / INDEX
     return read_json(path) if path.exists() else {"candidates": {}, "fold_tables": {}}
+
+
+def read_index_for_tally(exp: Path, ledger_path: str | Path) -> dict[str, Any]:
+    """The history index a tally builds on; refused when it lists fewer candidates than an earlier tally counted.
+
+    A tally that found no index (deleted), or one cut short or with entries taken out, would start the history
+    again from the current candidates: "tried in all" would shrink and the optimism estimates would leave out the
+    candidates of earlier rounds, a smaller correction than the selection earned, with nothing left to say so.
+    Before the first tally there is nothing to check.
+    """
+    entries = ledger.read(ledger_path) if Path(ledger_path).exists() else []
+    counted = [e for e in ledger.events(entries, "tally") if "candidates_tried" in e.get("details", {})]
+    if not counted:
+        return read_index(exp)
+    most = max(counted, key=lambda e: int(e["details"]["candidates_tried"]))
+    tried, seq = int(most["details"]["candidates_tried"]), most["seq"]
+    path = exp / INDEX
+    counted_by = f"the tally at ledger seq {seq} counted {tried} candidate(s) tried in all"
+    mend = (f"put back the copy the ledger recorded ('holdfast audit {exp}' names the file; the history of earlier "
+            "rounds is not made again)")
+    if not path.exists():
+        raise DataError(f"'{path}' is missing, but {counted_by} from it: without it this tally would count only the "
+                        "current candidates and its optimism estimates would leave out those of earlier rounds; "
+                        f"{mend}")
+    try:
+        index = read_json(path)
+        if not isinstance(index["candidates"], dict) or not isinstance(index["fold_tables"], dict):
+            raise TypeError("its candidates and fold tables are not mappings")
+    except (ValueError, KeyError, TypeError, OSError) as exc:
+        raise DataError(f"'{path}' cannot be read as the history index ({first_sentence(exc)}), but {counted_by} "
+                        f"from it: it was cut short or changed after that tally; {mend}") from None
+    listed = len(index["candidates"])
+    if listed < tried:
+        raise DataError(f"'{path}' lists {listed} candidate(s), but {counted_by}: candidates of earlier rounds were "
+                        f"taken out of it, and this tally's optimism estimates would leave them out; {mend}")
+    return index
 
 
 def to_archive(index: dict[str, Any], fits: pd.DataFrame, folds_sha256: str) -> set[str]:
@@ -108,9 +145,23 @@ def candidates_on(index: dict[str, Any], folds_sha256: str) -> list[str]:
     return sorted(c for c, e in index["candidates"].items() if e["fold_table"] == table and e["complete"])
 
 
+def _verified(exp: Path, index: dict[str, Any], cid: str, kind: str) -> Path:
+    """The history file of candidate ``cid`` (``kind`` 'fits' or 'oof') once its bytes are the ones the index
+    recorded: a file cut short, swapped or deleted would change the optimism estimates without a word."""
+    entry = index["candidates"][cid]
+    path = exp / entry[kind]
+    actual = sha256_file(path) if path.is_file() else None
+    if actual != entry.get(f"{kind}_sha256"):
+        state = "missing" if actual is None else "not the file the index recorded (its sha256 differs)"
+        raise DataError(f"'{path}' ({kind} of candidate {cid}, kept in {INDEX} for the optimism estimates of later "
+                        f"rounds) is {state}; put back the copy the index recorded ('holdfast audit {exp}' names "
+                        "every such file; the history of earlier rounds is not made again)")
+    return path
+
+
 def fits_of(exp: Path, index: dict[str, Any], ids: list[str]) -> pd.DataFrame:
     """The archived fit records of these candidates, concatenated."""
-    return pd.concat([pd.read_parquet(exp / index["candidates"][c]["fits"]) for c in ids], ignore_index=True)
+    return pd.concat([pd.read_parquet(_verified(exp, index, c, "fits")) for c in ids], ignore_index=True)
 
 
 def oof_by_repeat(exp: Path, index: dict[str, Any], ids: list[str], rows: np.ndarray, classes: list[Any] | None,
@@ -123,22 +174,21 @@ def oof_by_repeat(exp: Path, index: dict[str, Any], ids: list[str], rows: np.nda
     no one will read; files are read one candidate at a time.
     """
     left_out: list[str] = []
-    stored: list[str] = []
+    stored: dict[str, Path] = {}
     repeats: dict[str, set[Any]] = {}
     for cid in ids:
-        entry = index["candidates"][cid]
-        if "oof" not in entry:
+        if "oof" not in index["candidates"][cid]:
             left_out.append(cid)
             continue
-        stored.append(cid)
-        repeats[cid] = set(pd.read_parquet(exp / entry["oof"], columns=["repeat"])["repeat"].unique())
+        stored[cid] = _verified(exp, index, cid, "oof")
+        repeats[cid] = set(pd.read_parquet(stored[cid], columns=["repeat"])["repeat"].unique())
     if not stored:
         return [], left_out
     shared = sorted(set.intersection(*repeats.values()))
     proba = [f"proba_{c}" for c in classes] if classes is not None else None
     out: list[dict[str, dict[str, np.ndarray]]] = [{} for _ in shared]
-    for cid in stored:
-        frame = pd.read_parquet(exp / index["candidates"][cid]["oof"])
+    for cid, path in stored.items():
+        frame = pd.read_parquet(path)
         per_repeat = []
         for repeat in shared:
             part = frame[frame["repeat"] == repeat].set_index("pos")

@@ -15,6 +15,7 @@ from typing import Any
 
 from . import ledger
 from ._io import canonical_json, read_json, sha256_file, sha256_text, write_json
+from .errors import DataError
 
 ROUNDS_DIR = "rounds"
 CURRENT = "rounds/current.json"
@@ -73,6 +74,22 @@ def _main_events(entries: list[dict[str, Any]], name: str) -> list[dict[str, Any
     return ledger.events(entries, name)
 
 
+def _recorded_round(exp: Path, number: int, entries: list[dict[str, Any]]) -> dict[str, Any]:
+    """rounds/<number>.json, once its bytes are the ones the ledger's latest record of that round names (a new
+    round is compared with it, and an unchanged set-up is copied from it)."""
+    recorded = [e for e in _main_events(entries, "round") if int(e["details"]["round"]) == number]
+    path = exp / ROUNDS_DIR / f"{number}.json"
+    expected = recorded[-1]["details"].get("round_sha256") if recorded else None
+    actual = sha256_file(path) if path.is_file() else None
+    if expected is not None and actual != expected:
+        state = "missing" if actual is None else "changed since the ledger recorded it (its sha256 differs)"
+        seq = recorded[-1]["seq"]
+        raise DataError(f"'{path}' (selection round {number}'s set-up, recorded at ledger seq {seq}) is {state}; "
+                        f"put back the copy the ledger recorded ('holdfast audit {exp}' names it; a round's "
+                        "record is not made again)")
+    return read_json(path)
+
+
 def record_round(exp_dir: str, setup: dict[str, Any], out_path: str, ledger_path: str,
                  rule: str | None = None) -> dict[str, Any]:
     """Record the set-up about to be fitted as the current round (a new one only if the last one was tallied)."""
@@ -82,7 +99,7 @@ def record_round(exp_dir: str, setup: dict[str, Any], out_path: str, ledger_path
     rounds = _main_events(entries, "round")
     last = rounds[-1] if rounds else None
     if last is not None and last["details"].get("setup_sha256") == digest:
-        current = read_json(exp / ROUNDS_DIR / f"{last['details']['round']}.json")
+        current = _recorded_round(exp, int(last["details"]["round"]), entries)
         write_json(out_path, current)
         return current
     seen = last is not None and any(e["seq"] > last["seq"] for e in _main_events(entries, "tally"))
@@ -90,7 +107,7 @@ def record_round(exp_dir: str, setup: dict[str, Any], out_path: str, ledger_path
     # compared with the round before that one.
     number = 1 if last is None else int(last["details"]["round"]) + (1 if seen else 0)
     replaces = last is not None and not seen
-    baseline = read_json(exp / ROUNDS_DIR / f"{number - 1}.json") if number > 1 else None
+    baseline = _recorded_round(exp, number - 1, entries) if number > 1 else None
     change = changes(baseline["setup"], setup) if baseline else None
     ranking = exp / "ranking.parquet"
     visible = sha256_file(ranking) if (seen and ranking.exists()) else None

@@ -15,7 +15,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from .errors import DataError, HoldfastError
+from .errors import DataError, HoldfastError, first_sentence
 
 
 def _redirect_log(path: str) -> int:
@@ -324,7 +324,7 @@ def _unreadable(path: str) -> str | None:
             with open(path, encoding="utf-8") as handle:
                 json.load(handle)
     except Exception as exc:  # what pyarrow or json says, up to its first full stop, is the reason shown
-        return " ".join(str(exc).split()).split(". ")[0].rstrip(".") or type(exc).__name__
+        return first_sentence(exc)
     return None
 
 

@@ -391,9 +391,9 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     scorer = optimism_estimates.sklearn_scorer(primary, task, classes) if len(dev) >= 2 else None
     wanted: set[str] = set()
     if round_path is not None:
-        from .history import read_index, to_archive
+        from .history import read_index_for_tally, to_archive
 
-        wanted = to_archive(read_index(Path(ranking_path).parent), fits, folds_sha256)
+        wanted = to_archive(read_index_for_tally(Path(ranking_path).parent, ledger_path), fits, folds_sha256)
     gathered, archived = gather_oof(oof_paths, dev_all[KEY], every, list(matrix.columns), classes, scorer,
                                     Path(ranking_path).parent if round_path is not None else None, wanted,
                                     folds_sha256)
