@@ -128,6 +128,34 @@ def test_a_file_cut_short_after_its_step_stops_the_next_step_with_one_line_and_d
     assert "audit PASS" in mended.stdout and table.read_bytes() == recorded
 
 
+@pytest.mark.parametrize("kind", ["oof", "fits"])
+def test_a_table_swapped_for_another_readable_one_is_named_as_changed_not_as_a_failed_fit(
+        nested_sealed_copy: Path, kind: str) -> None:
+    """Another fold's real table in place of one: every byte reads, so the tally fails on what it finds inside
+    (too many out-of-fold rows: a DataError advising to drop failed candidates; missing fold scores: a ValueError
+    deeper down). The one line names the swapped file as not what the ledger recorded, with the tally's reason."""
+    exp = nested_sealed_copy / "results" / "nested-demo"
+    table = exp / f"{kind}/logistic/r0f2.parquet"
+    recorded = table.read_bytes()
+    table.write_bytes((exp / f"{kind}/logistic/r0f1.parquet").read_bytes())
+    broken = run_cli(nested_sealed_copy, "run", "config.yaml", "--cores", "2")
+    assert broken.returncode != 0
+    screen = broken.stdout + broken.stderr
+    errors = [line for line in screen.splitlines() if line.startswith("holdfast: data error:")]
+    assert len(errors) == 1, screen
+    assert errors[0].startswith(f"holdfast: data error: '{table.relative_to(nested_sealed_copy)}' is not the file "
+                                "the ledger last recorded for it: it was changed after the step that wrote it, and "
+                                "this step failed on what it read (")
+    said = "out-of-fold rows for" if kind == "oof" else "NaN or infinite"
+    assert said in errors[0] and "'holdfast audit results/nested-demo' names every file" in errors[0]
+    assert "Traceback" not in screen
+    if kind == "oof":  # put back (once: the same mechanism for both), the run goes on
+        table.write_bytes(recorded)
+        mended = run_cli(nested_sealed_copy, "run", "config.yaml", "--cores", "2")
+        assert mended.returncode == 0, mended.stdout[-3000:] + mended.stderr[-3000:]
+        assert "audit PASS" in mended.stdout
+
+
 def test_second_run_has_nothing_to_do(bc_copy: Path) -> None:
     dry = run_workflow(bc_copy, "-n")
     assert dry.returncode == 0, dry.stderr[-2000:]

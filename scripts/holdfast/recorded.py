@@ -186,6 +186,18 @@ def _at(record: _Record) -> str:
     return f"seq {record.entry.get('seq')} ({record.entry.get('event')})"
 
 
+def not_as_recorded(exp: Path, entries: list[dict[str, Any]], names: list[str]) -> list[str]:
+    """Those of ``names`` (paths relative to ``exp``) whose bytes are not the ones the ledger last recorded for
+    them (changed or missing); files the ledger records nothing for are left out. Hashes only these files."""
+    found = _records(entries, [])
+    out = []
+    for name in dict.fromkeys(names):
+        records = found.get(name)
+        if records and records[-1].sha is not None and _sha(exp / name) != records[-1].sha:
+            out.append(name)
+    return out
+
+
 def verify(exp: Path, entries: list[dict[str, Any]], out: list[Problem]) -> dict[str, str]:
     """Check every recorded file; append a problem for each one that is missing, changed or unrecorded.
 

@@ -274,15 +274,18 @@ def run(smk: Any) -> None:
             with ledger.locked(experiment_dir(smk.config) / STEPS_LOCK, shared=True):
                 STEPS[smk.rule](smk)
     except HoldfastError as exc:
-        _fail(exc, stderr)
-    except Exception:
+        changed = changed_inputs(smk) if isinstance(exc, DataError) else []
+        _fail(DataError(_changed_message(smk, changed, exc.message)) if changed else exc, stderr)
+    except Exception as exc:
         damaged = unreadable_files(smk)
-        if not damaged:
+        changed = [] if damaged else changed_inputs(smk)
+        if not damaged and not changed:
             raise  # a failure of the step itself: its traceback goes to the log
         import traceback
 
         traceback.print_exc()  # what the step tripped on, for the log; the one line below says why
-        _fail(DataError(_damaged_message(smk, damaged)), stderr)
+        message = _damaged_message(smk, damaged) if damaged else _changed_message(smk, changed, first_sentence(exc))
+        _fail(DataError(message), stderr)
 
 
 def _fail(exc: HoldfastError, stderr: int) -> None:
@@ -294,6 +297,13 @@ def _fail(exc: HoldfastError, stderr: int) -> None:
     raise StepError(exc.format_message()) from None
 
 
+def _job_files(smk: Any) -> list[str]:
+    """The job's input files and the params naming an existing Parquet or JSON file, each once."""
+    paths = [p for p in smk.input if isinstance(p, str)]
+    paths += [p for p in smk.params if isinstance(p, str) and p.endswith((".parquet", ".json")) and os.path.isfile(p)]
+    return list(dict.fromkeys(paths))
+
+
 def unreadable_files(smk: Any) -> list[tuple[str, str]]:
     """The job's Parquet and JSON files (its inputs, and params naming an existing file) that cannot be read
     whole, each with pyarrow's or json's reason; empty when every one reads.
@@ -301,10 +311,8 @@ def unreadable_files(smk: Any) -> list[tuple[str, str]]:
     Asked only after a step failed with an error holdfast did not raise on purpose: a recorded file that was cut
     short or overwritten after the step that wrote it then gets one line naming it instead of a traceback.
     """
-    paths = [p for p in smk.input if isinstance(p, str)]
-    paths += [p for p in smk.params if isinstance(p, str) and p.endswith((".parquet", ".json")) and os.path.isfile(p)]
     damaged = []
-    for path in dict.fromkeys(paths):
+    for path in _job_files(smk):
         reason = _unreadable(path)
         if reason is not None:
             damaged.append((path, reason))
@@ -328,22 +336,66 @@ def _unreadable(path: str) -> str | None:
     return None
 
 
-def _damaged_message(smk: Any, damaged: list[tuple[str, str]]) -> str:
-    """The one line for a step that failed on files changed after they were written: the first, how many, what
-    to do (the seal's own files are never made again, so they must be put back)."""
+def changed_inputs(smk: Any) -> list[str]:
+    """The job's files (as :func:`_job_files`) whose bytes are no longer those the ledger last recorded for them.
+
+    Asked only after a step failed: a table swapped for another readable one (another fold's, an edited copy)
+    makes a step fail on what it finds inside, with advice meant for a failed fit; the file is the cause. Empty
+    when the ledger cannot be read (the audit says why) or records none of them.
+    """
+    from . import ledger
+    from .config import experiment_dir
+    from .layout import LEDGER
+    from .recorded import not_as_recorded
+
+    exp = experiment_dir(smk.config)
+    try:
+        entries = ledger.read(exp / LEDGER)
+    except Exception:  # no ledger yet, or a broken one: nothing to compare with here
+        return []
+    names = []
+    for path in _job_files(smk):
+        try:
+            names.append(Path(path).resolve().relative_to(exp.resolve()).as_posix())
+        except ValueError:
+            continue  # outside the experiment (the data file): not recorded
+    return [str(exp / name) for name in not_as_recorded(exp, entries, names)]
+
+
+def _mend(smk: Any, paths: list[str]) -> str:
+    """What to do about changed files: put the recorded copy back, or (not for the seal's files) have it remade."""
     from .config import experiment_dir
     from .layout import DEV, MANIFEST, TEST
 
     exp = experiment_dir(smk.config)
+    sealed = {str(exp / name) for name in (DEV, MANIFEST, TEST)}
+    if any(p in sealed for p in paths):
+        return "put back the copy the ledger recorded (the seal never runs again)"
+    return "put back the copy the ledger recorded, or delete the file and run again to have it made again"
+
+
+def _changed_message(smk: Any, changed: list[str], reason: str) -> str:
+    """The one line for a step that failed with files among its inputs that are not what the ledger recorded."""
+    from .config import experiment_dir
+
+    exp = experiment_dir(smk.config)
+    more = f" (and {len(changed) - 1} more of this step's files)" if len(changed) > 1 else ""
+    return (f"'{changed[0]}' is not the file the ledger last recorded for it{more}: it was changed after the step "
+            f"that wrote it, and this step failed on what it read ({reason}); 'holdfast audit {exp}' names every "
+            f"file that no longer matches the ledger; {_mend(smk, changed)}")
+
+
+def _damaged_message(smk: Any, damaged: list[tuple[str, str]]) -> str:
+    """The one line for a step that failed on files changed after they were written: the first, how many, what
+    to do (the seal's own files are never made again, so they must be put back)."""
+    from .config import experiment_dir
+
+    exp = experiment_dir(smk.config)
     path, reason = damaged[0]
     more = f" (and {len(damaged) - 1} more of this step's files)" if len(damaged) > 1 else ""
-    sealed = {str(exp / name) for name in (DEV, MANIFEST, TEST)}
-    if any(p in sealed for p, _ in damaged):
-        mend = "put back the copy the ledger recorded (the seal never runs again)"
-    else:
-        mend = "put back the copy the ledger recorded, or delete the file and run again to have it made again"
     return (f"'{path}' cannot be read ({reason}){more}: it was cut short or changed after the step that wrote it; "
-            f"'holdfast audit {exp}' names every file that no longer matches the ledger; {mend}")
+            f"'holdfast audit {exp}' names every file that no longer matches the ledger; "
+            f"{_mend(smk, [p for p, _ in damaged])}")
 
 
 class StepError(Exception):
