@@ -156,6 +156,22 @@ def test_a_table_swapped_for_another_readable_one_is_named_as_changed_not_as_a_f
         assert "audit PASS" in mended.stdout
 
 
+def test_a_picture_deleted_from_the_diagnostics_folder_is_drawn_again_by_holdfast_run(
+        nested_sealed_copy: Path) -> None:
+    """The folder is the diagnostics rule's output (which pictures exist depends on the winner), so Snakemake alone
+    does not see a picture deleted from it: holdfast run names it and runs the diagnostics again."""
+    exp = nested_sealed_copy / "results" / "nested-demo"
+    listed = json.loads((exp / "diagnostics/diagnostics.json").read_text())["plots"]
+    picture = exp / "diagnostics" / sorted(listed.values())[0]
+    picture.unlink()
+    assert "diagnostics" not in planned_jobs(run_workflow(nested_sealed_copy, "-n")), "plain Snakemake misses it"
+    again = run_cli(nested_sealed_copy, "run", "config.yaml", "--cores", "2")
+    assert again.returncode == 0, again.stdout[-3000:] + again.stderr[-3000:]
+    said = f"holdfast: '{picture.relative_to(nested_sealed_copy)}' is missing: the diagnostics step runs again"
+    assert said in again.stdout
+    assert picture.is_file() and "audit PASS" in again.stdout
+
+
 def test_second_run_has_nothing_to_do(bc_copy: Path) -> None:
     dry = run_workflow(bc_copy, "-n")
     assert dry.returncode == 0, dry.stderr[-2000:]

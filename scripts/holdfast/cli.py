@@ -445,11 +445,36 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
     config_copy = _store_config(raw, plan.exp)
     if plan.closed:
         _say(f"experiment '{plan.config['experiment']}' was opened: nothing up to the opening runs again")
+    missing = [] if plan.closed or not forces_nothing(extra) else _pictures_missing(plan.exp)
+    if missing:
+        more = f" (and {len(missing) - 1} more)" if len(missing) > 1 else ""
+        _say(f"'{missing[0]}'{more} is missing: the diagnostics step runs again to draw it")
+        extra = [*extra, "--forcerun=diagnostics"]
     dry = any(w in DRY_RUN for w in extra)
     code = _snakemake(config_copy, extra, plan.exp, args.show_snakemake or dry, "run")
     if code or dry:
         return code
     return _finish(plan.exp, plan.config["data"].get("unit"))
+
+
+def _pictures_missing(exp: Path) -> list[str]:
+    """Pictures the diagnostics' summary lists that are not in its folder any more.
+
+    The folder ``diagnostics/plots/`` is the rule's output (which pictures exist depends on the winner), so
+    Snakemake sees the folder, not a picture deleted from it, and would leave it missing (the audit failing on
+    it) until the diagnostics ran for some other reason. A damaged summary is left to the step and the audit.
+    """
+    from ._io import read_json
+
+    summary = exp / "diagnostics" / "diagnostics.json"
+    if not summary.is_file():
+        return []
+    try:
+        listed = read_json(summary).get("plots") or {}
+        names = [str(name) for name in listed.values()]
+    except (ValueError, OSError, AttributeError):
+        return []
+    return [str(summary.parent / name) for name in names if not (summary.parent / name).exists()]
 
 
 def _open(args: argparse.Namespace, extra: list[str]) -> int:
