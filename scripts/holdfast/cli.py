@@ -507,9 +507,12 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
         entries = ledger.verify_chain(exp / "ledger.jsonl")[0]
         raise SealedAccessError(refusal(plan.config["experiment"], plan.opened, last_opening(exp, entries),
                                         plan.allowed_openings))
-    if not (exp / MODEL).exists() or not (exp / CHOICE).exists():
-        raise SealedAccessError(f"experiment '{exp}' has no refit winner yet; run 'holdfast run {config_path}' "
-                                "first")
+    absent = [str(exp / name) for name in (CHOICE, MODEL) if not (exp / name).exists()]
+    if absent:
+        # Also after a run whose tally or refit failed: Snakemake deletes a job's old outputs before it runs.
+        raise SealedAccessError(f"experiment '{exp}' has no refit winner to open the test set on ('{absent[0]}' is "
+                                f"missing); run 'holdfast run {config_path}' first: it makes the file, or says in one "
+                                "line why it cannot")
     before = _in_worker("holdfast.audit:audit", str(exp))
     # After a first opening, a reason in the config allows another: the audit then names that state, which is
     # no reason to refuse the opening the reason was written for.
