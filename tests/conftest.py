@@ -230,28 +230,29 @@ def nested_finished(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return workdir
 
 
+def private_copy(project: Path, target: Path) -> Path:
+    """A copy of a project a module-scoped fixture built, for one test to change: file times, symbolic links and
+    Snakemake's metadata kept, so Snakemake sees the same state."""
+    shutil.copytree(project, target, symlinks=True)
+    return target
+
+
 @pytest.fixture
 def bc_copy(bc_finished: Path, tmp_path: Path) -> Path:
     """A private copy of the finished experiment, times and Snakemake metadata included."""
-    target = tmp_path / "work"
-    shutil.copytree(bc_finished, target, symlinks=True)
-    return target
+    return private_copy(bc_finished, tmp_path / "work")
 
 
 @pytest.fixture
 def nested_sealed_copy(nested_finished: Path, tmp_path: Path) -> Path:
     """A private copy of the nested experiment as it was before its opening: the development loop's state."""
-    target = tmp_path / "nested-sealed"
-    shutil.copytree(nested_finished.parent / f"{nested_finished.name}-sealed", target, symlinks=True)
-    return target
+    return private_copy(nested_finished.parent / f"{nested_finished.name}-sealed", tmp_path / "nested-sealed")
 
 
 @pytest.fixture
 def nested_copy(nested_finished: Path, tmp_path: Path) -> Path:
     """A private copy of the finished nested experiment."""
-    target = tmp_path / "nested-work"
-    shutil.copytree(nested_finished, target, symlinks=True)
-    return target
+    return private_copy(nested_finished, tmp_path / "nested-work")
 
 
 def tree_digest(root: Path) -> dict[str, str]:

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-from conftest import breast_cancer_frame, run_cli, tree_digest, write_config
+from conftest import breast_cancer_frame, private_copy, run_cli, tree_digest, write_config
 from holdfast import display, ledger
 from holdfast.commands.predict import NEVER_OPENED
 from holdfast.commands.starter import words
@@ -90,9 +90,7 @@ def fresh(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 @pytest.fixture
 def fresh_copy(fresh: Path, tmp_path: Path) -> Path:
-    target = tmp_path / "fresh-work"
-    shutil.copytree(fresh, target, symlinks=True)
-    return target
+    return private_copy(fresh, tmp_path / "fresh-work")
 
 
 # ----------------------------------------------------------------------------------------------------------------

@@ -23,6 +23,7 @@ from conftest import (
     REPO,
     breast_cancer_frame,
     planned_jobs,
+    private_copy,
     run_cli,
     run_workflow,
     small_classification_config,
@@ -133,9 +134,7 @@ def two_rounds_once(tmp_path_factory: pytest.TempPathFactory) -> Path:
 @pytest.fixture
 def two_rounds(two_rounds_once: Path, tmp_path: Path) -> Path:
     """A private copy of the two-round project, times and Snakemake metadata included."""
-    target = tmp_path / "rounds"
-    shutil.copytree(two_rounds_once, target, symlinks=True)
-    return target
+    return private_copy(two_rounds_once, tmp_path / "rounds")
 
 
 def test_optimism_counts_candidates_of_earlier_rounds(two_rounds: Path) -> None:
@@ -325,9 +324,7 @@ def opened_once(tmp_path_factory: pytest.TempPathFactory) -> Path:
 @pytest.fixture
 def opened(opened_once: Path, tmp_path: Path) -> Path:
     """A private copy of the opened experiment's project, times and Snakemake metadata included."""
-    target = tmp_path / "opened"
-    shutil.copytree(opened_once, target, symlinks=True)
-    return target
+    return private_copy(opened_once, tmp_path / "opened")
 
 
 KEPT = ("model/model.skops", "model/provenance.json", "final/verdict.json", "sealed/manifest.json",
