@@ -151,28 +151,30 @@ def test_optimism_counts_candidates_of_earlier_rounds(two_rounds: Path) -> None:
     assert everything["bbc_candidates"] == 8 and everything["tibshirani_candidates"] == 8
 
 
-@pytest.mark.parametrize("damage", ["deleted", "cut short", "round 1 taken out"])
-def test_a_lost_or_shortened_history_index_stops_the_tally_until_it_is_put_back(two_rounds: Path,
-                                                                                 damage: str) -> None:
-    """The attack: delete history/index.json (or cut it, or take round 1's candidates out of it) and make the tally
-    run again. Before, the tally started the history afresh: "8 candidates tried in all" became 1, the optimism
-    lost round 1, and the audit passed. Now the tally stops with one line and writes nothing; put back, it runs."""
+@pytest.mark.parametrize("damage", ["deleted", "cut short", "round 1 taken out", "edited consistently"])
+def test_a_lost_or_edited_history_index_stops_the_tally_until_it_is_put_back(two_rounds: Path, damage: str) -> None:
+    """The attack: delete history/index.json, cut it, take round 1's candidates out of it, or point an entry at
+    other predictions with their sha256, and make the tally run again. Before, the tally built on it: "8
+    candidates tried in all" became 1 (or the optimism rested on the edit), it recorded the result, and the audit
+    passed. Now the tally stops with one line and writes nothing; put back, it runs."""
     exp = two_rounds / "results" / "bc"
     index_path = exp / "history" / "index.json"
     recorded = index_path.read_bytes()
     index = json.loads(recorded)
     current = json.loads((exp / "choice.json").read_text())["winner"]["candidate"]  # round 2's one candidate
-    kept = {c: e for c, e in index["candidates"].items() if c == current}
-    assert len(index["candidates"]) == 8 and len(kept) == 1
+    assert len(index["candidates"]) == 8 and current in index["candidates"]
+    said = "is not the history index the tally at ledger seq"
     if damage == "deleted":
         index_path.unlink()
         said = "is missing, but the tally at ledger seq"
     elif damage == "cut short":
         index_path.write_bytes(recorded[:40])
-        said = "cannot be read as the history index"
-    else:
-        index_path.write_text(json.dumps({**index, "candidates": kept}))
-        said = "lists 1 candidate(s), but the tally"
+    elif damage == "round 1 taken out":
+        index_path.write_text(json.dumps({**index, "candidates": {current: index["candidates"][current]}}))
+    else:  # an earlier candidate's entry now names the winner's predictions, sha256 and all: every file matches
+        other = sorted(c for c in index["candidates"] if c != current)[0]
+        index["candidates"][other].update({k: index["candidates"][current][k] for k in ("oof", "oof_sha256")})
+        index_path.write_text(json.dumps(index))
     (exp / "ranking.parquet").unlink()  # the tally must run again
     history = tree_digest(exp / "history")
     ledger_before = (exp / "ledger.jsonl").read_bytes()
@@ -180,7 +182,7 @@ def test_a_lost_or_shortened_history_index_stops_the_tally_until_it_is_put_back(
     assert result.returncode == 1
     errors = [line for line in result.stderr.splitlines() if line.startswith("holdfast: data error:")]
     assert len(errors) == 1 and said in errors[0], result.stderr[-3000:]
-    assert "'results/bc/history/index.json'" in errors[0] and "counted 8 candidate(s) tried in all" in errors[0]
+    assert "'results/bc/history/index.json'" in errors[0] and "counting 8 candidate(s) tried in all" in errors[0]
     assert "Traceback" not in result.stderr + result.stdout
     assert tree_digest(exp / "history") == history, "the history the tally refused must stay as it was"
     assert (exp / "ledger.jsonl").read_bytes() == ledger_before, "a refused tally records nothing"
@@ -190,6 +192,21 @@ def test_a_lost_or_shortened_history_index_stops_the_tally_until_it_is_put_back(
         choice = json.loads((exp / "choice.json").read_text())
         assert choice["rounds"]["candidates_tried"] == 8 and choice["optimism"]["bbc_candidates"] == 8
         assert ok(run_cli(two_rounds, "audit", "results/bc")).stdout.startswith("PASS")
+
+
+def test_a_tally_stopped_between_recording_its_index_and_moving_it_into_place_is_finished_by_the_next(
+        two_rounds: Path) -> None:
+    """The tally writes history/index.next.json, records its sha256, then moves it over index.json: stopped in
+    between, index.json is the older one. The next tally finds the recorded index waiting and moves it in."""
+    exp = two_rounds / "results" / "bc"
+    index_path, waiting = exp / "history" / "index.json", exp / "history" / "index.next.json"
+    recorded = index_path.read_bytes()
+    index_path.rename(waiting)
+    index_path.write_text(json.dumps({"candidates": {}, "fold_tables": {}}))  # as if an older index were left
+    (exp / "ranking.parquet").unlink()
+    ok(run_cli(two_rounds, "run", "config.yaml", "--cores", "2"))
+    assert index_path.read_bytes() == recorded and not waiting.exists()
+    assert json.loads((exp / "choice.json").read_text())["rounds"]["candidates_tried"] == 8
 
 
 def _earlier_candidate_file(exp: Path, kind: str, nth: int = 0) -> Path:

@@ -11,6 +11,7 @@ so hundreds of candidates stay small in memory; the tally archives them one oof/
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -21,10 +22,13 @@ import pandas as pd
 from . import ledger
 from ._io import read_json, sha256_file, write_json, write_parquet
 from .dataset import KEY
-from .errors import DataError, first_sentence
+from .errors import DataError
 
 HISTORY = "history"
 INDEX = "history/index.json"
+# A tally writes the new index here, records its sha256 in the ledger, and only then moves it over INDEX: so
+# INDEX is always the one the latest tally recorded, and a later tally can refuse any other (promote()).
+INDEX_NEXT = "history/index.next.json"
 
 
 def table_id(folds_sha256: str) -> str:
@@ -39,39 +43,43 @@ def read_index(exp: Path) -> dict[str, Any]:
 
 
 def read_index_for_tally(exp: Path, ledger_path: str | Path) -> dict[str, Any]:
-    """The history index a tally builds on; refused when it lists fewer candidates than an earlier tally counted.
+    """The history index a tally builds on: the one the latest tally recorded, refused otherwise.
 
-    A tally that found no index (deleted), or one cut short or with entries taken out, would start the history
-    again from the current candidates: "tried in all" would shrink and the optimism estimates would leave out the
-    candidates of earlier rounds, a smaller correction than the selection earned, with nothing left to say so.
-    Before the first tally there is nothing to check.
+    A tally that found no index (deleted), or one cut short, edited or with entries taken out, would build on it:
+    started afresh, "tried in all" would shrink and the optimism estimates would leave out the candidates of
+    earlier rounds; edited consistently (an entry pointing at other predictions, with their sha256), the next
+    tally would record the edit and the audit would pass. Before the first tally there is nothing to check.
     """
     entries = ledger.read(ledger_path) if Path(ledger_path).exists() else []
-    counted = [e for e in ledger.events(entries, "tally") if "candidates_tried" in e.get("details", {})]
-    if not counted:
+    recorded = [e for e in ledger.events(entries, "tally") if e.get("details", {}).get("history_index_sha256")]
+    if not recorded:
         return read_index(exp)
-    most = max(counted, key=lambda e: int(e["details"]["candidates_tried"]))
-    tried, seq = int(most["details"]["candidates_tried"]), most["seq"]
-    path = exp / INDEX
-    counted_by = f"the tally at ledger seq {seq} counted {tried} candidate(s) tried in all"
+    last = recorded[-1]
+    expected = last["details"]["history_index_sha256"]
+    path, seq = exp / INDEX, last["seq"]
+    ahead = exp / INDEX_NEXT
+    if ahead.is_file() and sha256_file(ahead) == expected and (not path.is_file() or sha256_file(path) != expected):
+        promote(exp)  # the tally that recorded it stopped before moving it into place
+    most = max(int(e["details"].get("candidates_tried") or 0) for e in recorded)
+    counted_by = f"the tally at ledger seq {seq} recorded it (counting {most} candidate(s) tried in all)"
     mend = (f"put back the copy the ledger recorded ('holdfast audit {exp}' names the file; the history of earlier "
             "rounds is not made again)")
-    if not path.exists():
-        raise DataError(f"'{path}' is missing, but {counted_by} from it: without it this tally would count only the "
-                        "current candidates and its optimism estimates would leave out those of earlier rounds; "
-                        f"{mend}")
-    try:
-        index = read_json(path)
-        if not isinstance(index["candidates"], dict) or not isinstance(index["fold_tables"], dict):
-            raise TypeError("its candidates and fold tables are not mappings")
-    except (ValueError, KeyError, TypeError, OSError) as exc:
-        raise DataError(f"'{path}' cannot be read as the history index ({first_sentence(exc)}), but {counted_by} "
-                        f"from it: it was cut short or changed after that tally; {mend}") from None
-    listed = len(index["candidates"])
-    if listed < tried:
-        raise DataError(f"'{path}' lists {listed} candidate(s), but {counted_by}: candidates of earlier rounds were "
-                        f"taken out of it, and this tally's optimism estimates would leave them out; {mend}")
+    if not path.is_file():
+        raise DataError(f"'{path}' is missing, but {counted_by}: without it this tally would count only the current "
+                        f"candidates and its optimism estimates would leave out those of earlier rounds; {mend}")
+    if sha256_file(path) != expected:
+        raise DataError(f"'{path}' is not the history index {counted_by}: it was cut short or edited since, and "
+                        f"this tally's optimism estimates would rest on it; {mend}")
+    index = read_json(path)
+    if len(index["candidates"]) < most:  # a ledger an older holdfast wrote after such an edit
+        raise DataError(f"'{path}' lists {len(index['candidates'])} candidate(s), but an earlier tally counted "
+                        f"{most} tried in all: candidates of earlier rounds were taken out of it; {mend}")
     return index
+
+
+def promote(exp: Path) -> None:
+    """Move the index a tally wrote and recorded into place (see :data:`INDEX_NEXT`)."""
+    os.replace(exp / INDEX_NEXT, exp / INDEX)
 
 
 def to_archive(index: dict[str, Any], fits: pd.DataFrame, folds_sha256: str) -> set[str]:
@@ -135,7 +143,7 @@ def archive(exp: Path, fits: pd.DataFrame, oof_files: dict[str, dict[str, str]],
             "family": candidates.get(cid, {}).get("family", str(part["family"].iloc[0])),
             "fold_table": table, "first_round": int(entry["first_round"]) if entry else round_number,
             "complete": complete, **files}
-    write_json(exp / INDEX, index)
+    write_json(exp / INDEX_NEXT, index)  # in place once the tally recorded it (promote)
     return index
 
 

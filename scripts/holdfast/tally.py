@@ -24,6 +24,7 @@ from . import optimism as optimism_estimates
 from ._io import read_json, read_parquet, sha256_file, write_atomic, write_json, write_parquet
 from .dataset import KEY, key_positions
 from .errors import FitError
+from .history import INDEX_NEXT, promote
 from .optimism import OofCollector
 
 CAUTION = ("A cross-validated estimate describes data like the development set. It is not a guarantee "
@@ -465,7 +466,9 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
         "choice_sha256": sha256_file(choice_path), "plot": str(Path(plot_path).name),
         "bbc_seed": int(selection["seed"]), "bbc_draws": int(selection["bootstrap"]),
         **({"round": rounds_info["count"], "candidates_tried": rounds_info["candidates_tried"],
-            "history_index_sha256": sha256_file(Path(ranking_path).parent / "history" / "index.json")}
+            "history_index_sha256": sha256_file(Path(ranking_path).parent / INDEX_NEXT)}
            if rounds_info is not None else {}),
     }, rule=rule_name)
+    if rounds_info is not None:
+        promote(Path(ranking_path).parent)  # recorded first, so the index in place is always a recorded one
     return choice
