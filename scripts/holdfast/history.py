@@ -61,15 +61,16 @@ def read_index_for_tally(exp: Path, ledger_path: str | Path) -> dict[str, Any]:
     if ahead.is_file() and sha256_file(ahead) == expected and (not path.is_file() or sha256_file(path) != expected):
         promote(exp)  # the tally that recorded it stopped before moving it into place
     most = max(int(e["details"].get("candidates_tried") or 0) for e in recorded)
-    counted_by = f"the tally at ledger seq {seq} recorded it (counting {most} candidate(s) tried in all)"
+    tally_at, counting = f"the tally at ledger seq {seq}", f"(counting {most} candidate(s) tried in all)"
     mend = (f"put back the copy the ledger recorded ('holdfast audit {exp}' names the file; the history of earlier "
             "rounds is not made again)")
     if not path.is_file():
-        raise DataError(f"'{path}' is missing, but {counted_by}: without it this tally would count only the current "
-                        f"candidates and its optimism estimates would leave out those of earlier rounds; {mend}")
+        raise DataError(f"'{path}' is missing, but {tally_at} recorded it {counting}: without it this tally would "
+                        "count only the current candidates and its optimism estimates would leave out those of "
+                        f"earlier rounds; {mend}")
     if sha256_file(path) != expected:
-        raise DataError(f"'{path}' is not the history index {counted_by}: it was cut short or edited since, and "
-                        f"this tally's optimism estimates would rest on it; {mend}")
+        raise DataError(f"'{path}' is not the history index {tally_at} recorded {counting}: it was cut short or "
+                        f"edited since, and this tally's optimism estimates would rest on it; {mend}")
     index = read_json(path)
     if len(index["candidates"]) < most:  # a ledger an older holdfast wrote after such an edit
         raise DataError(f"'{path}' lists {len(index['candidates'])} candidate(s), but an earlier tally counted "
