@@ -23,6 +23,7 @@ from . import ledger
 from ._io import read_json, sha256_file, write_json, write_parquet
 from .dataset import KEY
 from .errors import DataError
+from .recorded import last_record
 
 HISTORY = "history"
 INDEX = "history/index.json"
@@ -51,16 +52,15 @@ def read_index_for_tally(exp: Path, ledger_path: str | Path) -> dict[str, Any]:
     tally would record the edit and the audit would pass. Before the first tally there is nothing to check.
     """
     entries = ledger.read(ledger_path) if Path(ledger_path).exists() else []
-    recorded = [e for e in ledger.events(entries, "tally") if e.get("details", {}).get("history_index_sha256")]
-    if not recorded:
+    found = last_record(entries, INDEX)
+    if found is None or found[0] is None:
         return read_index(exp)
-    last = recorded[-1]
-    expected = last["details"]["history_index_sha256"]
-    path, seq = exp / INDEX, last["seq"]
+    expected, seq = found[0], found[1]["seq"]
+    path = exp / INDEX
     ahead = exp / INDEX_NEXT
     if ahead.is_file() and sha256_file(ahead) == expected and (not path.is_file() or sha256_file(path) != expected):
         promote(exp)  # the tally that recorded it stopped before moving it into place
-    most = max(int(e["details"].get("candidates_tried") or 0) for e in recorded)
+    most = max(int(e["details"].get("candidates_tried") or 0) for e in ledger.events(entries, "tally"))
     tally_at, counting = f"the tally at ledger seq {seq}", f"(counting {most} candidate(s) tried in all)"
     mend = (f"put back the copy the ledger recorded ('holdfast audit {exp}' names the file; the history of earlier "
             "rounds is not made again)")

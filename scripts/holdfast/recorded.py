@@ -186,6 +186,13 @@ def _at(record: _Record) -> str:
     return f"seq {record.entry.get('seq')} ({record.entry.get('event')})"
 
 
+def last_record(entries: list[dict[str, Any]], name: str) -> tuple[Any, dict[str, Any]] | None:
+    """The sha256 the ledger last recorded for file ``name`` (relative to the experiment; None: recorded as not
+    written) and the ledger line that recorded it; None when no line names the file."""
+    records = _records(entries, []).get(name)
+    return (records[-1].sha, records[-1].entry) if records else None
+
+
 def not_as_recorded(exp: Path, entries: list[dict[str, Any]], names: list[str]) -> list[str]:
     """Those of ``names`` (paths relative to ``exp``) whose bytes are not the ones the ledger last recorded for
     them (changed or missing); files the ledger records nothing for are left out. Hashes only these files."""

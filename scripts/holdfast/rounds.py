@@ -16,6 +16,7 @@ from typing import Any
 from . import ledger
 from ._io import canonical_json, read_json, sha256_file, sha256_text, write_json
 from .errors import DataError
+from .recorded import last_record
 
 ROUNDS_DIR = "rounds"
 CURRENT = "rounds/current.json"
@@ -77,13 +78,13 @@ def _main_events(entries: list[dict[str, Any]], name: str) -> list[dict[str, Any
 def _recorded_round(exp: Path, number: int, entries: list[dict[str, Any]]) -> dict[str, Any]:
     """rounds/<number>.json, once its bytes are the ones the ledger's latest record of that round names (a new
     round is compared with it, and an unchanged set-up is copied from it)."""
-    recorded = [e for e in _main_events(entries, "round") if int(e["details"]["round"]) == number]
-    path = exp / ROUNDS_DIR / f"{number}.json"
-    expected = recorded[-1]["details"].get("round_sha256") if recorded else None
+    name = f"{ROUNDS_DIR}/{number}.json"
+    path = exp / name
+    found = last_record(entries, name)
     actual = sha256_file(path) if path.is_file() else None
-    if expected is not None and actual != expected:
+    if found is not None and found[0] is not None and actual != found[0]:
         state = "missing" if actual is None else "changed since the ledger recorded it (its sha256 differs)"
-        seq = recorded[-1]["seq"]
+        seq = found[1]["seq"]
         raise DataError(f"'{path}' (selection round {number}'s set-up, recorded at ledger seq {seq}) is {state}; "
                         f"put back the copy the ledger recorded ('holdfast audit {exp}' names it; a round's "
                         "record is not made again)")

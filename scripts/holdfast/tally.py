@@ -24,7 +24,17 @@ from . import optimism as optimism_estimates
 from ._io import read_json, read_parquet, sha256_file, write_atomic, write_json, write_parquet
 from .dataset import KEY, key_positions
 from .errors import FitError
-from .history import INDEX_NEXT, promote
+from .history import (
+    INDEX_NEXT,
+    archive,
+    archive_oof,
+    candidates_on,
+    fits_of,
+    oof_by_repeat,
+    promote,
+    read_index_for_tally,
+    to_archive,
+)
 from .optimism import OofCollector
 
 CAUTION = ("A cross-validated estimate describes data like the development set. It is not a guarantee "
@@ -274,8 +284,6 @@ def gather_oof(oof_paths: list[str], dev_keys: pd.Series, counted: np.ndarray, c
     """
     import pyarrow.parquet as pq
 
-    from .history import archive_oof
-
     paths = sorted(oof_paths)
     template = pd.concat([pq.read_schema(p).empty_table().to_pandas() for p in paths], ignore_index=True)
     position = np.where(counted, np.cumsum(counted) - 1, -1)  # dev position -> position among counted rows
@@ -322,8 +330,6 @@ def optimism_over_history(exp: Path, index: dict[str, Any], dev: pd.DataFrame, r
     BBC-CV draws over every complete candidate of every round; Tibshirani–Tibshirani compares the winner's
     fold scores with the best of every candidate scored on the current fold table.
     """
-    from .history import candidates_on, fits_of, oof_by_repeat
-
     same_folds = candidates_on(index, folds_sha256)
     matrix = stats.fold_score_matrix(fits_of(exp, index, same_folds), primary).dropna(axis=1)
     tt = optimism_estimates.tibshirani_bias(matrix, winner) if winner in matrix.columns else None
@@ -392,8 +398,6 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     scorer = optimism_estimates.sklearn_scorer(primary, task, classes) if len(dev) >= 2 else None
     wanted: set[str] = set()
     if round_path is not None:
-        from .history import read_index_for_tally, to_archive
-
         wanted = to_archive(read_index_for_tally(Path(ranking_path).parent, ledger_path), fits, folds_sha256)
     gathered, archived = gather_oof(oof_paths, dev_all[KEY], every, list(matrix.columns), classes, scorer,
                                     Path(ranking_path).parent if round_path is not None else None, wanted,
@@ -403,8 +407,6 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     del gathered
     rounds_info: dict[str, Any] | None = None
     if round_path is not None:
-        from .history import archive
-
         round_number = int(read_json(round_path)["round"])
         index = archive(Path(ranking_path).parent, fits, archived, folds_sha256, round_number, candidates)
         current = set(ranking["candidate"])
