@@ -250,6 +250,28 @@ def test_a_damaged_round_or_history_file_stops_its_step_with_one_line(two_rounds
         assert json.loads((exp / "choice.json").read_text())["rounds"]["candidates_tried"] == 8
 
 
+def test_another_rounds_copy_in_place_of_the_current_round_stops_the_tally_until_deleted(two_rounds: Path) -> None:
+    """rounds/current.json is the tally's round number. Round 1's own valid file copied over it made the tally say
+    "chosen after 1 round" and record it (only the closing audit objected). Now the tally checks it against the
+    ledger's latest round and stops with one line; deleted, record_round writes it again and the run goes on."""
+    exp = two_rounds / "results" / "bc"
+    current = exp / "rounds" / "current.json"
+    current.write_bytes((exp / "rounds" / "1.json").read_bytes())  # newer than the ranking: the tally runs again
+    ledger_before = (exp / "ledger.jsonl").read_bytes()
+    result = run_cli(two_rounds, "run", "config.yaml", "--cores", "2")
+    assert result.returncode == 1
+    errors = [line for line in result.stderr.splitlines() if line.startswith("holdfast: data error:")]
+    assert len(errors) == 1, result.stderr[-3000:]
+    assert "'results/bc/rounds/current.json' (the current selection round, recorded at ledger seq" in errors[0]
+    assert "delete it and run again" in errors[0] and "Traceback" not in result.stderr + result.stdout
+    assert (exp / "ledger.jsonl").read_bytes() == ledger_before, "a refused tally records nothing"
+    current.unlink()
+    ok(run_cli(two_rounds, "run", "config.yaml", "--cores", "2"))
+    assert json.loads((exp / "choice.json").read_text())["rounds"] == {
+        **json.loads((exp / "choice.json").read_text())["rounds"], "count": 2, "candidates_tried": 8}
+    assert ok(run_cli(two_rounds, "audit", "results/bc")).stdout.startswith("PASS")
+
+
 def test_the_audit_names_a_tally_that_counted_fewer_candidates_than_an_earlier_one(two_rounds: Path) -> None:
     """What an older holdfast wrote after a lost history index: a later tally counting fewer candidates tried. The
     ledger stays a consistent chain (forged here as such a run would have written it), so only this check sees it."""

@@ -43,7 +43,7 @@ def read_index(exp: Path) -> dict[str, Any]:
     return read_json(path) if path.exists() else {"candidates": {}, "fold_tables": {}}
 
 
-def read_index_for_tally(exp: Path, ledger_path: str | Path) -> dict[str, Any]:
+def read_index_for_tally(exp: Path, entries: list[dict[str, Any]]) -> dict[str, Any]:
     """The history index a tally builds on: the one the latest tally recorded, refused otherwise.
 
     A tally that found no index (deleted), or one cut short, edited or with entries taken out, would build on it:
@@ -51,7 +51,6 @@ def read_index_for_tally(exp: Path, ledger_path: str | Path) -> dict[str, Any]:
     earlier rounds; edited consistently (an entry pointing at other predictions, with their sha256), the next
     tally would record the edit and the audit would pass. Before the first tally there is nothing to check.
     """
-    entries = ledger.read(ledger_path) if Path(ledger_path).exists() else []
     found = last_record(entries, INDEX)
     if found is None or found[0] is None:
         return read_index(exp)

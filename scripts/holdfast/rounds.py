@@ -75,20 +75,33 @@ def _main_events(entries: list[dict[str, Any]], name: str) -> list[dict[str, Any
     return ledger.events(entries, name)
 
 
-def _recorded_round(exp: Path, number: int, entries: list[dict[str, Any]]) -> dict[str, Any]:
-    """rounds/<number>.json, once its bytes are the ones the ledger's latest record of that round names (a new
-    round is compared with it, and an unchanged set-up is copied from it)."""
-    name = f"{ROUNDS_DIR}/{number}.json"
+def _recorded(exp: Path, name: str, what: str, mend: str, entries: list[dict[str, Any]]) -> dict[str, Any]:
+    """The JSON file ``name`` (relative to ``exp``), once its bytes are the ones the ledger last recorded for it;
+    a missing or changed one is refused in one line that says what the file is and how to mend it."""
     path = exp / name
     found = last_record(entries, name)
     actual = sha256_file(path) if path.is_file() else None
     if found is not None and found[0] is not None and actual != found[0]:
         state = "missing" if actual is None else "changed since the ledger recorded it (its sha256 differs)"
-        seq = found[1]["seq"]
-        raise DataError(f"'{path}' (selection round {number}'s set-up, recorded at ledger seq {seq}) is {state}; "
-                        f"put back the copy the ledger recorded ('holdfast audit {exp}' names it; a round's "
-                        "record is not made again)")
+        raise DataError(f"'{path}' ({what}, recorded at ledger seq {found[1]['seq']}) is {state}; {mend}")
     return read_json(path)
+
+
+def _recorded_round(exp: Path, number: int, entries: list[dict[str, Any]]) -> dict[str, Any]:
+    """rounds/<number>.json, checked against its record (a new round is compared with it, and an unchanged
+    set-up is copied from it)."""
+    return _recorded(exp, f"{ROUNDS_DIR}/{number}.json", f"selection round {number}'s set-up",
+                     f"put back the copy the ledger recorded ('holdfast audit {exp}' names it; a round's record is "
+                     "not made again)", entries)
+
+
+def current_round(exp: Path, entries: list[dict[str, Any]]) -> int:
+    """The round number a tally counts, from rounds/current.json once it is the copy the latest round recorded:
+    another round's valid copy put in its place would make the choice say the wrong number of rounds."""
+    found = _recorded(exp, CURRENT, "the current selection round",
+                      "delete it and run again: the record_round step writes it again from the latest round",
+                      entries)
+    return int(found["round"])
 
 
 def record_round(exp_dir: str, setup: dict[str, Any], out_path: str, ledger_path: str,

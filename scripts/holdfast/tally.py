@@ -21,7 +21,7 @@ import pandas as pd
 
 from . import display, ledger, stats
 from . import optimism as optimism_estimates
-from ._io import read_json, read_parquet, sha256_file, write_atomic, write_json, write_parquet
+from ._io import read_parquet, sha256_file, write_atomic, write_json, write_parquet
 from .dataset import KEY, key_positions
 from .errors import FitError
 from .history import (
@@ -36,6 +36,7 @@ from .history import (
     to_archive,
 )
 from .optimism import OofCollector
+from .rounds import current_round
 
 CAUTION = ("A cross-validated estimate describes data like the development set. It is not a guarantee "
            "under distribution shift; decisions about people must also follow their domain's own rules and review.")
@@ -397,8 +398,12 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     classes = sorted(pd.unique(dev[target]).tolist()) if task == "classification" else None
     scorer = optimism_estimates.sklearn_scorer(primary, task, classes) if len(dev) >= 2 else None
     wanted: set[str] = set()
-    if round_path is not None:
-        wanted = to_archive(read_index_for_tally(Path(ranking_path).parent, ledger_path), fits, folds_sha256)
+    round_number = 0
+    if round_path is not None:  # the files this tally builds on, each the copy the ledger last recorded
+        entries = ledger.read(ledger_path) if Path(ledger_path).exists() else []
+        round_number = current_round(Path(ranking_path).parent, entries)
+        wanted = to_archive(read_index_for_tally(Path(ranking_path).parent, entries), fits, folds_sha256)
+        del entries
     gathered, archived = gather_oof(oof_paths, dev_all[KEY], every, list(matrix.columns), classes, scorer,
                                     Path(ranking_path).parent if round_path is not None else None, wanted,
                                     folds_sha256)
@@ -407,7 +412,6 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     del gathered
     rounds_info: dict[str, Any] | None = None
     if round_path is not None:
-        round_number = int(read_json(round_path)["round"])
         index = archive(Path(ranking_path).parent, fits, archived, folds_sha256, round_number, candidates)
         current = set(ranking["candidate"])
         rounds_info = rounds_summary(index, round_number, folds_sha256)
