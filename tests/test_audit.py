@@ -864,7 +864,8 @@ def test_audit_while_a_step_holds_the_experiment_says_in_progress(bc_copy: Path)
 
 
 def test_audit_during_a_real_run_says_in_progress_and_the_run_ends_with_a_fresh_pass(bc_workdir: Path) -> None:
-    """Freeze a real run while one of its steps holds the experiment; audit; let it finish."""
+    """Freeze a real run (``holdfast run``, its worker in the same process group) while one of its steps holds the
+    experiment; audit; let it finish."""
     import os
     import signal
     import time
@@ -873,13 +874,13 @@ def test_audit_during_a_real_run_says_in_progress_and_the_run_ends_with_a_fresh_
     from holdfast.layout import STEPS_LOCK
 
     exp = experiment(bc_workdir)
-    cmd = [sys.executable, "-m", "snakemake", "-s", str(REPO / "Snakefile"), "-d", str(bc_workdir), "--cores", "2",
-           "--configfile", str(bc_workdir / "config.yaml")]
+    cmd = [sys.executable, "-m", "holdfast", "run", "config.yaml", "--cores", "2"]
     run = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, stdin=subprocess.DEVNULL,
-                           env={**os.environ, "PYTHONPATH": str(REPO / "scripts")}, start_new_session=True)
+                           cwd=bc_workdir, env={**os.environ, "PYTHONPATH": str(REPO / "scripts")},
+                           start_new_session=True)
 
-    def held() -> bool:
-        if not exp.is_dir():
+    def held() -> bool:  # by a step after the seal (before it, the folder is not an experiment yet)
+        if not (exp / "ledger.jsonl").is_file():
             return False
         with ledger.locked_if_free(exp / STEPS_LOCK) as free:
             return not free
