@@ -310,6 +310,38 @@ def test_open_asks_on_a_terminal_refuses_without_one_and_refuses_a_second_time(w
     assert sum(e["event"] == "open_test" for e in entries(work / "results/bc")) == 1
 
 
+def test_a_second_opening_started_while_the_first_runs_opens_nothing(two_rounds: Path) -> None:
+    """Two 'holdfast open --yes' (two terminals, a script retried): the second starts once the first has found the
+    experiment unopened and shown what it opens. Before, the second found it unopened too; its Snakemake then failed
+    on the closed experiment and it printed the first one's verdict as its own. Now it is refused in one line and
+    opens nothing; the ledger counts one opening and the audit passes."""
+    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
+    cmd = [sys.executable, "-m", "holdfast", "open", "results/bc", "--yes", "--cores", "2"]
+
+    def start() -> subprocess.Popen[str]:
+        return subprocess.Popen(cmd, cwd=two_rounds, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                                text=True, stdin=subprocess.DEVNULL)
+
+    first = start()
+    shown = []
+    assert first.stdout is not None
+    for line in first.stdout:  # its checks are done: it found the experiment unopened
+        shown.append(line)
+        if "after the opening the experiment is closed" in line:
+            break
+    second = start()
+    out, err = second.communicate(timeout=900)
+    first_out, first_err = first.communicate(timeout=900)
+    assert first.returncode == 0, "".join(shown) + first_out + first_err[-3000:]
+    assert second.returncode == 4 and out.count("holdfast: ") == 0, out + err
+    said = [line for line in err.splitlines() if line.startswith("holdfast: ")]
+    assert len(said) == 1 and "another 'holdfast open' of experiment 'results/bc' is running" in said[0], err
+    events = [e["event"] for e in entries(two_rounds / "results" / "bc")]
+    assert events.count("opening_started") == 1 and events.count("open_test") == 1
+    audited = ok(run_cli(two_rounds, "audit", "results/bc")).stdout
+    assert audited.startswith("PASS") and "test set opened 1 time(s)" in audited
+
+
 def test_a_plain_snakemake_target_cannot_open_without_the_request(work: Path) -> None:
     ok(run_cli(work, "run", "config.yaml", "--cores", "2"))
     result = run_workflow(work, "results/bc/final/verdict.json")

@@ -478,10 +478,6 @@ def _pictures_missing(exp: Path) -> list[str]:
 
 
 def _open(args: argparse.Namespace, extra: list[str]) -> int:
-    from ._io import read_json, sha256_file, write_json
-    from .config import read_yaml
-    from .layout import CHOICE, CONFIG_COPY, MODEL, REQUEST, VERDICT
-
     _refuse_own_options(extra)
     named = [w.split("=", 1)[0] for w in extra if w.split("=", 1)[0] in ("--allowed-rules", "--until", "-U")]
     if named:  # a later option of Snakemake's replaces an earlier one: it would widen what the opening's call may run
@@ -489,6 +485,26 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
                           "report run); leave it out")
     _trust(args.trust_module)
     exp = _experiment_dir(args.experiment_dir)
+    from . import ledger
+    from .layout import OPEN_COMMAND_LOCK
+
+    # One 'holdfast open' at a time, from before it reads whether the experiment was opened to its last line: two
+    # started together would otherwise both find it unopened, and the later one's Snakemake would fail on a closed
+    # experiment and then print the other's verdict as if it were its own.
+    with ledger.locked_if_free(exp / OPEN_COMMAND_LOCK) as free:
+        if not free:
+            raise SealedAccessError(f"another 'holdfast open' of experiment '{exp}' is running, so this one opens "
+                                    f"nothing; once it has ended, 'holdfast audit {exp}' says whether the test set "
+                                    "was opened")
+        return _open_alone(args, extra, exp)
+
+
+def _open_alone(args: argparse.Namespace, extra: list[str], exp: Path) -> int:
+    """holdfast open, once no other opening of ``exp`` runs (see :func:`_open`)."""
+    from ._io import read_json, sha256_file, write_json
+    from .config import read_yaml
+    from .layout import CHOICE, CONFIG_COPY, MODEL, REQUEST, VERDICT
+
     config_path = Path(args.config) if args.config else exp / CONFIG_COPY
     if not config_path.exists():
         raise ConfigError(f"'{config_path}' is missing (the experiment was not run with 'holdfast run'); pass the "
@@ -517,8 +533,12 @@ def _open(args: argparse.Namespace, extra: list[str]) -> int:
     # After a first opening, a reason in the config allows another: the audit then names that state, which is
     # no reason to refuse the opening the reason was written for.
     expected = REOPENING_STATES if plan.opened else ()
-    if any(p["code"] not in expected for p in before["problems"]) or before["state"] == "in progress":
-        problems = "; ".join(f"[{p['code']}] {p['message']}" for p in before["problems"]) or "a run is in progress"
+    if before["state"] == "in progress":  # another run or opening holds it (two openings started at once)
+        raise SealedAccessError(f"experiment '{exp}' is being written by a run or opening in progress, so its test "
+                                "set is not opened now; once that has ended, 'holdfast audit' says whether the test "
+                                "set was opened")
+    if any(p["code"] not in expected for p in before["problems"]):
+        problems = "; ".join(f"[{p['code']}] {p['message']}" for p in before["problems"])
         raise SealedAccessError(f"experiment '{exp}' does not pass its audit, so its test set is not opened: "
                                 f"{problems}")
     from .showing import opening_preview

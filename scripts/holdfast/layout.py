@@ -31,6 +31,11 @@ REPORT_FIGURES = "report_figures"  # the report's pictures as files, for Snakema
 # Every step holds this lock shared while it runs; the audit takes it exclusively (ledger.locked_if_free),
 # so an audit never reads files a step is writing. ledger.locked adds the ".lock" suffix.
 STEPS_LOCK = "steps"
+# The open_test step holds this one exclusively while it records and makes an opening (opening.open_test).
+OPENING_LOCK = "opening"
+# The 'holdfast open' command holds this one exclusively for its whole run (its step takes OPENING_LOCK inside it),
+# so that two commands started together cannot both find the experiment unopened (cli._open).
+OPEN_COMMAND_LOCK = "open-command"
 
 
 def fit_file(kind: str, family: str, repeat: int, fold: int) -> str:

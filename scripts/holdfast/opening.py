@@ -25,7 +25,7 @@ from ._io import read_json, sha256_file, write_json, write_parquet
 from .dataset import split_xy
 from .errors import ModelFileError, SealedAccessError
 from .fit import limit_threads
-from .layout import CHOICE, LEDGER, MANIFEST, MODEL, RANKING, TEST
+from .layout import CHOICE, LEDGER, MANIFEST, MODEL, OPENING_LOCK, RANKING, TEST
 from .refit import load_model
 from .scoring import bootstrap_interval, clopper_pearson, model_outputs, replay
 from .tally import CAUTION
@@ -253,7 +253,7 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
     exp = Path(exp_dir)
     ledger_path = exp / LEDGER
     target = Path(verdict_path)
-    with ledger.locked(exp / "opening"):
+    with ledger.locked(exp / OPENING_LOCK):
         entries = ledger.read(ledger_path)
         before = openings.records(exp).count
         allowed = 1 + len(reopen_reasons)
