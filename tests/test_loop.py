@@ -34,6 +34,8 @@ from holdfast import ledger
 
 pytestmark = pytest.mark.slow
 
+EMPTY_SHA256 = "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855"
+
 
 def entries(exp: Path) -> list[dict[str, Any]]:
     """The ledger's entries, parsed."""
@@ -340,6 +342,23 @@ def test_a_second_opening_started_while_the_first_runs_opens_nothing(two_rounds:
     assert events.count("opening_started") == 1 and events.count("open_test") == 1
     audited = ok(run_cli(two_rounds, "audit", "results/bc")).stdout
     assert audited.startswith("PASS") and "test set opened 1 time(s)" in audited
+
+
+def test_open_refuses_a_config_that_is_not_the_latest_rounds(two_rounds: Path) -> None:
+    """'holdfast open --config' with round 1's grid (or any edit never run): before, it opened and stored that
+    config as the experiment's own, so config.json and the report named eight candidates beside a verdict chosen
+    from one. Now it is refused in one line naming the change, and nothing is written."""
+    shutil.copy(two_rounds / "config.yaml", two_rounds / "earlier.yaml")
+    edit(two_rounds, lambda c: c["candidates"]["tree"]["grid"].update(random_state=list(range(8))), "earlier.yaml")
+    before = tree_digest(two_rounds / "results")
+    result = run_cli(two_rounds, "open", "results/bc", "--yes", "--config", "earlier.yaml", "--cores", "2")
+    assert result.returncode == 2, result.stdout + result.stderr
+    said = [line for line in result.stderr.splitlines() if line.startswith("holdfast: ")]
+    assert len(said) == 1 and "is not what selection round 2 (the latest the ledger records) chose from" in said[0]
+    assert "family tree: 7 candidate(s) added, 0 removed" in said[0] and "as round 3" in said[0], said
+    after = tree_digest(two_rounds / "results")
+    assert after.pop("bc/open-command.lock") == EMPTY_SHA256  # the one-opening-at-a-time lock, empty
+    assert after == before, "a refused opening writes nothing"
 
 
 def test_a_plain_snakemake_target_cannot_open_without_the_request(work: Path) -> None:

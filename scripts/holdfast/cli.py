@@ -6,6 +6,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import getpass
+import json
 import os
 import signal
 import subprocess
@@ -523,6 +524,7 @@ def _open_alone(args: argparse.Namespace, extra: list[str], exp: Path) -> int:
         entries = ledger.verify_chain(exp / "ledger.jsonl")[0]
         raise SealedAccessError(refusal(plan.config["experiment"], plan.opened, last_opening(exp, entries),
                                         plan.allowed_openings))
+    _same_setup_as_recorded(plan, exp, config_path)
     absent = [str(exp / name) for name in (CHOICE, MODEL) if not (exp / name).exists()]
     if absent:
         # Also after a run whose tally or refit failed: Snakemake deletes a job's old outputs before it runs.
@@ -585,6 +587,30 @@ def _open_alone(args: argparse.Namespace, extra: list[str], exp: Path) -> int:
     if report:
         _say(f"the report was not remade (the opening itself is done); make it with 'holdfast run {config_path}'")
     return _finish(exp, plan.config["data"].get("unit")) or (1 if report else 0)
+
+
+def _same_setup_as_recorded(plan: Any, exp: Path, config_path: Path) -> None:
+    """Refuse to open with a config whose candidates, folds, metrics or rule are not the latest selection round's.
+
+    The opening scores the model the ledger's refit recorded, but its config is stored as the experiment's own
+    (config.json) and the report reads it: a grid edited and never run would then describe candidates that were
+    never fitted, beside a verdict they had no part in.
+    """
+    from . import ledger, rounds
+
+    entries = ledger.read(exp / "ledger.jsonl")
+    recorded = ledger.events(entries, "round")
+    if not recorded:
+        return
+    number = int(recorded[-1]["details"]["round"])
+    setup = json.loads(plan.round_setup())
+    if rounds.setup_hash(setup) == recorded[-1]["details"].get("setup_sha256"):
+        return
+    latest = rounds.recorded_round(exp, number, entries)
+    change = rounds.summary(rounds.changes(latest["setup"], setup)) or "its set-up differs"
+    raise ConfigError(f"config '{config_path}' is not what selection round {number} (the latest the ledger records) "
+                      f"chose from: {change}; open with the experiment's own config (leave out --config), or run "
+                      f"'holdfast run {config_path}' first, which records the change as round {number + 1}")
 
 
 def _opened_now(exp: Path, number: int) -> bool:

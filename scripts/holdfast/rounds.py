@@ -87,7 +87,7 @@ def _recorded(exp: Path, name: str, what: str, mend: str, entries: list[dict[str
     return read_json(path)
 
 
-def _recorded_round(exp: Path, number: int, entries: list[dict[str, Any]]) -> dict[str, Any]:
+def recorded_round(exp: Path, number: int, entries: list[dict[str, Any]]) -> dict[str, Any]:
     """rounds/<number>.json, checked against its record (a new round is compared with it, and an unchanged
     set-up is copied from it)."""
     return _recorded(exp, f"{ROUNDS_DIR}/{number}.json", f"selection round {number}'s set-up",
@@ -113,7 +113,7 @@ def record_round(exp_dir: str, setup: dict[str, Any], out_path: str, ledger_path
     rounds = _main_events(entries, "round")
     last = rounds[-1] if rounds else None
     if last is not None and last["details"].get("setup_sha256") == digest:
-        current = _recorded_round(exp, int(last["details"]["round"]), entries)
+        current = recorded_round(exp, int(last["details"]["round"]), entries)
         write_json(out_path, current)
         return current
     seen = last is not None and any(e["seq"] > last["seq"] for e in _main_events(entries, "tally"))
@@ -121,7 +121,7 @@ def record_round(exp_dir: str, setup: dict[str, Any], out_path: str, ledger_path
     # compared with the round before that one.
     number = 1 if last is None else int(last["details"]["round"]) + (1 if seen else 0)
     replaces = last is not None and not seen
-    baseline = _recorded_round(exp, number - 1, entries) if number > 1 else None
+    baseline = recorded_round(exp, number - 1, entries) if number > 1 else None
     change = changes(baseline["setup"], setup) if baseline else None
     ranking = exp / "ranking.parquet"
     visible = sha256_file(ranking) if (seen and ranking.exists()) else None
