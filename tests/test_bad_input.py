@@ -215,6 +215,20 @@ def infinite_feature(workdir: Path, config: dict[str, Any]) -> None:
     use_data(workdir, config, frame)
 
 
+def numbers_with_words(workdir: Path, config: dict[str, Any]) -> None:
+    """A feature column of numbers in which a few cells say 'unknown' (as exported by many tools): read as text."""
+    frame = breast_cancer_frame()
+    frame["mean_radius"] = frame["mean_radius"].astype(str)
+    frame.loc[[3, 40, 41], "mean_radius"] = "unknown"
+    use_data(workdir, config, frame)
+
+
+def text_column_missing(workdir: Path, config: dict[str, Any]) -> None:
+    """data.text names a column the data file does not have."""
+    use_data(workdir, config, breast_cancer_frame())
+    config["data"]["text"] = ["mean_radios"]
+
+
 def grid_above_max_candidates(workdir: Path, config: dict[str, Any]) -> None:
     """A 30-point grid (32 candidates in all) against max_candidates 20."""
     config["candidates"]["logistic"]["grid"] = {"C": [round(0.01 * 1.3**i, 6) for i in range(30)]}
@@ -595,6 +609,14 @@ CASES = [
     pytest.param(infinite_feature, DATA_ERROR,
                  r"feature column 'mean_radius' has 1 infinite value\(s\) in 'bad\.csv'; replace them with finite "
                  r"values or blanks", id="feature-infinite"),
+    pytest.param(numbers_with_words, DATA_ERROR,
+                 r"feature column 'mean_radius' holds numbers in 566 of its 569 filled cells and text in 3 "
+                 r"\('unknown'\) in 'bad\.csv': read as text it would be one categorical feature with \d+ levels; "
+                 r"blank those cells .*, or list the column in data\.text if it is text on purpose",
+                 id="feature-numbers-with-words"),
+    pytest.param(text_column_missing, DATA_ERROR,
+                 r"column 'mean_radios' \(data\.text\) is not in '.*'; remove it from data\.text",
+                 id="text-column-missing"),
     pytest.param(grid_above_max_candidates, CONFIG_ERROR,
                  r"the candidate grids expand to 32 candidates, more than max_candidates \(20\); shrink the grids or "
                  r"raise max_candidates", id="grid-above-max-candidates"),
@@ -726,7 +748,7 @@ CLI_RUN = {"metric-binary-on-three-classes", "metric-default-on-three-classes", 
            "target-infinite", "time-epoch-seconds", "time-unit-on-text", "class-of-one-row",
            "class-only-in-sealed-rows", "test-rows-one-class", "metric-outside-target-range", "grid-five-by-sixty",
            "experiment-trailing-newline", "reopen-reason-blank", "reopen-reason-repeated", "results-symlink-outside",
-           "experiment-symlink-outside"}
+           "experiment-symlink-outside", "feature-numbers-with-words"}
 
 # Through the real `holdfast run`, whose full check runs in a child of the command's job worker (holdfast.worker.call,
 # holdfast.cli._in_worker): config and data errors, one case per kind of check (data, estimator import, metric, a sealed

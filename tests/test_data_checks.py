@@ -80,6 +80,33 @@ def test_a_nested_column_listed_in_drop_is_sealed_and_never_a_feature(tmp_path: 
     assert "tags" not in feature_columns(dev, plan.spec)
 
 
+def test_a_column_of_codes_listed_in_data_text_is_sealed_as_text(tmp_path: Path,
+                                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    """Mostly digits but text on purpose (ward codes '12', '07', 'ICU'): data.text lets it through as text, the same
+    column without it is refused (tests/test_bad_input.py), and a column of real words is never looked at twice."""
+    from holdfast.dataset import check_numbers_read_as_text
+    from holdfast.errors import DataError
+    from holdfast.plan import prepare
+
+    frame = breast_cancer_frame()
+    frame["ward"] = [("ICU" if i % 10 == 0 else f"{i % 13:02d}") for i in range(len(frame))]
+    frame["site"] = [("north" if i % 2 else "south") for i in range(len(frame))]
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    config = small_classification_config("data.csv")
+    write_config(tmp_path, config)
+    monkeypatch.chdir(tmp_path)
+    with pytest.raises(DataError, match=r"feature column 'ward' holds numbers in 512 of its 569 filled cells and text "
+                                        r"in 57 \('ICU'\)"):
+        prepare(config, main=True)
+    config["data"]["text"] = ["ward"]
+    plan = prepare(config, main=True)
+    seal("data.csv", plan.spec, "results/bc", "bc")
+    dev = pd.read_parquet("results/bc/dev.parquet")
+    assert dev["ward"].map(type).eq(str).all() and "ward" in feature_columns(dev, plan.spec)
+    check_numbers_read_as_text(pd.Series(["7", "north", "south", "east"] * 3, name="site"), "data.csv")  # words: passes
+    check_numbers_read_as_text(pd.Series(["1", "2", None, "3"], name="n"), "data.csv")  # all numbers: passes
+
+
 @pytest.mark.parametrize("labels", [["yes", "no"], ["yes", "no", "yes please"], ["A", "B", "AB"], [0, 1, 2]])
 def test_labels_that_differ_in_more_than_spaces_or_case_pass(labels: list[object]) -> None:
     check_label_spelling(pd.Series(labels * 3, name="answer"), "data.csv")

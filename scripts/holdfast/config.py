@@ -241,6 +241,11 @@ def _cross_checks(config: dict[str, Any]) -> None:
         if column in seen:
             raise ConfigError(f"config key 'data.drop' lists '{column}', which is data.{seen[column]}; "
                               "remove it from drop")
+    for column in data["text"]:
+        if column in seen or column in data["drop"]:
+            role = f"data.{seen[column]}" if column in seen else "in data.drop"
+            raise ConfigError(f"config key 'data.text' lists '{column}', which is {role}, not a feature; "
+                              "remove it from data.text")
     if config["test"]["scheme"] == "time_tail" and data["time"] is None:
         raise ConfigError("config key 'test.scheme' is 'time_tail' but 'data.time' is not set; name the time column "
                           "in data.time or choose another scheme")
@@ -466,6 +471,7 @@ def seal_spec(config: dict[str, Any]) -> dict[str, Any]:
         **({"gap_hours": config["test"]["gap_hours"]} if config["test"]["scheme"] == "time_tail" else {}),
         # Only when set, so experiments sealed before the key existed keep their spec.
         **({"time_unit": data["time_unit"]} if data.get("time_unit") else {}),
+        **({"text": sorted(data["text"])} if data.get("text") else {}),
     }
 
 

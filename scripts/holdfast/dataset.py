@@ -353,6 +353,9 @@ def check_columns(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> Non
             raise DataError(f"column '{column}' (data.{role}) is not in '{source}'; "
                             f"columns there are: {', '.join(map(str, frame.columns[:12]))}"
                             f"{' ...' if len(frame.columns) > 12 else ''}")
+    for column in spec.get("text", []):
+        if column not in frame.columns:
+            raise DataError(f"column '{column}' (data.text) is not in '{source}'; remove it from data.text")
     if KEY in frame.columns:
         raise DataError(f"'{source}' has a column named '{KEY}', which holdfast reserves; rename it")
     dropped = set(spec.get("drop", []))
@@ -381,6 +384,7 @@ def check_columns(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> Non
     if not features:
         raise DataError(f"'{source}' has no feature columns left after target, id, group, time and drop; "
                         "keep at least one feature")
+    declared_text = set(spec.get("text", []))
     for column in features:
         values = frame[column]
         if pd.api.types.is_numeric_dtype(values) and values.dtype != bool:
@@ -388,6 +392,37 @@ def check_columns(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> Non
             if not finite.all():
                 raise DataError(f"feature column '{column}' has {int((~finite).sum())} infinite value(s) in "
                                 f"'{source}'; replace them with finite values or blanks")
+        elif column not in declared_text:
+            check_numbers_read_as_text(values, source)
+
+
+# A text column whose filled cells are mostly numbers is a column of numbers with stray words (common practice: no
+# source; a column of codes that happen to be mostly digits is the exception data.text declares).
+NUMBERS_SHARE = 0.5
+_SAMPLE = 1000  # cells looked at first: a column of real text is passed over after these (the seal of 10 M rows)
+
+
+def check_numbers_read_as_text(values: pd.Series, source: str) -> None:
+    """Refuse a feature column of numbers that a few words made text ('unknown' among hours): read as text it is one
+    categorical feature with a level per distinct number, and no error would ever say so."""
+    if pd.api.types.is_bool_dtype(values) or isinstance(values.dtype, pd.CategoricalDtype):
+        return
+    filled = values.dropna()
+    if filled.empty or not all(isinstance(v, str) for v in filled.iloc[:_SAMPLE]):
+        return
+    head = pd.to_numeric(filled.iloc[:_SAMPLE], errors="coerce")
+    if head.notna().mean() <= NUMBERS_SHARE:
+        return
+    numbers = pd.to_numeric(filled, errors="coerce").notna()
+    words = filled[~numbers.to_numpy()]
+    if words.empty or numbers.mean() <= NUMBERS_SHARE:
+        return
+    examples = ", ".join(repr(w) for w in pd.unique(words)[:3])
+    raise DataError(f"feature column '{values.name}' holds numbers in {int(numbers.sum())} of its {len(filled)} filled "
+                    f"cells and text in {len(words)} ({examples}) in '{source}': read as text it would be one "
+                    f"categorical feature with {filled.nunique()} levels; blank those cells (they are then missing "
+                    "values, which the candidates' imputation fills), or list the column in data.text if it is text "
+                    "on purpose")
 
 
 def check_target_for_task(target: pd.Series, task: str, source: str) -> None:
