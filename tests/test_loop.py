@@ -312,29 +312,36 @@ def test_open_asks_on_a_terminal_refuses_without_one_and_refuses_a_second_time(w
     assert sum(e["event"] == "open_test" for e in entries(work / "results/bc")) == 1
 
 
+def _start_open(workdir: Path) -> subprocess.Popen[str]:
+    """'holdfast open results/bc --yes' started in the background, its output piped."""
+    return subprocess.Popen([sys.executable, "-m", "holdfast", "open", "results/bc", "--yes", "--cores", "2"],
+                            cwd=workdir, env={**os.environ, "PYTHONPATH": str(REPO / "scripts")},
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, stdin=subprocess.DEVNULL)
+
+
+def _opening_under_way(workdir: Path) -> tuple[subprocess.Popen[str], str]:
+    """An opening started and past its checks (it found the experiment unopened and showed what it opens), and
+    what it printed so far."""
+    opening = _start_open(workdir)
+    shown = []
+    assert opening.stdout is not None
+    for line in opening.stdout:
+        shown.append(line)
+        if "after the opening the experiment is closed" in line:
+            break
+    return opening, "".join(shown)
+
+
 def test_a_second_opening_started_while_the_first_runs_opens_nothing(two_rounds: Path) -> None:
     """Two 'holdfast open --yes' (two terminals, a script retried): the second starts once the first has found the
     experiment unopened and shown what it opens. Before, the second found it unopened too; its Snakemake then failed
     on the closed experiment and it printed the first one's verdict as its own. Now it is refused in one line and
     opens nothing; the ledger counts one opening and the audit passes."""
-    env = {**os.environ, "PYTHONPATH": str(REPO / "scripts")}
-    cmd = [sys.executable, "-m", "holdfast", "open", "results/bc", "--yes", "--cores", "2"]
-
-    def start() -> subprocess.Popen[str]:
-        return subprocess.Popen(cmd, cwd=two_rounds, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                                text=True, stdin=subprocess.DEVNULL)
-
-    first = start()
-    shown = []
-    assert first.stdout is not None
-    for line in first.stdout:  # its checks are done: it found the experiment unopened
-        shown.append(line)
-        if "after the opening the experiment is closed" in line:
-            break
-    second = start()
+    first, shown = _opening_under_way(two_rounds)
+    second = _start_open(two_rounds)
     out, err = second.communicate(timeout=900)
     first_out, first_err = first.communicate(timeout=900)
-    assert first.returncode == 0, "".join(shown) + first_out + first_err[-3000:]
+    assert first.returncode == 0, shown + first_out + first_err[-3000:]
     assert second.returncode == 4 and out.count("holdfast: ") == 0, out + err
     said = [line for line in err.splitlines() if line.startswith("holdfast: ")]
     assert len(said) == 1 and "another 'holdfast open' of experiment 'results/bc' is running" in said[0], err
@@ -342,6 +349,23 @@ def test_a_second_opening_started_while_the_first_runs_opens_nothing(two_rounds:
     assert events.count("opening_started") == 1 and events.count("open_test") == 1
     audited = ok(run_cli(two_rounds, "audit", "results/bc")).stdout
     assert audited.startswith("PASS") and "test set opened 1 time(s)" in audited
+
+
+def test_a_run_started_while_an_opening_runs_starts_nothing(two_rounds: Path) -> None:
+    """A 'holdfast run' while 'holdfast open' runs: before, it rewrote the experiment's config.json under the opening
+    and its Snakemake met the opening's (LockException on screen, 'the run failed'). Now it refuses in one line and
+    starts nothing; the opening finishes as if alone."""
+    logs = two_rounds / "results" / "bc" / "logs"
+    runs_before = sorted(logs.glob("run-*.log"))
+    opening, shown = _opening_under_way(two_rounds)
+    run = run_cli(two_rounds, "run", "config.yaml", "--cores", "2")
+    out, err = opening.communicate(timeout=900)
+    assert opening.returncode == 0, shown + out + err[-3000:]
+    said = [line for line in run.stderr.splitlines() if line.startswith("holdfast: ")]
+    assert run.returncode == 4 and len(said) == 1, run.stdout + run.stderr
+    assert "'holdfast open' of experiment 'results/bc' is running, so this run starts nothing" in said[0]
+    assert sorted(logs.glob("run-*.log")) == runs_before, "no Snakemake was started"
+    assert "test set opened 1 time(s)" in ok(run_cli(two_rounds, "audit", "results/bc")).stdout
 
 
 def test_open_refuses_a_config_that_is_not_the_latest_rounds(two_rounds: Path) -> None:

@@ -443,6 +443,10 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
     if plan.exp.is_symlink():
         raise ConfigError(f"results folder '{plan.exp}' is a symbolic link; holdfast writes only into real folders "
                           "inside the project")
+    if _opening_running(plan.exp):
+        raise SealedAccessError(f"'holdfast open' of experiment '{plan.exp}' is running, so this run starts nothing "
+                                "(it would replace the config the opening reads, and meet the opening's Snakemake); "
+                                f"once the opening has ended, 'holdfast audit {plan.exp}' says what it did")
     config_copy = _store_config(raw, plan.exp)
     if plan.closed:
         _say(f"experiment '{plan.config['experiment']}' was opened: nothing up to the opening runs again")
@@ -456,6 +460,18 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
     if code or dry:
         return code
     return _finish(plan.exp, plan.config["data"].get("unit"))
+
+
+def _opening_running(exp: Path) -> bool:
+    """Whether a 'holdfast open' of ``exp`` holds its command lock now (one look, taking the lock for an instant; no
+    lock file is made where none was ever opened)."""
+    from . import ledger
+    from .layout import OPEN_COMMAND_LOCK
+
+    if not Path(f"{exp / OPEN_COMMAND_LOCK}.lock").is_file():
+        return False
+    with ledger.locked_if_free(exp / OPEN_COMMAND_LOCK) as free:
+        return not free
 
 
 def _pictures_missing(exp: Path) -> list[str]:
