@@ -94,19 +94,24 @@ with ledger.locked(sys.argv[1], shared=sys.argv[2] == "shared"):
 @pytest.mark.parametrize("mode", ["shared", "exclusive"])
 def test_the_lock_is_not_free_while_another_process_holds_it(tmp_path: Path, mode: str) -> None:
     target = tmp_path / "steps"
+    assert ledger.held_elsewhere(target) is False
+    assert not (tmp_path / "steps.lock").exists()  # the glance makes no lock file
     with ledger.locked_if_free(target) as free:
         assert free is True
+    assert ledger.held_elsewhere(target) is False
     holder = subprocess.Popen([sys.executable, "-c", HOLD, str(target), mode], stdin=subprocess.PIPE,
                               stdout=subprocess.PIPE, text=True, env={"PYTHONPATH": str(REPO / "scripts")})
     try:
         assert holder.stdout is not None and holder.stdout.readline().strip() == "holding"
         with ledger.locked_if_free(target) as free:
             assert free is False
+        assert ledger.held_elsewhere(target) is True
         if mode == "shared":  # shared holders do not exclude one another
             with ledger.locked(target, shared=True):
                 pass
     finally:
         holder.communicate("done\n", timeout=30)
+    assert ledger.held_elsewhere(target) is False
     with ledger.locked_if_free(target) as free:
         assert free is True
 

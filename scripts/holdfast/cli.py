@@ -468,10 +468,7 @@ def _opening_running(exp: Path) -> bool:
     from . import ledger
     from .layout import OPEN_COMMAND_LOCK
 
-    if not Path(f"{exp / OPEN_COMMAND_LOCK}.lock").is_file():
-        return False
-    with ledger.locked_if_free(exp / OPEN_COMMAND_LOCK) as free:
-        return not free
+    return ledger.held_elsewhere(exp / OPEN_COMMAND_LOCK)
 
 
 def _pictures_missing(exp: Path) -> list[str]:
@@ -613,17 +610,18 @@ def _same_setup_as_recorded(plan: Any, exp: Path, config_path: Path) -> None:
     never fitted, beside a verdict they had no part in.
     """
     from . import ledger, rounds
+    from ._io import sha256_text
 
     entries = ledger.read(exp / "ledger.jsonl")
     recorded = ledger.events(entries, "round")
     if not recorded:
         return
     number = int(recorded[-1]["details"]["round"])
-    setup = json.loads(plan.round_setup())
-    if rounds.setup_hash(setup) == recorded[-1]["details"].get("setup_sha256"):
+    setup_json = plan.round_setup()  # canonical JSON already: its hash is the set-up hash the ledger records
+    if sha256_text(setup_json) == recorded[-1]["details"].get("setup_sha256"):
         return
     latest = rounds.recorded_round(exp, number, entries)
-    change = rounds.summary(rounds.changes(latest["setup"], setup)) or "its set-up differs"
+    change = rounds.summary(rounds.changes(latest["setup"], json.loads(setup_json))) or "its set-up differs"
     raise ConfigError(f"config '{config_path}' is not what selection round {number} (the latest the ledger records) "
                       f"chose from: {change}; open with the experiment's own config (leave out --config), or run "
                       f"'holdfast run {config_path}' first, which records the change as round {number + 1}")

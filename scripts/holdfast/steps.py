@@ -128,7 +128,7 @@ def tally(smk: Any) -> None:
                        json.loads(smk.params.metrics), json.loads(smk.params.selection),
                        json.loads(smk.params.simplicity), spec["target"], smk.params.task, int(smk.params.folds),
                        smk.output.ranking, smk.output.choice, smk.output.plot, smk.params.ledger, smk.input.folds,
-                       rule_name=smk.rule, scope=_scope(smk), round_path=getattr(smk.input, "round", None))
+                       rule_name=smk.rule, scope=_scope(smk), with_rounds=hasattr(smk.input, "round"))
     print(choice["why"])
 
 

@@ -368,11 +368,12 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
           metrics: list[str], selection: dict[str, Any], simplicity: dict[str, dict[str, str]], target: str,
           task: str, expected_folds: int, ranking_path: str, choice_path: str, plot_path: str, ledger_path: str,
           folds_path: str, rule_name: str | None = None, scope: str = "main",
-          round_path: str | None = None) -> dict[str, Any]:
+          with_rounds: bool = False) -> dict[str, Any]:
     """Write ranking.parquet, choice.json and the ranking plot; return the choice.
 
-    With ``round_path`` (the experiment's own tally, not a nested one) the candidates are also archived in
-    history/ and the optimism estimates count every candidate tried in every selection round.
+    With ``with_rounds`` (the experiment's own tally, not a nested one) the candidates are also archived in
+    history/ and the optimism estimates count every candidate tried in every selection round; the round number
+    comes from the experiment's ``rounds/current.json``.
     """
     fits = collect(fit_paths)
     ranking = summarise(fits, metrics, expected_folds)
@@ -399,19 +400,19 @@ def tally(fit_paths: list[str], oof_paths: list[str], dev_path: str, candidates:
     scorer = optimism_estimates.sklearn_scorer(primary, task, classes) if len(dev) >= 2 else None
     wanted: set[str] = set()
     round_number = 0
-    if round_path is not None:  # the files this tally builds on, each the copy the ledger last recorded
+    if with_rounds:  # the files this tally builds on, each the copy the ledger last recorded
         entries = ledger.read(ledger_path) if Path(ledger_path).exists() else []
         round_number = current_round(Path(ranking_path).parent, entries)
         wanted = to_archive(read_index_for_tally(Path(ranking_path).parent, entries), fits, folds_sha256)
         del entries
     gathered, archived = gather_oof(oof_paths, dev_all[KEY], every, list(matrix.columns), classes, scorer,
-                                    Path(ranking_path).parent if round_path is not None else None, wanted,
+                                    Path(ranking_path).parent if with_rounds else None, wanted,
                                     folds_sha256)
     optimistic = optimism(gathered if len(dev) >= 2 else None, dev, target, primary, task, matrix,
                           winner["candidate"], int(selection["bootstrap"]), int(selection["seed"]), scorer)
     del gathered
     rounds_info: dict[str, Any] | None = None
-    if round_path is not None:
+    if with_rounds:
         index = archive(Path(ranking_path).parent, fits, archived, folds_sha256, round_number, candidates)
         current = set(ranking["candidate"])
         rounds_info = rounds_summary(index, round_number, folds_sha256)
