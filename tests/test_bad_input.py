@@ -229,6 +229,24 @@ def text_column_missing(workdir: Path, config: dict[str, Any]) -> None:
     config["data"]["text"] = ["mean_radios"]
 
 
+def feature_spells_out_target(workdir: Path, config: dict[str, Any]) -> None:
+    """A column 'diagnosis' exported beside the target that spells it out ('malignant', 'benign')."""
+    frame = breast_cancer_frame()
+    frame["diagnosis"] = frame["target"].map({0: "malignant", 1: "benign"})
+    use_data(workdir, config, frame)
+
+
+def known_column_missing(workdir: Path, config: dict[str, Any]) -> None:
+    """data.known_before_outcome names a column the data file does not have."""
+    use_data(workdir, config, breast_cancer_frame())
+    config["data"]["known_before_outcome"] = ["mean_radios"]
+
+
+def known_column_is_target(workdir: Path, config: dict[str, Any]) -> None:
+    """data.known_before_outcome names the target itself."""
+    config["data"]["known_before_outcome"] = ["target"]
+
+
 def grid_above_max_candidates(workdir: Path, config: dict[str, Any]) -> None:
     """A 30-point grid (32 candidates in all) against max_candidates 20."""
     config["candidates"]["logistic"]["grid"] = {"C": [round(0.01 * 1.3**i, 6) for i in range(30)]}
@@ -615,8 +633,20 @@ CASES = [
                  r"blank those cells .*, or list the column in data\.text if it is text on purpose",
                  id="feature-numbers-with-words"),
     pytest.param(text_column_missing, DATA_ERROR,
-                 r"column 'mean_radios' \(data\.text\) is not in '.*'; remove it from data\.text",
+                 r"column 'mean_radios' \(data\.text\) is not in 'bad\.csv'; remove it from data\.text",
                  id="text-column-missing"),
+    pytest.param(feature_spells_out_target, DATA_ERROR,
+                 r"feature column 'diagnosis' is fixed by target column 'target' in 'bad\.csv': in all 569 rows where "
+                 r"it is filled, each class has one value of it \(0 -> 'malignant', 1 -> 'benign'\); every candidate "
+                 r"would read the outcome off it, .*; list it in data\.drop \(possible now: nothing is sealed yet\), "
+                 r"or in data\.known_before_outcome if it is truly recorded before the outcome",
+                 id="feature-is-target"),
+    pytest.param(known_column_missing, DATA_ERROR,
+                 r"column 'mean_radios' \(data\.known_before_outcome\) is not in 'bad\.csv'; remove it from "
+                 r"data\.known_before_outcome", id="known-column-missing"),
+    pytest.param(known_column_is_target, CONFIG_ERROR,
+                 r"config key 'data\.known_before_outcome' lists 'target', which is data\.target, not a feature; "
+                 r"remove it from data\.known_before_outcome", id="known-column-is-target"),
     pytest.param(grid_above_max_candidates, CONFIG_ERROR,
                  r"the candidate grids expand to 32 candidates, more than max_candidates \(20\); shrink the grids or "
                  r"raise max_candidates", id="grid-above-max-candidates"),
@@ -748,7 +778,7 @@ CLI_RUN = {"metric-binary-on-three-classes", "metric-default-on-three-classes", 
            "target-infinite", "time-epoch-seconds", "time-unit-on-text", "class-of-one-row",
            "class-only-in-sealed-rows", "test-rows-one-class", "metric-outside-target-range", "grid-five-by-sixty",
            "experiment-trailing-newline", "reopen-reason-blank", "reopen-reason-repeated", "results-symlink-outside",
-           "experiment-symlink-outside", "feature-numbers-with-words"}
+           "experiment-symlink-outside", "feature-numbers-with-words", "feature-is-target"}
 
 # Through the real `holdfast run`, whose full check runs in a child of the command's job worker (holdfast.worker.call,
 # holdfast.cli._in_worker): config and data errors, one case per kind of check (data, estimator import, metric, a sealed

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import re
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -133,3 +135,104 @@ def test_symlinks_inside_the_project_are_allowed_and_outside_refused(tmp_path: P
     with pytest.raises(ConfigError, match=r"'.*results/bc/final' is a symbolic link to '.*outside', outside the "
                                           r"project folder"):
         check_experiment_dir(project / "results" / "bc", project)
+
+
+def _copies_refused(frame: pd.DataFrame, task: str, **spec: Any) -> str | None:
+    """The refusal of check_target_copies on ``frame`` (target column 'target'), or None when it passes."""
+    from holdfast.dataset import check_target_copies
+    from holdfast.errors import DataError
+
+    try:
+        check_target_copies(frame, {"target": "target", "id": None, "group": None, "time": None, "drop": [], **spec},
+                            task, "data.csv")
+    except DataError as exc:
+        return str(exc)
+    return None
+
+
+# scikit-learn's bundled data sets (scikit-learn developers, "Toy datasets", scikit-learn User Guide, section 8.1,
+# 2024): real measurements, none recorded after the outcome, so none of their features may be refused as a copy of
+# the target. Digits has 1,797 rows, so its columns go through the first-1,000-rows pass and, for its always-blank
+# (constant) pixels, the whole-column pass.
+@pytest.mark.parametrize(("loader", "task"), [("load_breast_cancer", "classification"), ("load_iris", "classification"),
+                                              ("load_wine", "classification"), ("load_digits", "classification"),
+                                              ("load_diabetes", "regression")])
+def test_no_feature_of_a_real_data_set_is_taken_for_the_target(loader: str, task: str) -> None:
+    from sklearn import datasets
+
+    assert _copies_refused(getattr(datasets, loader)(as_frame=True).frame, task) is None
+
+
+def _diabetes_with(name: str, make: Any) -> pd.DataFrame:
+    from sklearn.datasets import load_diabetes
+
+    frame = load_diabetes(as_frame=True).frame
+    frame[name] = make(frame["target"])
+    return frame
+
+
+@pytest.mark.parametrize(("make", "task", "pattern"), [
+    (lambda: breast_cancer_frame().assign(flag=lambda f: f["target"].map({0: "M", 1: "B"})), "classification",
+     r"feature column 'flag' is fixed by target column 'target' in 'data\.csv': in all 569 rows where it is filled, "
+     r"each class has one value of it \(0 -> 'M', 1 -> 'B'\)"),
+    (lambda: breast_cancer_frame().assign(agency=lambda f: np.where(f["target"] == 0, "collector A", None)),
+     "classification", r"feature column 'agency' .*: in all 569 rows it is blank exactly where the class is 1;"),
+    (lambda: breast_cancer_frame().assign(agency=lambda f: np.where(f["target"] == 0, np.arange(len(f)), np.nan)),
+     "classification", r"feature column 'agency' .*: in all 569 rows it is blank exactly where the class is 1;"),
+    (lambda: _diabetes_with("log_target", np.log), "regression",
+     r"feature column 'log_target' .*: in all 442 rows where it is filled, the higher the target, the higher it is"),
+    (lambda: _diabetes_with("minus", lambda t: -t), "regression", r"the higher the target, the lower it is"),
+    (lambda: _diabetes_with("band", lambda t: pd.cut(t, [0, 100, 200, 400], labels=False)), "regression",
+     r"feature column 'band' .* the higher the target, the higher it is"),
+    (lambda: _diabetes_with("claim", lambda t: np.where(t > 150, 1.0, np.nan)), "regression",
+     r"feature column 'claim' .*: in all 442 rows it is blank exactly where the target is at most 150\.0;"),
+], ids=["relabelled", "blank-for-one-class", "ids-blank-for-one-class", "log", "negated", "banded", "blank-below"])
+def test_a_feature_the_target_fixes_is_refused(make: Any, task: str, pattern: str) -> None:
+    """Copies made here from the target (crafted): each is named, with how the target fixes it."""
+    message = _copies_refused(make(), task)
+    assert message is not None and re.search(pattern, message), message
+
+
+def test_a_copy_broken_only_after_the_first_thousand_rows_passes_and_a_whole_copy_does_not() -> None:
+    """The first 1,000 rows only decide that a column needs the whole look; the whole decides (digits: 1,797 rows)."""
+    from sklearn.datasets import load_digits
+
+    frame = load_digits(as_frame=True).frame
+    frame["copy"] = frame["target"] * 10
+    assert _copies_refused(frame, "classification") is not None
+    frame.loc[1500, "copy"] = -1  # one row past the first thousand breaks it: a real feature may look like this
+    assert _copies_refused(frame, "classification") is None
+
+
+def test_too_few_rows_or_rows_per_class_cannot_tell_a_copy_from_chance() -> None:
+    small = breast_cancer_frame().iloc[:29].assign(flag=lambda f: f["target"] * 2)
+    assert _copies_refused(small, "classification") is None  # fewer than MIN_ROWS_FOR_COPY rows
+    rows = pd.DataFrame({"target": np.repeat(np.arange(40), 5), "same": np.repeat(np.arange(40), 5) % 7})
+    assert _copies_refused(rows, "classification") is None  # 5 rows a class: any column can be constant in them
+
+
+def test_a_column_declared_known_before_the_outcome_is_sealed(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A column the target fixes whose owner states it is recorded before the outcome: data.known_before_outcome lets
+    it through, and the statement is part of the seal spec (the seal's ledger line records it; changing it later is
+    refused like any seal setting)."""
+    from holdfast.errors import DataError, SealedAccessError
+    from holdfast.plan import prepare
+
+    frame = breast_cancer_frame()
+    frame["visits"] = frame["target"] + 1  # crafted: stands for a column the owner knows is recorded first
+    frame.to_csv(tmp_path / "data.csv", index=False)
+    config = small_classification_config("data.csv")
+    monkeypatch.chdir(tmp_path)
+    with pytest.raises(DataError, match=r"feature column 'visits' is fixed by target column 'target'"):
+        prepare(config, main=True)
+    config["data"]["known_before_outcome"] = ["visits"]
+    plan = prepare(config, main=True)
+    assert plan.spec["known_before_outcome"] == ["visits"]
+    seal("data.csv", plan.spec, "results/bc", "bc")
+    assert "visits" in feature_columns(pd.read_parquet("results/bc/dev.parquet"), plan.spec)
+    config["data"]["known_before_outcome"] = []
+    changed = (r"'data\.known_before_outcome' is not set \(or empty\) but experiment 'bc' was sealed with "
+               r"\['visits'\]")
+    with pytest.raises(SealedAccessError, match=changed):
+        prepare(config, main=True)  # the statement is fixed at the seal
+    assert "known_before_outcome" not in cfg.seal_spec(cfg.validate(config))  # unset: the spec of before the key

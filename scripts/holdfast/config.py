@@ -241,11 +241,12 @@ def _cross_checks(config: dict[str, Any]) -> None:
         if column in seen:
             raise ConfigError(f"config key 'data.drop' lists '{column}', which is data.{seen[column]}; "
                               "remove it from drop")
-    for column in data["text"]:
-        if column in seen or column in data["drop"]:
-            role = f"data.{seen[column]}" if column in seen else "in data.drop"
-            raise ConfigError(f"config key 'data.text' lists '{column}', which is {role}, not a feature; "
-                              "remove it from data.text")
+    for key in ("text", "known_before_outcome"):
+        for column in data[key]:
+            if column in seen or column in data["drop"]:
+                role = f"data.{seen[column]}" if column in seen else "in data.drop"
+                raise ConfigError(f"config key 'data.{key}' lists '{column}', which is {role}, not a feature; "
+                                  f"remove it from data.{key}")
     if config["test"]["scheme"] == "time_tail" and data["time"] is None:
         raise ConfigError("config key 'test.scheme' is 'time_tail' but 'data.time' is not set; name the time column "
                           "in data.time or choose another scheme")
@@ -472,6 +473,7 @@ def seal_spec(config: dict[str, Any]) -> dict[str, Any]:
         # Only when set, so experiments sealed before the key existed keep their spec.
         **({"time_unit": data["time_unit"]} if data.get("time_unit") else {}),
         **({"text": sorted(data["text"])} if data.get("text") else {}),
+        **({"known_before_outcome": sorted(data["known_before_outcome"])} if data.get("known_before_outcome") else {}),
     }
 
 

@@ -353,9 +353,10 @@ def check_columns(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> Non
             raise DataError(f"column '{column}' (data.{role}) is not in '{source}'; "
                             f"columns there are: {', '.join(map(str, frame.columns[:12]))}"
                             f"{' ...' if len(frame.columns) > 12 else ''}")
-    for column in spec.get("text", []):
-        if column not in frame.columns:
-            raise DataError(f"column '{column}' (data.text) is not in '{source}'; remove it from data.text")
+    for key in ("text", "known_before_outcome"):
+        for column in spec.get(key, []):
+            if column not in frame.columns:
+                raise DataError(f"column '{column}' (data.{key}) is not in '{source}'; remove it from data.{key}")
     if KEY in frame.columns:
         raise DataError(f"'{source}' has a column named '{KEY}', which holdfast reserves; rename it")
     dropped = set(spec.get("drop", []))
@@ -423,6 +424,85 @@ def check_numbers_read_as_text(values: pd.Series, source: str) -> None:
                     f"categorical feature with {filled.nunique()} levels; blank those cells (they are then missing "
                     "values, which the candidates' imputation fills), or list the column in data.text if it is text "
                     "on purpose")
+
+
+# A feature the target fixes (a copy or relabelling of it, a band of it, a column filled only for one outcome) lets
+# every candidate score almost perfectly: a validated figure no new row can repeat when the column is recorded after
+# the outcome (common practice: no source; the row counts below are ours, set so that a real feature cannot line up
+# with the target by chance).
+MIN_ROWS_FOR_COPY = 30
+ROWS_PER_VALUE_FOR_COPY = 10  # below this many rows per target value, any column is constant within them by chance
+
+
+def _per_target(values: pd.Series, target: pd.Series, ordered: bool) -> pd.Series | None:
+    """The column's one value for each target value (sorted by target), or None once a value breaks that; with
+    ``ordered`` (a numeric column against a regression target) the values must also rise or fall with the target."""
+    groups = pd.DataFrame({"y": target.to_numpy(), "f": values.to_numpy()}).groupby("y", sort=True)["f"]
+    if groups.nunique(dropna=False).gt(1).any():
+        return None
+    one = groups.first()
+    if ordered and not (one.is_monotonic_increasing or one.is_monotonic_decreasing):
+        return None
+    return one
+
+
+def _fixed_by_target(values: pd.Series, target: pd.Series, ordered: bool) -> pd.Series | None:
+    """:func:`_per_target` when the target fixes the column on enough rows to rule out chance, else None.
+
+    A break among the first :data:`_SAMPLE` rows is a break in all, which settles almost every real column before
+    the whole is grouped (the seal of 10 M rows groups only the near-constant ones).
+    """
+    if len(values) < MIN_ROWS_FOR_COPY:
+        return None
+    if len(values) > _SAMPLE and _per_target(values.iloc[:_SAMPLE], target.iloc[:_SAMPLE], ordered) is None:
+        return None
+    one = _per_target(values, target, ordered)
+    if one is None or one.nunique() < 2 or (not ordered and len(one) * ROWS_PER_VALUE_FOR_COPY > len(values)):
+        return None
+    return one
+
+
+def _shown(value: Any) -> str:
+    return repr(value.item() if isinstance(value, np.generic) else value)
+
+
+def check_target_copies(frame: pd.DataFrame, spec: dict[str, Any], task: str, source: str) -> None:
+    """Refuse a feature whose values, or whose blanks, the target fixes in every row (see :data:`MIN_ROWS_FOR_COPY`):
+    a copy of the target under another name, a band of it, or a column filled in only for one outcome."""
+    target = frame[spec["target"]]
+    known = set(spec.get("known_before_outcome", []))
+    for column in feature_columns(frame, spec):
+        if column in known:
+            continue
+        values = frame[column]
+        numeric = pd.api.types.is_numeric_dtype(values)
+        blank = values.isna()
+        how = None
+        if blank.any():
+            blanks = _fixed_by_target(blank, target, task == "regression")
+            if blanks is not None:
+                where = [_shown(v) for v in blanks.index[blanks.to_numpy(dtype=bool)]]
+                how = (f"in all {len(values)} rows it is blank exactly where the class is {', '.join(where[:3])}"
+                       f"{' and more' if len(where) > 3 else ''}" if task == "classification" else
+                       f"in all {len(values)} rows it is blank exactly where the target is "
+                       f"{'at least ' + where[0] if blanks.iloc[-1] else 'at most ' + where[-1]}")
+        if how is None:
+            filled = ~blank.to_numpy()
+            one = _fixed_by_target(values[filled], target[filled], task == "regression" and numeric)
+            if one is not None and task == "classification":
+                pairs = [f"{_shown(k)} -> {_shown(v)}" for k, v in one.items()]
+                how = (f"in all {int(filled.sum())} rows where it is filled, each class has one value of it "
+                       f"({', '.join(pairs[:3])}{', ...' if len(pairs) > 3 else ''})")
+            elif one is not None:
+                way = "higher" if one.is_monotonic_increasing else "lower"
+                how = (f"in all {int(filled.sum())} rows where it is filled, the higher the target, the {way} it is, "
+                       "and equal targets give equal values")
+        if how is not None:
+            raise DataError(f"feature column '{column}' is fixed by target column '{target.name}' in '{source}': "
+                            f"{how}; every candidate would read the outcome off it, and its validated score would not "
+                            "hold for new rows if the column is recorded after the outcome; list it in data.drop "
+                            "(possible now: nothing is sealed yet), or in data.known_before_outcome if it is truly "
+                            "recorded before the outcome")
 
 
 def check_target_for_task(target: pd.Series, task: str, source: str) -> None:

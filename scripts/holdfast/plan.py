@@ -308,8 +308,9 @@ def _seal_unchanged(config: dict[str, Any], manifest: dict[str, Any], exp: Path)
         if sealed.get(key) != current.get(key):
             where = {"fraction": "test.fraction", "scheme": "test.scheme", "salt": "test.salt", "task": "task"}.get(
                 key, f"data.{key}")
+            now = f"is {current[key]!r}" if key in current else "is not set (or empty)"  # keys kept only when set
             raise SealedAccessError(
-                f"config key '{where}' is {current.get(key)!r} but experiment '{config['experiment']}' was sealed "
+                f"config key '{where}' {now} but experiment '{config['experiment']}' was sealed "
                 f"with {sealed.get(key)!r}; nothing was run. Put it back, or set a new 'experiment' name to seal again")
     for name in (MANIFEST, TEST, DEV):
         if not (exp / name).exists():

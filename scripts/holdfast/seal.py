@@ -20,6 +20,7 @@ from ._io import read_table, sha256_file, write_json, write_parquet
 from .dataset import (
     KEY,
     check_columns,
+    check_target_copies,
     check_target_for_task,
     hash_unit,
     infer_task,
@@ -247,6 +248,7 @@ def load_checked(path: str | os.PathLike[str], spec: dict[str, Any]) -> tuple[pd
     check_columns(frame, spec, str(path))
     task = spec.get("task") or infer_task(frame[spec["target"]])
     check_target_for_task(frame[spec["target"]], task, str(path))
+    check_target_copies(frame, spec, task, str(path))
     return frame, task
 
 
