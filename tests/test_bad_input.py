@@ -236,6 +236,21 @@ def feature_spells_out_target(workdir: Path, config: dict[str, Any]) -> None:
     use_data(workdir, config, frame)
 
 
+def feature_labels_rows(workdir: Path, config: dict[str, Any]) -> None:
+    """An order reference in every row, left among the features (data.id names another column)."""
+    frame = breast_cancer_frame()
+    frame["order_ref"] = [f"ORD-{7919 * i % 100_000:05d}" for i in range(len(frame))]
+    use_data(workdir, config, frame)
+
+
+def time_column_not_declared(workdir: Path, config: dict[str, Any]) -> None:
+    """ISO-8601 visit times in a column data.time does not name: read as a text feature."""
+    frame = breast_cancer_frame()
+    frame["visit_at"] = pd.date_range("2025-01-01", periods=len(frame), freq="37min", tz="UTC").strftime(
+        "%Y-%m-%dT%H:%M:%SZ")
+    use_data(workdir, config, frame)
+
+
 def known_column_missing(workdir: Path, config: dict[str, Any]) -> None:
     """data.known_before_outcome names a column the data file does not have."""
     use_data(workdir, config, breast_cancer_frame())
@@ -641,6 +656,14 @@ CASES = [
                  r"would read the outcome off it, .*; list it in data\.drop \(possible now: nothing is sealed yet\), "
                  r"or in data\.known_before_outcome if it is truly recorded before the outcome",
                  id="feature-is-target"),
+    pytest.param(feature_labels_rows, DATA_ERROR,
+                 r"feature column 'order_ref' has 569 different values in its 569 filled cells \('ORD-00000', "
+                 r"'ORD-07919', \.\.\.\) in 'bad\.csv': it labels rows instead of describing them, .*; name it in "
+                 r"data\.id if it identifies rows, list it in data\.drop, or replace it in the data file by something "
+                 r"rows share \(a prefix, a category\)$", id="feature-labels-rows"),
+    pytest.param(time_column_not_declared, DATA_ERROR,
+                 r"feature column 'visit_at' has 569 different values .*; name it in data\.time if it is the rows' "
+                 r"time, name it in data\.id if it identifies rows", id="time-column-not-declared"),
     pytest.param(known_column_missing, DATA_ERROR,
                  r"column 'mean_radios' \(data\.known_before_outcome\) is not in 'bad\.csv'; remove it from "
                  r"data\.known_before_outcome", id="known-column-missing"),
@@ -778,7 +801,8 @@ CLI_RUN = {"metric-binary-on-three-classes", "metric-default-on-three-classes", 
            "target-infinite", "time-epoch-seconds", "time-unit-on-text", "class-of-one-row",
            "class-only-in-sealed-rows", "test-rows-one-class", "metric-outside-target-range", "grid-five-by-sixty",
            "experiment-trailing-newline", "reopen-reason-blank", "reopen-reason-repeated", "results-symlink-outside",
-           "experiment-symlink-outside", "feature-numbers-with-words", "feature-is-target"}
+           "experiment-symlink-outside", "feature-numbers-with-words", "feature-is-target",
+           "time-column-not-declared"}
 
 # Through the real `holdfast run`, whose full check runs in a child of the command's job worker (holdfast.worker.call,
 # holdfast.cli._in_worker): config and data errors, one case per kind of check (data, estimator import, metric, a sealed

@@ -236,3 +236,20 @@ def test_a_column_declared_known_before_the_outcome_is_sealed(tmp_path: Path, mo
     with pytest.raises(SealedAccessError, match=changed):
         prepare(config, main=True)  # the statement is fixed at the seal
     assert "known_before_outcome" not in cfg.seal_spec(cfg.validate(config))  # unset: the spec of before the key
+
+
+def test_text_features_that_rows_share_pass_and_one_that_labels_rows_does_not() -> None:
+    """A category, and a note with 85 % of its cells different, pass; a reference different in 95 % of rows is
+    refused (the cut is 90 %, dataset.DISTINCT_SHARE). Crafted columns beside scikit-learn's breast cancer data."""
+    from holdfast.dataset import check_row_labels
+    from holdfast.errors import DataError
+
+    rows = len(breast_cancer_frame())
+    check_row_labels(pd.Series([f"W{i % 12}" for i in range(rows)], name="ward"), "data.csv")
+    distinct = int(0.85 * rows)
+    check_row_labels(pd.Series([f"n{i % distinct}" for i in range(rows)], name="note"), "data.csv")
+    check_row_labels(pd.Series([f"r{i}" for i in range(29)], name="few"), "data.csv")  # too few rows to judge
+    labels = pd.Series([f"R{i % int(0.95 * rows)}" for i in range(rows)] + [None] * 5, name="ref")
+    with pytest.raises(DataError, match=rf"feature column 'ref' has {int(0.95 * rows)} different values in its "
+                                        rf"{rows} filled cells \('R0', 'R1', \.\.\.\)"):
+        check_row_labels(labels, "data.csv")

@@ -393,8 +393,10 @@ def check_columns(frame: pd.DataFrame, spec: dict[str, Any], source: str) -> Non
             if not finite.all():
                 raise DataError(f"feature column '{column}' has {int((~finite).sum())} infinite value(s) in "
                                 f"'{source}'; replace them with finite values or blanks")
-        elif column not in declared_text:
-            check_numbers_read_as_text(values, source)
+        else:
+            if column not in declared_text:
+                check_numbers_read_as_text(values, source)
+            check_row_labels(values, source)
 
 
 # A text column whose filled cells are mostly numbers is a column of numbers with stray words (common practice: no
@@ -503,6 +505,36 @@ def check_target_copies(frame: pd.DataFrame, spec: dict[str, Any], task: str, so
                             "hold for new rows if the column is recorded after the outcome; list it in data.drop "
                             "(possible now: nothing is sealed yet), or in data.known_before_outcome if it is truly "
                             "recorded before the outcome")
+
+
+# A text feature with a different value in almost every row labels rows instead of describing them: one-hot encoded
+# it is a column per row (dense, rows x rows numbers, which large data cannot hold) and no new row shares a level
+# (common practice: no source; the share and the row count are ours).
+DISTINCT_SHARE = 0.9
+MIN_ROWS_FOR_LABELS = 30
+
+
+def check_row_labels(values: pd.Series, source: str) -> None:
+    """Refuse a text feature whose filled cells are almost all different (an order number, a note, a timestamp whose
+    column is not data.time): the candidates would one-hot encode it into a column per row, learn nothing that
+    carries to a new row, and on large data fail for memory deep inside a fit job."""
+    filled = values.dropna()
+    if len(filled) < MIN_ROWS_FOR_LABELS:
+        return
+    head = filled.iloc[:_SAMPLE]
+    if head.nunique() <= DISTINCT_SHARE * len(head):  # a real category repeats within its first 1,000 cells
+        return
+    distinct = filled.nunique()
+    if distinct <= DISTINCT_SHARE * len(filled):
+        return
+    times = pd.to_datetime(head.astype(str), errors="coerce", utc=True, format="ISO8601").notna().mean()
+    way = "name it in data.time if it is the rows' time, " if times > DISTINCT_SHARE else ""
+    examples = ", ".join(repr(v) for v in filled.iloc[:2])
+    raise DataError(f"feature column '{values.name}' has {distinct} different values in its {len(filled)} filled "
+                    f"cells ({examples}, ...) in '{source}': it labels rows instead of describing them, and the "
+                    "candidates would one-hot encode it into a column per value that no new row shares; "
+                    f"{way}name it in data.id if it identifies rows, list it in data.drop, or replace it in the data "
+                    "file by something rows share (a prefix, a category)")
 
 
 def check_target_for_task(target: pd.Series, task: str, source: str) -> None:
