@@ -300,3 +300,24 @@ def test_a_nested_experiment_reports_the_procedure_and_the_report_comes_last(nes
     # The report waits for the nested summary: a new summary means a new report, and nothing else.
     dry = run_workflow(nested_copy, "-n", "--forcerun", "nested_summary")
     assert sorted(planned_jobs(dry)) == ["all", "nested_summary", "report"], dry.stdout[-2000:]
+
+
+def test_the_job_names_the_seal_statements_about_features(tmp_path: Path) -> None:
+    """Columns kept as text on purpose, and those the target fixes but the config states are recorded before the
+    outcome, are named under 'The job' with what the statement means; a seal without them shows neither row."""
+    from holdfast.layout import MANIFEST
+    from holdfast.report import _job
+
+    spec = {"target": "target", "id": None, "group": None, "time": None, "drop": [], "task": "classification",
+            "fraction": 0.25, "scheme": "hashed", "salt": "s"}
+    (tmp_path / MANIFEST).parent.mkdir(parents=True)
+    (tmp_path / MANIFEST).write_text(json.dumps({"spec": spec, "data": {}, "counts": {}}))
+    plain = page_text(_job(tmp_path, []))[0]
+    assert "text on purpose" not in plain and "target fixes" not in plain
+    (tmp_path / MANIFEST).write_text(json.dumps({"spec": {**spec, "text": ["ward"], "known_before_outcome": ["visits"]},
+                                                 "data": {}, "counts": {}}))
+    text = page_text(_job(tmp_path, []))[0]
+    assert "text on purpose ward (mostly numbers, kept as categories: data.text )" in text  # code set apart
+    assert ("features the target fixes visits : in every row the target fixes their values (or blanks); kept because "
+            "the config states they are recorded before the outcome") in text
+    assert "hold for new rows only if that statement is true" in text

@@ -260,6 +260,15 @@ def _job(exp: Path, entries: list[dict[str, Any]]) -> str:
         pairs.append(("time", f"<code>{_e(spec['time'])}</code> (not a feature)"))
     if spec.get("drop"):
         pairs.append(("left out", ", ".join(f"<code>{_e(c)}</code>" for c in spec["drop"])))
+    if spec.get("text"):
+        pairs.append(("text on purpose", ", ".join(f"<code>{_e(c)}</code>" for c in spec["text"])
+                      + " (mostly numbers, kept as categories: <code>data.text</code>)"))
+    if spec.get("known_before_outcome"):
+        known = ", ".join(f"<code>{_e(c)}</code>" for c in spec["known_before_outcome"])
+        pairs.append(("features the target fixes", known + ": in every row the target fixes their values (or "
+                      "blanks); kept because the config states they are recorded before the outcome "
+                      "(<code>data.known_before_outcome</code>). The validated and test figures hold for new rows "
+                      "only if that statement is true."))
     pairs += [
         ("test scheme", f"{_e(spec.get('scheme'))}: {_e(TEST_SCHEMES.get(str(spec.get('scheme')), ''))}"),
         ("test fraction", _e(f"{fraction:.0%}") if isinstance(fraction, int | float) else "—"),
