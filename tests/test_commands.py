@@ -509,6 +509,28 @@ def test_init_on_breast_cancer_and_diabetes(tmp_path: Path) -> None:
         assert check.returncode == 0, check.stderr
 
 
+def test_init_leaves_out_what_the_check_before_the_seal_would_refuse(tmp_path: Path,
+                                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    """A copy of the target and a note different in almost every row (crafted, beside scikit-learn's breast cancer
+    data): the starter config lists both in data.drop with the reason, so it passes the check it is written after."""
+    from holdfast.commands.starter import starter
+
+    frame = breast_cancer_frame()
+    frame["diagnosis"] = frame["target"].map({0: "malignant", 1: "benign"})
+    frame["note"] = [f"seen by {i % 541}" for i in range(len(frame))]  # 541 of 569 different: 95 %
+    frame.to_csv(tmp_path / "bc.csv", index=False)
+    monkeypatch.chdir(tmp_path)
+    text, said = starter(Path("bc.csv"), "target", Path("bc.yaml"))
+    assert yaml.safe_load(text)["data"]["drop"] == ["patient", "diagnosis", "note"]
+    drops = {line.split("#")[0].strip(): line.split("#", 1)[1].strip() for line in text.splitlines()
+             if line.strip().startswith("- ") and "#" in line}
+    assert drops["- note"].startswith("a different text value in almost every row")
+    assert drops["- diagnosis"] == ("the target fixes it (in all 569 rows where it is filled, each class has one "
+                                    "value of it (0 -> 'malignant', 1 -> 'benign')): a copy of the outcome; if it is "
+                                    "recorded before the outcome, move it to data.known_before_outcome")
+    assert "not features: patient, diagnosis, note" in said[0]
+
+
 def test_init_bad_inputs_are_one_line_and_replace_nothing(tmp_path: Path) -> None:
     one_error_line(run_cli(tmp_path, "init", "none.csv", "--target", "y"), 3, "data file 'none.csv' does not exist")
     (tmp_path / "semi.csv").write_text("a;b\n1;2\n", encoding="utf-8")

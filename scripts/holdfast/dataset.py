@@ -468,37 +468,40 @@ def _shown(value: Any) -> str:
     return repr(value.item() if isinstance(value, np.generic) else value)
 
 
+def target_copy(values: pd.Series, target: pd.Series, task: str) -> str | None:
+    """How the target fixes this feature column in every row (its values or its blanks), in words; None when it
+    does not (or there are too few rows to tell it from chance, see :data:`MIN_ROWS_FOR_COPY`)."""
+    blank = values.isna()
+    if blank.any():
+        blanks = _fixed_by_target(blank, target, task == "regression")
+        if blanks is not None:
+            where = [_shown(v) for v in blanks.index[blanks.to_numpy(dtype=bool)]]
+            if task == "classification":
+                return (f"in all {len(values)} rows it is blank exactly where the class is {', '.join(where[:3])}"
+                        f"{' and more' if len(where) > 3 else ''}")
+            edge = f"at least {where[0]}" if blanks.iloc[-1] else f"at most {where[-1]}"
+            return f"in all {len(values)} rows it is blank exactly where the target is {edge}"
+    filled = ~blank.to_numpy()
+    ordered = task == "regression" and pd.api.types.is_numeric_dtype(values)
+    one = _fixed_by_target(values[filled], target[filled], ordered)
+    if one is None:
+        return None
+    if task == "classification":
+        pairs = [f"{_shown(k)} -> {_shown(v)}" for k, v in one.items()]
+        return (f"in all {int(filled.sum())} rows where it is filled, each class has one value of it "
+                f"({', '.join(pairs[:3])}{', ...' if len(pairs) > 3 else ''})")
+    way = "higher" if one.is_monotonic_increasing else "lower"
+    return (f"in all {int(filled.sum())} rows where it is filled, the higher the target, the {way} it is, and equal "
+            "targets give equal values")
+
+
 def check_target_copies(frame: pd.DataFrame, spec: dict[str, Any], task: str, source: str) -> None:
-    """Refuse a feature whose values, or whose blanks, the target fixes in every row (see :data:`MIN_ROWS_FOR_COPY`):
-    a copy of the target under another name, a band of it, or a column filled in only for one outcome."""
+    """Refuse a feature whose values, or whose blanks, the target fixes in every row (:func:`target_copy`): a copy
+    of the target under another name, a band of it, or a column filled in only for one outcome."""
     target = frame[spec["target"]]
     known = set(spec.get("known_before_outcome", []))
     for column in feature_columns(frame, spec):
-        if column in known:
-            continue
-        values = frame[column]
-        numeric = pd.api.types.is_numeric_dtype(values)
-        blank = values.isna()
-        how = None
-        if blank.any():
-            blanks = _fixed_by_target(blank, target, task == "regression")
-            if blanks is not None:
-                where = [_shown(v) for v in blanks.index[blanks.to_numpy(dtype=bool)]]
-                how = (f"in all {len(values)} rows it is blank exactly where the class is {', '.join(where[:3])}"
-                       f"{' and more' if len(where) > 3 else ''}" if task == "classification" else
-                       f"in all {len(values)} rows it is blank exactly where the target is "
-                       f"{'at least ' + where[0] if blanks.iloc[-1] else 'at most ' + where[-1]}")
-        if how is None:
-            filled = ~blank.to_numpy()
-            one = _fixed_by_target(values[filled], target[filled], task == "regression" and numeric)
-            if one is not None and task == "classification":
-                pairs = [f"{_shown(k)} -> {_shown(v)}" for k, v in one.items()]
-                how = (f"in all {int(filled.sum())} rows where it is filled, each class has one value of it "
-                       f"({', '.join(pairs[:3])}{', ...' if len(pairs) > 3 else ''})")
-            elif one is not None:
-                way = "higher" if one.is_monotonic_increasing else "lower"
-                how = (f"in all {int(filled.sum())} rows where it is filled, the higher the target, the {way} it is, "
-                       "and equal targets give equal values")
+        how = None if column in known else target_copy(frame[column], target, task)
         if how is not None:
             raise DataError(f"feature column '{column}' is fixed by target column '{target.name}' in '{source}': "
                             f"{how}; every candidate would read the outcome off it, and its validated score would not "
@@ -514,19 +517,28 @@ DISTINCT_SHARE = 0.9
 MIN_ROWS_FOR_LABELS = 30
 
 
+def labels_rows(values: pd.Series) -> int | None:
+    """The number of different values of a column whose filled cells are almost all different (more than
+    :data:`DISTINCT_SHARE` of them, from :data:`MIN_ROWS_FOR_LABELS` cells); None for any other column."""
+    filled = values.dropna()
+    if len(filled) < MIN_ROWS_FOR_LABELS:
+        return None
+    head = filled.iloc[:_SAMPLE]
+    if head.nunique() <= DISTINCT_SHARE * len(head):  # a real category repeats within its first 1,000 cells
+        return None
+    distinct = int(filled.nunique())
+    return distinct if distinct > DISTINCT_SHARE * len(filled) else None
+
+
 def check_row_labels(values: pd.Series, source: str) -> None:
     """Refuse a text feature whose filled cells are almost all different (an order number, a note, a timestamp whose
     column is not data.time): the candidates would one-hot encode it into a column per row, learn nothing that
     carries to a new row, and on large data fail for memory deep inside a fit job."""
+    distinct = labels_rows(values)
+    if distinct is None:
+        return
     filled = values.dropna()
-    if len(filled) < MIN_ROWS_FOR_LABELS:
-        return
     head = filled.iloc[:_SAMPLE]
-    if head.nunique() <= DISTINCT_SHARE * len(head):  # a real category repeats within its first 1,000 cells
-        return
-    distinct = filled.nunique()
-    if distinct <= DISTINCT_SHARE * len(filled):
-        return
     times = pd.to_datetime(head.astype(str), errors="coerce", utc=True, format="ISO8601").notna().mean()
     way = "name it in data.time if it is the rows' time, " if times > DISTINCT_SHARE else ""
     examples = ", ".join(repr(v) for v in filled.iloc[:2])

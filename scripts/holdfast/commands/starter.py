@@ -3,8 +3,10 @@
 The task is inferred from the target (holdfast.dataset.infer_task). Column roles are suggested from names and
 values: a column named like an id with a unique text or integer value in every row is the id; a column named
 like a group, site, route, patient or customer whose values repeat is the group; a text column whose every
-value reads as a date and time is the time. Folds: five, stratified for classification, whole groups when a
-group is named. A small set of families: a linear model, a random forest and histogram gradient boosting.
+value reads as a date and time is the time; a text column different in almost every row, or one the target
+fixes (holdfast.dataset.target_copy), is left out with the reason. Folds: five, stratified for classification,
+whole groups when a group is named. A small set of families: a linear model, a random forest and histogram
+gradient boosting.
 The config is checked as `holdfast check` checks it before it is written; an existing file is never replaced.
 """
 
@@ -83,9 +85,12 @@ class Roles:
     notes: list[str] = field(default_factory=list)  # other findings, as comments
 
 
-def suggest_roles(frame: Any, target: str) -> Roles:
-    """Id, group, time and columns to drop, from the columns' names and values."""
+def suggest_roles(frame: Any, target: str, task: str) -> Roles:
+    """Id, group, time and columns to drop, from the columns' names and values; a column the check before the seal
+    would refuse as a feature (a label of rows, a copy of the target) is dropped with the reason."""
     import pandas as pd
+
+    from ..dataset import labels_rows, target_copy
 
     roles = Roles()
     n = len(frame)
@@ -112,11 +117,14 @@ def suggest_roles(frame: Any, target: str) -> Roles:
             else:
                 roles.drop[name] = "dates and times, which no model step reads as times (the first is data.time)"
             continue
-        if _text(values) and unique:
-            roles.drop[name] = ("a different text value in every row: it names rows and cannot predict new ones (or "
-                                "make it data.id)")
-        elif values.isna().all():
+        if values.isna().all():
             roles.drop[name] = "empty in every row"
+        elif _text(values) and (unique or labels_rows(values) is not None):
+            roles.drop[name] = (f"a different text value in {'every row' if unique else 'almost every row'}: it "
+                                "names rows and cannot predict new ones (or make it data.id)")
+        elif (how := target_copy(values, frame[target], task)) is not None:
+            roles.drop[name] = (f"the target fixes it ({how}): a copy of the outcome; if it is recorded before the "
+                                "outcome, move it to data.known_before_outcome")
     return roles
 
 
@@ -356,10 +364,10 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
     if frame[target].isna().all():
         raise DataError(f"target column '{target}' of '{data}' is empty in every row; choose the column to predict")
     task, why = _task(frame, target)
-    roles = suggest_roles(frame, target)
+    roles = suggest_roles(frame, target, task)
     path_text = os.path.relpath(data) if data.is_absolute() and Path.cwd() in data.parents else str(data)
     salt, name, metrics = secrets.token_hex(4), experiment_name(data, results), _metrics(frame, target, task)
-    first: HoldfastError | None = None
+    last: HoldfastError | None = None
     notes: list[str] = []
     for test_scheme, fold_scheme in schemes(task, roles.group):
         choice = Choices(experiment=name, data_path=path_text, target=target, task=task, task_why=why, roles=roles,
@@ -369,7 +377,7 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
         try:
             plan = prepare(parse_yaml(text, str(out)), main=True, results=str(results))
         except HoldfastError as exc:
-            first = first or exc
+            last = exc
             notes.append(f"test.scheme {test_scheme} with folds.scheme {fold_scheme} did not pass the check: "
                          f"{exc.message}")
             continue
@@ -380,8 +388,12 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
                 f"{len(plan.fold_ids)} folds, primary metric {plan.config['metrics'][0]}; checked as 'holdfast "
                 f"check {out}' checks it"]
         return text, said
-    assert first is not None
-    raise type(first)(f"no starter config for '{data}' passes the check: {first.message}")
+    assert last is not None
+    # The last pair asks least of the data (rows, not groups): what stops it stops them all, so its reason is the one
+    # to act on (the first pair's is often only that whole groups cannot keep the classes).
+    tried = len(notes)
+    raise type(last)(f"no starter config for '{data}' passes the check ({tried} pairs of test and fold schemes tried); "
+                     f"the last, test.scheme {test_scheme} with folds.scheme {fold_scheme}: {last.message}")
 
 
 def main(args: argparse.Namespace) -> int:
