@@ -549,6 +549,17 @@ def test_init_bad_inputs_are_one_line_and_replace_nothing(tmp_path: Path) -> Non
                    "folder 'no/such' of 'no/such/dir.yaml' does not exist")
 
 
+def test_init_beside_an_opened_experiment_on_the_same_rows_gives_the_reason_that_stops_every_scheme(
+        bc_copy: Path) -> None:
+    """Every scheme pair fails on rows whose test set 'bc' opened: the line gives that reason (the last pair's), not
+    the first pair's, which was only that whole groups could not keep the classes."""
+    one_error_line(run_cli(bc_copy, "init", "data.csv", "--target", "target", "-o", "again.yaml"), 4,
+                   "no starter config for 'data.csv' passes the check (",
+                   "pairs of test and fold schemes tried); the last, test.scheme stratified with folds.scheme "
+                   "stratified: ", "were in a test set already opened by 'bc")
+    assert not (bc_copy / "again.yaml").exists()
+
+
 def test_init_refuses_data_no_config_can_use(tmp_path: Path) -> None:
     """Two rows cannot be sealed and folded: init says why and writes nothing."""
     (tmp_path / "tiny.csv").write_text("x,y\n1,0\n2,1\n", encoding="utf-8")

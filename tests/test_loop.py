@@ -612,6 +612,14 @@ def test_a_second_experiment_cannot_seal_rows_another_opened_unless_it_says_why(
     assert "in a test set already opened by 'bc (folder bc)'" in refused.stderr
     assert "test.seen_rows_reason" in refused.stderr
     assert tree_digest(opened / "results") == before and not (opened / "results" / "bc-again").exists()
+    # Keying the same rows another way (by their content, not the id column) launders nothing either: the opening
+    # registered its rows' content keys too.
+    edit(opened, lambda c: c["data"].update(id=None, drop=["patient"]))
+    rekeyed = run_cli(opened, "run", "config.yaml", "--cores", "2")
+    assert rekeyed.returncode == 4 and "in a test set already opened by 'bc (folder bc)'" in rekeyed.stderr, \
+        rekeyed.stdout + rekeyed.stderr
+    assert tree_digest(opened / "results") == before
+    edit(opened, lambda c: c["data"].update(id="patient", drop=[]))
     # Renaming the opened experiment's folder, or deleting it, launders nothing: the registry remembers.
     (opened / "results" / "bc").rename(opened / "results" / "renamed")
     assert run_cli(opened, "run", "config.yaml", "--cores", "2").returncode == 4

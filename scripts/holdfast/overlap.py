@@ -5,10 +5,16 @@ already seen. At the seal, the new sealed rows are compared (by row key) with ev
 the same results folder: those named in the registry beside it (kept even if the experiment's folder was
 deleted or renamed) and every experiment folder with an opening record. Any overlap is refused unless the
 config writes a reason (``test.seen_rows_reason``); then every output says "test rows seen before".
+
+Row keys alone would let a new key launder the rows: the same file keyed by its id column in one experiment
+and by row content (no data.id) in the next shares no key. So each opening also registers its rows' content
+keys (:func:`register_content`, after its one read of the sealed rows), and the new rows are compared by
+content too, over the data file's columns as they are (a column added or a value edited makes other rows).
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -35,21 +41,57 @@ def opened_test_sets(results: Path) -> dict[str, tuple[str, Path]]:
     return found
 
 
+def content_file(keys_file: Path) -> Path:
+    """Where an opened test set's content keys sit beside its registered row keys."""
+    return keys_file.with_name(keys_file.name.removesuffix(".parquet") + ".content.parquet")
+
+
+def _content(rows: Any) -> Any:
+    """Rows' content keys without the '~2' that tells identical rows of one file apart (a subset numbers them
+    differently)."""
+    from .dataset import content_keys
+
+    return content_keys(rows).str.split("~", n=1).str[0]
+
+
+def register_content(keys_file: Path, test: Any) -> None:
+    """Register the content keys of an opened test set's rows (``test`` as read from its sealed file) beside its
+    row keys, once; only the opening may call this, after its one read of the sealed rows."""
+    import pandas as pd
+
+    from ._io import write_parquet
+    from .dataset import KEY
+
+    target = content_file(keys_file)
+    if not target.exists():
+        write_parquet(target, pd.DataFrame({"content_key": _content(test.drop(columns=[KEY]))}))
+
+
 def check(test_keys: Any, results: Path, experiment: str, reason: str | None,
-          own_anchor: str | None = None) -> dict[str, Any] | None:
-    """Refuse sealed rows that another opened test set holds, unless ``reason``; return what to record."""
+          own_anchor: str | None = None, rows: Callable[[], Any] | None = None) -> dict[str, Any] | None:
+    """Refuse sealed rows that another opened test set holds, unless ``reason``; return what to record.
+
+    ``rows`` gives the new sealed rows with the data file's columns (asked for only when an opened test set has
+    registered content keys), so that rows keyed another way are still found.
+    """
     import pandas as pd
 
     opened = opened_test_sets(results)
     if not opened:
         return None
     wanted = set(map(str, test_keys))
+    content: set[str] | None = None
     overlaps = []
     for anchor, (label, path) in sorted(opened.items(), key=lambda item: item[1][0]):
         if anchor == own_anchor:
             continue
         seen = set(pd.read_parquet(path, columns=["row_key"])["row_key"].astype(str))
         shared = len(wanted & seen)
+        if rows is not None and content_file(path).exists():
+            if content is None:
+                content = set(_content(rows()))
+            seen_content = set(pd.read_parquet(content_file(path), columns=["content_key"])["content_key"])
+            shared = max(shared, len(content & seen_content))
         if shared:
             overlaps.append({"experiment": label, "rows": shared, "seal_anchor": anchor})
     if not overlaps:

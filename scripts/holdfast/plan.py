@@ -546,7 +546,8 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
     if heavy and manifest is None:  # last: a data or config problem is the user's first fix, the policy comes after
         from .overlap import check as check_overlap
 
-        check_overlap(sealed_keys, exp.parent, config["experiment"], config["test"]["seen_rows_reason"])
+        check_overlap(sealed_keys, exp.parent, config["experiment"], config["test"]["seen_rows_reason"],
+                      rows=lambda: frame[test_rows])
     plan.facts = {"task": task, "n_dev": n_dev, "n_groups": n_groups,
                   "data_mb": data_mb if data_mb is not None else (facts or {}).get("data_mb")}
     return plan

@@ -339,7 +339,8 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                         "(exact duplicates); remove them or set leakage.duplicates: warn")
     from .overlap import check as check_overlap
 
-    seen_before = check_overlap(test[KEY], out.parent, experiment, seen_rows_reason)
+    seen_before = check_overlap(test[KEY], out.parent, experiment, seen_rows_reason,
+                                rows=lambda: test.drop(columns=[KEY]))
     time_check = time_order_at_seal(dev, test, spec, guards.get("time_order", "note"), str(data_path))
 
     with ledger.locked(out / "seal"):  # the checks above wrote nothing; from here on, one seal at a time
