@@ -120,8 +120,9 @@ def suggest_roles(frame: Any, target: str, task: str) -> Roles:
         if values.isna().all():
             roles.drop[name] = "empty in every row"
         elif _text(values) and (unique or labels_rows(values) is not None):
-            roles.drop[name] = (f"a different text value in {'every row' if unique else 'almost every row'}: it "
-                                "names rows and cannot predict new ones (or make it data.id)")
+            roles.drop[name] = ("a different text value in every row: it names rows and cannot predict new ones (or "
+                                "make it data.id)" if unique else "a different text value in almost every row: it "
+                                "names rows and cannot predict new ones")
         elif (how := target_copy(values, frame[target], task)) is not None:
             roles.drop[name] = (f"the target fixes it ({how}): a copy of the outcome; if it is recorded before the "
                                 "outcome, move it to data.known_before_outcome")
