@@ -443,7 +443,10 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
     if plan.exp.is_symlink():
         raise ConfigError(f"results folder '{plan.exp}' is a symbolic link; holdfast writes only into real folders "
                           "inside the project")
-    if _opening_running(plan.exp):
+    from . import ledger
+    from .layout import OPEN_COMMAND_LOCK
+
+    if ledger.held_elsewhere(plan.exp / OPEN_COMMAND_LOCK):  # a glance: no lock file made where none was opened
         raise SealedAccessError(f"'holdfast open' of experiment '{plan.exp}' is running, so this run starts nothing "
                                 "(it would replace the config the opening reads, and meet the opening's Snakemake); "
                                 f"once the opening has ended, 'holdfast audit {plan.exp}' says what it did")
@@ -460,15 +463,6 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
     if code or dry:
         return code
     return _finish(plan.exp, plan.config["data"].get("unit"))
-
-
-def _opening_running(exp: Path) -> bool:
-    """Whether a 'holdfast open' of ``exp`` holds its command lock now (one look, taking the lock for an instant; no
-    lock file is made where none was ever opened)."""
-    from . import ledger
-    from .layout import OPEN_COMMAND_LOCK
-
-    return ledger.held_elsewhere(exp / OPEN_COMMAND_LOCK)
 
 
 def _pictures_missing(exp: Path) -> list[str]:

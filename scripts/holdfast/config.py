@@ -472,8 +472,7 @@ def seal_spec(config: dict[str, Any]) -> dict[str, Any]:
         **({"gap_hours": config["test"]["gap_hours"]} if config["test"]["scheme"] == "time_tail" else {}),
         # Only when set, so experiments sealed before the key existed keep their spec.
         **({"time_unit": data["time_unit"]} if data.get("time_unit") else {}),
-        **({"text": sorted(data["text"])} if data.get("text") else {}),
-        **({"known_before_outcome": sorted(data["known_before_outcome"])} if data.get("known_before_outcome") else {}),
+        **{key: sorted(data[key]) for key in ("text", "known_before_outcome") if data.get(key)},
     }
 
 
