@@ -1,9 +1,10 @@
 """Shared parts of the speed benchmarks: header, alternating runs, medians, peak memory, tables.
 
 Every speed benchmark prints plain fixed-width tables; none is a timed test. Each measured
-command runs in a fresh process under a small wrapper that reports its wall time and the peak
-resident memory of the largest process it waited for (``resource.getrusage(RUSAGE_CHILDREN)``
-in the wrapper, so a measurement never includes earlier ones).
+command runs in a fresh process under a small wrapper that reports its wall time, the peak
+resident memory of the largest process it waited for and the CPU seconds of all of them
+(``resource.getrusage(RUSAGE_CHILDREN)`` in the wrapper, so a measurement never includes earlier
+ones).
 
 How holdfast's whole workflow is started lives in ONE place, :func:`holdfast_steps`: today a
 Snakemake run then ``holdfast audit``; when the CLI offers ``holdfast run`` and ``holdfast open``
@@ -37,17 +38,20 @@ PYTHON = sys.executable
 sys.path.insert(0, str(SCRIPTS))  # holdfast from this checkout, with or without PYTHONPATH
 PACKAGES = ("snakemake", "scikit-learn", "pandas", "pyarrow", "numpy")
 
-# Runs argv[2:] and writes {"wall", "maxrss_kb", "rc", "start", "end"} to argv[1]. ru_maxrss of
-# RUSAGE_CHILDREN is the peak of the largest descendant waited for (KiB on Linux); the wrapper
+# Runs argv[2:] and writes {"wall", "maxrss_kb", "rc", "start", "end", "cpu"} to argv[1]. ru_maxrss of
+# RUSAGE_CHILDREN is the peak of the largest descendant waited for (KiB on Linux), ru_utime + ru_stime
+# the CPU seconds of every descendant waited for (a process counts once its parent waited for it, so
+# Snakemake's jobs, the job worker's children and joblib's worker processes all count); the wrapper
 # itself is not counted, and it has no earlier children.
 WRAPPER = """\
 import json, resource, subprocess, sys, time
 start = time.time(); t0 = time.perf_counter()
 rc = subprocess.call(sys.argv[2:])
 wall = time.perf_counter() - t0
-peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+usage = resource.getrusage(resource.RUSAGE_CHILDREN)
 with open(sys.argv[1], "w") as handle:
-    json.dump({"wall": wall, "maxrss_kb": peak, "rc": rc, "start": start, "end": time.time()}, handle)
+    json.dump({"wall": wall, "maxrss_kb": usage.ru_maxrss, "rc": rc, "start": start, "end": time.time(),
+               "cpu": usage.ru_utime + usage.ru_stime}, handle)
 """
 
 
@@ -134,7 +138,8 @@ def env() -> dict[str, str]:
 
 @dataclass
 class Measured:
-    """One measured command: wall seconds, peak RSS of its largest process, exit code and logs."""
+    """One measured command: wall seconds, peak RSS of its largest process, exit code, logs, and the CPU seconds
+    (user + system) of every process it started and waited for, its children's children included."""
 
     wall: float
     maxrss_kb: int
@@ -143,6 +148,7 @@ class Measured:
     end: float
     stdout: Path
     stderr: Path
+    cpu: float
 
     @property
     def peak_mib(self) -> float:
@@ -164,7 +170,8 @@ def measure(cmd: Sequence[str], cwd: Path, logs: Path, name: str) -> Measured:
     if not result.exists():
         raise BenchError(f"{name}: the measuring wrapper itself died (killed?); see {err}")
     data = json.loads(result.read_text())
-    return Measured(data["wall"], int(data["maxrss_kb"]), int(data["rc"]), data["start"], data["end"], out, err)
+    return Measured(data["wall"], int(data["maxrss_kb"]), int(data["rc"]), data["start"], data["end"], out, err,
+                    data["cpu"])
 
 
 def python_json(code: str, args: Sequence[str], cwd: Path, logs: Path, name: str) -> tuple[Measured, dict[str, Any]]:
@@ -297,6 +304,10 @@ class WorkflowRun:
     @property
     def start(self) -> float:
         return min(m.start for m in self.steps.values())
+
+    @property
+    def cpu(self) -> float:
+        return sum(m.cpu for m in self.steps.values())
 
     @property
     def peak_mib(self) -> float:

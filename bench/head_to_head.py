@@ -277,6 +277,12 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
         add("parallel efficiency, fit phase, best its jobs allow", c.ratio(h_limit_fit, bound), None)
         add("parallel efficiency, whole", c.ratio(h_limit, h_wall), c.ratio(s_limit, s_wall))
         add("peak RSS of the largest process (MiB)", rec["run"].peak_mib, rec["script_run"].peak_mib)
+        h_cpu, s_cpu = rec["run"].cpu, rec["script_run"].cpu
+        add("CPU time, every process (user + system, s)", h_cpu, s_cpu)
+        add("whole workflow at full use of the cores: CPU / cores (s)", h_cpu / cores, s_cpu / cores)
+        add("parallel efficiency, whole, by CPU time", c.ratio(h_cpu / cores, h_wall), c.ratio(s_cpu / cores,
+                                                                                                s_wall))
+        add("lowest ratio this CPU time allows: CPU / cores / script's wall", c.ratio(h_cpu / cores, s_wall), None)
     table, medians = [], {}
     for name, pairs in rows.items():
         h = c.median([p[0] for p in pairs])
@@ -284,6 +290,8 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
         medians[f"holdfast {name}"], medians[f"script {name}"] = h, s
         if "efficiency" in name:
             table.append([name, c.pct(h), c.pct(s), ""])
+        elif "lowest ratio" in name:
+            table.append([name, "" if h is None else f"{h:.2f}x", "", ""])
         else:
             r = c.ratio(h, s) if "refit" not in name and "curve" not in name else None
             table.append([name, h, s, "" if r is None else f"{r:.2f}x"])
@@ -301,6 +309,10 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
           "winner on the same rows")
     print("  learning curves: holdfast's diagnostic fits of the winner on smaller training sets (ledger "
           "'learning_curve' lines that fitted); the script makes none, so its limit with them is its plain limit")
+    print("  CPU time: user + system seconds of every process each side started and waited for (Snakemake, its "
+          "jobs, the job worker and its children; joblib's worker processes), from getrusage(RUSAGE_CHILDREN); "
+          "no schedule runs the same work on the cores in less than CPU / cores, so the lowest ratio is a bound "
+          "for this much work, reached only at 100 % use of every core from the first second to the last")
     print("  shortest any order allows: a lower bound on running the measured fit_family jobs (wall times from "
           "Snakemake's records) on the cores, one job per core at a time (bench/_common.py: schedule_bound); "
           "finer jobs would lower it")
@@ -331,6 +343,7 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
         ["run (to the report)", c.median([r["floor"]["run"].wall for r in records])],
         ["open (the opening, the report again)", c.median([r["floor"]["open"].wall for r in records])],
         ["both: the floor of this job graph", c.median(floor_both)],
+        ["both: CPU time (user + system)", c.median([sum(m.cpu for m in r["floor"].values()) for r in records])],
         ["holdfast's whole workflow above the floor", c.median([r["run"].wall - f
                                                                 for r, f in zip(records, floor_both, strict=True)])],
     ])
@@ -338,6 +351,18 @@ def report(scenario: Scenario, records: list[dict[str, Any]], cores: int) -> dic
     medians["floor both (s)"] = c.median(floor_both)
     medians["identical"] = float(all(rec["same"]["identical"] for rec in records))
     return medians
+
+
+def cpu_note(m: dict[str, float | None]) -> None:
+    """Under a ratio target: the lowest ratio the measured CPU time of each side allows on these cores."""
+    h_cpu, s_cpu = m["holdfast CPU time, every process (user + system, s)"], m["script CPU time, every process (user "
+                                                                               "+ system, s)"]
+    lowest = m["holdfast lowest ratio this CPU time allows: CPU / cores / script's wall"]
+    if h_cpu is None or s_cpu is None or lowest is None:
+        return
+    print(f"        holdfast's processes used {h_cpu:.2f} CPU seconds, the script's {s_cpu:.2f} "
+          f"({h_cpu / s_cpu:.2f}x): even at 100 % use of every core from start to end, that much work allows no "
+          f"ratio below {lowest:.2f}x")
 
 
 def judge(target: str, value: float | None, limit: float, quick: bool, unit: str = "") -> None:
@@ -374,6 +399,7 @@ def main(argv: list[str] | None = None) -> int:
             print(f"        Snakemake alone needs {floor:.2f} s for this job graph with empty jobs, "
                   f"{100 * floor / script:.0f} % of the script's {script:.2f} s; 1.3x leaves "
                   f"{1.3 * script - floor:.2f} s above it for all of holdfast's work")
+        cpu_note(m)
     for name in ("mixed", "mixed-parts", "mixed-lean"):
         if name not in results:
             continue
@@ -391,6 +417,7 @@ def main(argv: list[str] | None = None) -> int:
         if with_curves is not None and script:
             print(f"        holdfast's work with its learning curves needs {with_curves:.2f} s on these cores at 100 % "
                   f"efficiency: {with_curves / script:.2f}x the script's whole {script:.2f} s")
+        cpu_note(m)
     for name, m in results.items():
         if not m["identical"]:
             print(f"WARNING {name}: the script's numbers differ from holdfast's in some rep; see 'identical' above")
