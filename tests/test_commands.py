@@ -400,6 +400,22 @@ def test_predict_with_a_never_opened_regression_says_no_honest_estimate_exists(f
     np.testing.assert_allclose(written["prediction"], reference.predict(x), rtol=1e-9)
 
 
+def test_predict_names_the_file_when_the_model_cannot_take_a_value() -> None:
+    """A real scikit-learn pipeline with nothing to impute blanks: its own ValueError becomes one named DataError."""
+    from holdfast.commands.predict import model_outputs
+    from holdfast.errors import DataError
+    from sklearn.linear_model import LogisticRegression
+
+    x = pd.DataFrame({"a": [0.0, 1.0, 2.0, 3.0]})
+    model = LogisticRegression().fit(x, [0, 0, 1, 1])
+    with pytest.raises(DataError, match=r"cannot predict the rows of 'new\.csv' \(scikit-learn: Input X contains NaN"):
+        model_outputs(model, pd.DataFrame({"a": [1.0, np.nan]}), True, Path("new.csv"))
+    prediction, proba = model_outputs(model, x, True, Path("new.csv"))
+    np.testing.assert_array_equal(prediction, model.predict(x))
+    np.testing.assert_array_equal(proba, model.predict_proba(x))
+    assert model_outputs(model, x, False, Path("new.csv"))[1] is None
+
+
 @pytest.mark.slow
 def test_predict_refuses_bad_new_files_in_one_line_and_writes_nothing(fresh: Path, tmp_path: Path) -> None:
     exp = fresh / "results" / "diab"
@@ -420,6 +436,10 @@ def test_predict_refuses_bad_new_files_in_one_line_and_writes_nothing(fresh: Pat
                    "column 'sex'", "trained on text")
     one_error_line(predict(rows.assign(bmi=rows["bmi"] > 30), "d.parquet"), 3, "column 'bmi'",
                    "holds true/false values but the model was trained on numbers")
+    infinite = rows.copy()
+    infinite.loc[infinite.index[3], "bmi"] = np.inf  # written as 'inf', which pandas reads back as infinity
+    one_error_line(predict(infinite, "f.csv"), 3, "column 'bmi'", "has 1 infinite value(s) (first in data row 4)",
+                   "trained on finite numbers")
     one_error_line(run_cli(fresh, "predict", "results/diab", str(tmp_path / "none.csv"), "-o", str(out)), 3,
                    "'", "none.csv' does not exist")
     assert not out.exists()

@@ -127,6 +127,11 @@ def check_columns(frame: Any, kinds: dict[str, str], source: Path) -> Any:
                 where = _first_bad(values, lambda v: not isinstance(v, str) or _is_number(v))
                 raise DataError(f"column '{name}' of '{source}' holds text{where} but the model was trained on "
                                 "numbers in it; fix those values or leave them blank")
+            infinite = np.isinf(values.to_numpy(dtype="float64", na_value=np.nan))
+            if infinite.any():  # the seal refuses them in the training data; scikit-learn would fail on them here
+                raise DataError(f"column '{name}' of '{source}' has {int(infinite.sum())} infinite value(s) (first "
+                                f"in data row {int(np.flatnonzero(infinite)[0]) + 1}) but the model was trained on "
+                                "finite numbers; fix those values or leave them blank")
         elif kind == TRUTH:
             if not pd.api.types.is_bool_dtype(values):
                 present = values.dropna()
@@ -149,6 +154,18 @@ def check_columns(frame: Any, kinds: dict[str, str], source: Path) -> Any:
                                 f"{kind} values in it; give the column that type (a Parquet file keeps it)")
         out[name] = values
     return pd.DataFrame(out, index=frame.index)
+
+
+def model_outputs(model: Any, x: Any, probabilities: bool, source: Path) -> tuple[Any, Any]:
+    """The model's predictions (and class probabilities) for ``x``; a value the model cannot take (a blank where
+    its pipeline imputes nothing, say) is a DataError naming the file, not a traceback."""
+    try:
+        return model.predict(x), (model.predict_proba(x) if probabilities else None)
+    except ValueError as exc:  # scikit-learn's input checks raise ValueError
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise DataError(f"the model cannot predict the rows of '{source}' (scikit-learn: {first}); make their values "
+                        "like the development data's (a blank is allowed only where the model's preprocessing "
+                        "imputes one)") from exc
 
 
 def _is_number(text: str) -> bool:
@@ -248,10 +265,10 @@ def predict(exp: Path, new_path: Path, out_path: Path) -> list[str]:
     model = load_model(str(exp / MODEL), refit.get("model_sha256"), refit.get("model_types"))
     import pandas as pd
 
-    out = pd.DataFrame({key_name: keys.to_numpy(), "prediction": model.predict(x)})
     probabilities = spec.get("task") == "classification" and hasattr(model, "predict_proba")
-    if probabilities:
-        proba = model.predict_proba(x)
+    prediction, proba = model_outputs(model, x, probabilities, new_path)
+    out = pd.DataFrame({key_name: keys.to_numpy(), "prediction": prediction})
+    if proba is not None:
         for i, label in enumerate(model.classes_):
             out[f"proba_{label}"] = proba[:, i]
 
