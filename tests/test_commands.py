@@ -653,6 +653,9 @@ def test_list_and_compare_show_the_files_numbers(bc_finished: Path, fresh: Path,
     for i, name in enumerate(("bc", "diab")):
         for key, value in expected_cells(results / name).items():
             assert by_field[key][i] == value, (name, key)
+    twice = run_cli(tmp_path, "compare", "results/bc", "results/diab", "results/./bc/")
+    assert not twice.stdout
+    one_error_line(twice, 2, "'results/./bc/' and 'results/bc' are the same experiment folder")
 
 
 @pytest.mark.slow

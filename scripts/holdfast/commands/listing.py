@@ -78,6 +78,12 @@ def compare_main(args: argparse.Namespace) -> int:
     if len(args.experiments) < 2:
         raise ConfigError("holdfast compare needs two or more experiment folders; for one, use holdfast status")
     folders = [experiment_folder(p) for p in args.experiments]
+    seen: dict[Path, str] = {}
+    for given, folder in zip(args.experiments, folders, strict=True):
+        if folder.resolve() in seen:
+            raise ConfigError(f"'{given}' and '{seen[folder.resolve()]}' are the same experiment folder; name each "
+                              "experiment to compare once")
+        seen[folder.resolve()] = given
     summaries = [summarize(p) for p in folders]
     cells = [row(s) for s in summaries]
     rows = [[name, *(c[i] for c in cells)] for i, name in enumerate(FIELDS) if i]
