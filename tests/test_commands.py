@@ -451,6 +451,38 @@ def test_predict_refuses_bad_new_files_in_one_line_and_writes_nothing(fresh: Pat
 
 
 @pytest.mark.slow
+def test_predict_refuses_sealed_test_rows_before_the_opening(fresh_copy: Path, bc_finished: Path,
+                                                             tmp_path: Path) -> None:
+    """The experiment's own data file holds its sealed rows: their predictions beside the outcomes in that file would
+    be a look at the test set that no ledger line records, so predict refuses them until the opening."""
+    exp = fresh_copy / "results" / "diab"
+    sealed = read(exp, "sealed/manifest.json")["counts"]["test"]
+    before = tree_digest(exp)
+    out = tmp_path / "p.csv"
+    whole = run_cli(fresh_copy, "predict", "results/diab", "diab.csv", "-o", str(out))
+    rows = len(pd.read_csv(fresh_copy / "diab.csv"))
+    one_error_line(whole, 4, f"{sealed} of the {rows} rows of 'diab.csv' are sealed test rows",
+                   "(matched by id column 'visit_id')", "open the test set first")
+    data = pd.read_csv(fresh_copy / "diab.csv").drop(columns=["visit_id", "target"]).sample(frac=1.0, random_state=0)
+    data.to_csv(tmp_path / "no-id.csv", index=False)
+    one_error_line(run_cli(fresh_copy, "predict", "results/diab", str(tmp_path / "no-id.csv"), "-o", str(out)), 4,
+                   f"{sealed} of the {len(data)} rows", "(matched by equal values in every feature)")
+    assert not out.exists() and tree_digest(exp) == before
+    # Development rows pass; without the data file the check cannot be made, and the output says so.
+    new_rows(exp, 5, extra=False).to_csv(tmp_path / "dev.csv", index=False)
+    (fresh_copy / "diab.csv").rename(fresh_copy / "moved.csv")
+    moved = run_cli(fresh_copy, "predict", "results/diab", str(tmp_path / "dev.csv"), "-o", str(out))
+    assert moved.returncode == 0, moved.stderr
+    assert ("holdfast: note: could not check that these rows hold none of the sealed test rows: its data file "
+            "'diab.csv' is not there; keep the sealed rows out of files you predict until the test set is opened"
+            in moved.stdout.splitlines())
+    # After the opening the sealed rows were looked at once, on the record: predicting them is no new look.
+    opened = run_cli(bc_finished, "predict", "results/bc", "data.csv", "-o", str(tmp_path / "bc.csv"))
+    assert opened.returncode == 0, opened.stderr
+    assert len(pd.read_csv(tmp_path / "bc.csv")) == len(pd.read_csv(bc_finished / "data.csv"))
+
+
+@pytest.mark.slow
 def test_predict_keys_rows_by_content_without_the_id_and_refuses_a_changed_model(bc_copy: Path,
                                                                                 tmp_path: Path) -> None:
     from holdfast.dataset import content_keys

@@ -6,7 +6,9 @@ them) with the kind of values the development set had (numbers, text or true/fal
 schema without loading rows); other columns are ignored with a note. The output holds the id column (or a
 row key made from each row's content), the prediction and, for classifiers, one proba_<class> column per
 class. Whether an honest estimate of how the predictions will do exists is said plainly: only an opening of
-the sealed test set for this very model gives one.
+the sealed test set for this very model gives one. Until the experiment's first opening, rows of its sealed test
+set are refused (see :func:`sealed_among`): their predictions beside outcomes the user holds would be a look at
+the test set outside the ledger.
 """
 
 from __future__ import annotations
@@ -20,8 +22,8 @@ from typing import Any
 
 from .. import display, ledger
 from .._io import sha256_file, write_atomic
-from ..errors import ConfigError, DataError, ModelFileError
-from ..layout import DEV, LEDGER, MODEL, PROVENANCE, VERDICT
+from ..errors import ConfigError, DataError, HoldfastError, ModelFileError, SealedAccessError
+from ..layout import DEV, LEDGER, MANIFEST, MODEL, PROVENANCE, VERDICT
 from ._common import experiment_folder, short, when
 
 NUMBERS, TEXT, TRUTH = "numbers", "text", "true/false values"
@@ -188,6 +190,65 @@ def _read_recorded(path: Path, sha: Any, what: str) -> bytes:
     return data
 
 
+def _data_file(exp: Path, recorded: dict[str, Any]) -> tuple[Path | None, str]:
+    """The experiment's data file as sealed (its recorded path, from here or from the project folder above
+    results/), or None and why it cannot be used."""
+    given = Path(str(recorded.get("path", "")))
+    candidates = [given] if given.is_absolute() else [given, exp.resolve().parent.parent / given]
+    path = next((c for c in candidates if c.is_file()), None)
+    if path is None:
+        return None, f"its data file '{given}' is not there"
+    stat = path.stat()
+    if (stat.st_size, stat.st_mtime_ns) != (recorded.get("bytes"), recorded.get("mtime_ns")) \
+            and sha256_file(path) != recorded.get("sha256"):
+        return None, f"its data file '{path}' has changed since the seal"
+    return path, ""
+
+
+def sealed_among(exp: Path, spec: dict[str, Any], frame: Any, x: Any) -> tuple[int, str]:
+    """How many new rows are rows of the experiment's sealed test set: by the id column when the experiment has
+    one and the new file holds it, else by equal values in every feature the model uses. Returns (count, how they
+    were matched), or (-1, why no check was possible).
+
+    The sealed rows are found the way the seal found them: from the experiment's own data file (verified against
+    the manifest), never by reading the sealed file, which only the opening reads.
+    """
+    import numpy as np
+
+    from .._io import read_json, read_table
+    from ..dataset import row_keys
+    from ..leakage import row_identity
+    from ..seal import split_masks
+
+    try:
+        manifest = read_json(exp / MANIFEST)
+        path, why = _data_file(exp, manifest["data"])
+        if path is None:
+            return -1, why
+        data = read_table(path)
+        keys = row_keys(data, spec.get("id"))
+        test = split_masks(data, keys, spec, spec["task"])[0]
+    except (HoldfastError, KeyError, OSError, ValueError) as exc:
+        return -1, f"its sealed rows could not be found again ({type(exc).__name__}: {str(exc)[:120]})"
+    id_column = spec.get("id")
+    if id_column and id_column in frame.columns:
+        return int(frame[id_column].astype(str).isin(set(keys[test])).sum()), f"by id column '{id_column}'"
+    columns = list(x.columns)
+    missing = [c for c in columns if c not in data.columns]
+    if missing:
+        return -1, f"feature column '{missing[0]}' is not in its data file"
+    sealed, n = data.loc[test, columns], int(test.sum())
+    identity = row_identity([_stacked(sealed[c], x[c]) for c in columns])
+    return identity.repeated(np.arange(n), np.arange(n, identity.n)), "by equal values in every feature"
+
+
+def _stacked(first: Any, second: Any) -> Any:
+    """Two columns one after the other, with a fresh index."""
+    import pandas as pd
+
+    return pd.concat([first.reset_index(drop=True), second.reset_index(drop=True)], ignore_index=True)
+
+
 def _keys(frame: Any, id_column: str | None) -> tuple[str, Any, str]:
     """The output's key column: the experiment's id column when the new file has it, else a content row key."""
     from ..dataset import KEY, content_keys
@@ -258,6 +319,21 @@ def predict(exp: Path, new_path: Path, out_path: Path) -> list[str]:
     seals = ledger.events(entries, "seal")
     spec = (seals[0]["details"].get("spec") or {}) if seals else {}
     key_name, keys, key_text = _keys(frame, spec.get("id"))
+    from .. import openings
+
+    unchecked = ""
+    if not openings.records(exp).count:
+        # Before the one look, the sealed rows' predictions beside their known outcomes would be a look at the test
+        # set that no ledger line records.
+        count, how = sealed_among(exp, spec, frame, x)
+        if count > 0:
+            raise SealedAccessError(f"{count} of the {len(frame)} rows of '{new_path}' are sealed test rows of "
+                                    f"experiment '{exp}' (matched {how}); predicting them before the opening would "
+                                    "be a look at the test set that the ledger does not record: leave them out, or "
+                                    f"open the test set first with 'holdfast open {exp}'")
+        if count < 0:
+            unchecked = (f"note: could not check that these rows hold none of the sealed test rows: {how}; keep "
+                         "the sealed rows out of files you predict until the test set is opened")
 
     from ..closing import target_unit_of
     from ..refit import load_model
@@ -287,6 +363,8 @@ def predict(exp: Path, new_path: Path, out_path: Path) -> list[str]:
     if extra:
         shown = ", ".join(f"'{c}'" for c in extra[:8]) + (f" and {len(extra) - 8} more" if len(extra) > 8 else "")
         lines.append(f"note: ignored column(s) the model does not use: {shown}")
+    if unchecked:
+        lines.append(unchecked)
     if spec.get("task") == "classification" and not probabilities:
         lines.append(f"note: {candidate['estimator']} gives no class probabilities; only the predicted class is "
                      "written")
