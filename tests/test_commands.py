@@ -467,6 +467,10 @@ def test_predict_refuses_sealed_test_rows_before_the_opening(fresh_copy: Path, b
     data.to_csv(tmp_path / "no-id.csv", index=False)
     one_error_line(run_cli(fresh_copy, "predict", "results/diab", str(tmp_path / "no-id.csv"), "-o", str(out)), 4,
                    f"{sealed} of the {len(data)} rows", "(matched by equal values in every feature)")
+    (tmp_path / "link.parquet").symlink_to(exp / "sealed" / "test.parquet")
+    for sealed_file in ("results/diab/sealed/test.parquet", str(tmp_path / "link.parquet")):
+        one_error_line(run_cli(fresh_copy, "predict", "results/diab", sealed_file, "-o", str(out)), 4,
+                       "is in the sealed folder of experiment 'results/diab', which only the opening reads")
     assert not out.exists() and tree_digest(exp) == before
     # Development rows pass; without the data file the check cannot be made, and the output says so.
     new_rows(exp, 5, extra=False).to_csv(tmp_path / "dev.csv", index=False)
