@@ -345,6 +345,13 @@ def data_outside_project(workdir: Path, config: dict[str, Any]) -> None:
     breast_cancer_frame().to_csv(workdir.parent / "elsewhere.csv", index=False)
 
 
+def data_in_sealed_folder(workdir: Path, config: dict[str, Any]) -> None:
+    """Another experiment's sealed test file as the data (allow_outside_project does not allow it)."""
+    config["experiment"] = FRESH
+    config["data"]["path"] = "results/bc/sealed/test.parquet"
+    config["data"]["allow_outside_project"] = True
+
+
 def yaml_alias_bomb(workdir: Path, config: dict[str, Any]) -> None:
     """Nested YAML anchors and aliases that expand to 10^9 values (parsed with the safe loader)."""
     levels = ["a: &a [x, x, x, x, x, x, x, x, x, x]"]
@@ -703,6 +710,10 @@ CASES = [
     pytest.param(data_outside_project, CONFIG_ERROR,
                  r"config key 'data\.path': '.*elsewhere\.csv' is outside the project folder .*; copy the file "
                  r"into the project or set data\.allow_outside_project: true", id="data-outside-project"),
+    pytest.param(data_in_sealed_folder, CONFIG_ERROR,
+                 r"config key 'data\.path': 'results/bc/sealed/test\.parquet' names a file in the sealed folder of "
+                 r"experiment folder '.*results/bc', which only that experiment's opening reads; use your own data "
+                 r"file", id="data-in-sealed-folder"),
     pytest.param(yaml_alias_bomb, CONFIG_ERROR,
                  r"config expands to more than 100000 values \(nested YAML anchors and aliases\?\)",
                  id="yaml-alias-bomb"),

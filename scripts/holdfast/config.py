@@ -423,12 +423,18 @@ def allowed_prefixes(config: dict[str, Any]) -> list[str]:
 
 
 def check_data_location(config: dict[str, Any], project: str | os.PathLike[str] = ".") -> None:
-    """Refuse a data path outside the project folder unless data.allow_outside_project is set."""
+    """Refuse a data path outside the project folder unless data.allow_outside_project is set, and a file in an
+    experiment's sealed folder always: only that experiment's opening reads it."""
     data = config["data"]
-    if data.get("allow_outside_project"):
-        return
     root = Path(project).resolve()
     where = (root / data["path"]).resolve()  # an absolute path replaces root; symlinks are followed
+    sealed = next((p for p in where.parents if p.name == "sealed" and (p / "manifest.json").is_file()), None)
+    if sealed is not None:
+        raise ConfigError(f"config key 'data.path': '{data['path']}' names a file in the sealed folder of experiment "
+                          f"folder '{sealed.parent}', which only that experiment's opening reads; use your own data "
+                          "file")
+    if data.get("allow_outside_project"):
+        return
     if not where.is_relative_to(root):
         raise ConfigError(f"config key 'data.path': '{data['path']}' is outside the project folder '{root}'; copy "
                           "the file into the project or set data.allow_outside_project: true")
