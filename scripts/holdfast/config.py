@@ -428,11 +428,12 @@ def check_data_location(config: dict[str, Any], project: str | os.PathLike[str] 
     data = config["data"]
     root = Path(project).resolve()
     where = (root / data["path"]).resolve()  # an absolute path replaces root; symlinks are followed
-    sealed = next((p for p in where.parents if p.name == "sealed" and (p / "manifest.json").is_file()), None)
+    from .layout import sealed_experiment_of
+
+    sealed = sealed_experiment_of(where)
     if sealed is not None:
         raise ConfigError(f"config key 'data.path': '{data['path']}' names a file in the sealed folder of experiment "
-                          f"folder '{sealed.parent}', which only that experiment's opening reads; use your own data "
-                          "file")
+                          f"folder '{sealed}', which only that experiment's opening reads; use your own data file")
     if data.get("allow_outside_project"):
         return
     if not where.is_relative_to(root):

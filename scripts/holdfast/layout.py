@@ -69,3 +69,13 @@ def check_experiment_dir(exp_dir: str | os.PathLike[str], project: str | os.Path
             raise ConfigError(f"'{path}' is a symbolic link to '{path.resolve()}', outside the project folder "
                               f"'{root}', so the experiment would write there; nothing was run. Replace it with a "
                               "real folder inside the project")
+
+
+def sealed_experiment_of(path: str | os.PathLike[str]) -> Path | None:
+    """The experiment folder whose sealed folder holds ``path`` (symbolic links and '..' resolved), else None.
+
+    Only an experiment's opening reads its sealed file: the commands that read a file the user names (a config's
+    data.path, holdfast init's data, holdfast predict's new rows) refuse one there before reading it."""
+    sealed = Path(MANIFEST).parent.name
+    where = Path(path).resolve()
+    return next((p.parent for p in where.parents if p.name == sealed and (p.parent / MANIFEST).is_file()), None)

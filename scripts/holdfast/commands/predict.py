@@ -23,7 +23,7 @@ from typing import Any
 from .. import display, ledger
 from .._io import sha256_file, write_atomic
 from ..errors import ConfigError, DataError, HoldfastError, ModelFileError, SealedAccessError
-from ..layout import DEV, LEDGER, MANIFEST, MODEL, PROVENANCE, TEST, VERDICT
+from ..layout import DEV, LEDGER, MANIFEST, MODEL, PROVENANCE, VERDICT, sealed_experiment_of
 from ._common import experiment_folder, short, when
 
 NUMBERS, TEXT, TRUTH = "numbers", "text", "true/false values"
@@ -304,9 +304,10 @@ def predict(exp: Path, new_path: Path, out_path: Path) -> list[str]:
     if out_path.exists():
         raise ConfigError(f"output '{out_path}' exists; choose another name with -o or remove it (predict never "
                           "overwrites a file)")
-    if (exp / TEST).parent.resolve() in new_path.resolve().parents:
-        raise SealedAccessError(f"'{new_path}' is in the sealed folder of experiment '{exp}', which only the opening "
-                                "reads; predict rows from your own data files")
+    sealed = sealed_experiment_of(new_path)
+    if sealed is not None:
+        raise SealedAccessError(f"'{new_path}' is in the sealed folder of experiment folder '{sealed}', which only "
+                                "that experiment's opening reads; predict rows from your own data files")
     entries = ledger.read(exp / LEDGER)
     refits = ledger.events(entries, "refit")
     if not refits:

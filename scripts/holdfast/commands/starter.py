@@ -23,7 +23,8 @@ from typing import Any
 
 import yaml
 
-from ..errors import ConfigError, DataError, HoldfastError
+from ..errors import ConfigError, DataError, HoldfastError, SealedAccessError
+from ..layout import sealed_experiment_of
 
 ID_WORDS = {"id", "uuid", "guid"}
 GROUP_WORDS = {"group", "site", "route", "patient", "customer", "subject", "user", "store", "clinic", "hospital",
@@ -350,6 +351,10 @@ def read_data(path: Path) -> Any:
         raise DataError(f"data file '{path}' has suffix '{path.suffix}'; holdfast reads .csv and .parquet files")
     if path.stat().st_size == 0:
         raise DataError(f"data file '{path}' is empty; pass a file with a header and rows")
+    sealed = sealed_experiment_of(path)
+    if sealed is not None:
+        raise SealedAccessError(f"data file '{path}' is in the sealed folder of experiment folder '{sealed}', which "
+                                "only that experiment's opening reads; pass your own data file")
     return read_table(path)
 
 
