@@ -712,8 +712,8 @@ CASES = [
                  r"into the project or set data\.allow_outside_project: true", id="data-outside-project"),
     pytest.param(data_in_sealed_folder, CONFIG_ERROR,
                  r"config key 'data\.path': 'results/bc/sealed/test\.parquet' names a file in the sealed folder of "
-                 r"experiment folder '.*results/bc', which only that experiment's opening reads; use your own data "
-                 r"file", id="data-in-sealed-folder"),
+                 r"experiment folder '.*results/bc', whose rows only that experiment's opening reads; use your own "
+                 r"data file", id="data-in-sealed-folder"),
     pytest.param(yaml_alias_bomb, CONFIG_ERROR,
                  r"config expands to more than 100000 values \(nested YAML anchors and aliases\?\)",
                  id="yaml-alias-bomb"),

@@ -470,8 +470,8 @@ def test_predict_refuses_sealed_test_rows_before_the_opening(fresh_copy: Path, b
     (tmp_path / "link.parquet").symlink_to(exp / "sealed" / "test.parquet")
     for sealed_file in ("results/diab/sealed/test.parquet", str(tmp_path / "link.parquet")):
         one_error_line(run_cli(fresh_copy, "predict", "results/diab", sealed_file, "-o", str(out)), 4,
-                       f"is in the sealed folder of experiment folder '{exp.resolve()}', which only that "
-                       "experiment's opening reads")
+                       f"is in the sealed folder of experiment folder '{exp.resolve()}', whose rows only "
+                       "that experiment's opening reads")
     one_error_line(run_cli(fresh_copy, "init", str(tmp_path / "link.parquet"), "--target", "target", "-o",
                            str(tmp_path / "starter.yaml")), 4, "is in the sealed folder of experiment folder")
     assert not (tmp_path / "starter.yaml").exists()

@@ -424,7 +424,7 @@ def allowed_prefixes(config: dict[str, Any]) -> list[str]:
 
 def check_data_location(config: dict[str, Any], project: str | os.PathLike[str] = ".") -> None:
     """Refuse a data path outside the project folder unless data.allow_outside_project is set, and a file in an
-    experiment's sealed folder always: only that experiment's opening reads it."""
+    experiment's sealed folder always: only that experiment's opening reads its rows."""
     data = config["data"]
     root = Path(project).resolve()
     where = (root / data["path"]).resolve()  # an absolute path replaces root; symlinks are followed
@@ -433,7 +433,7 @@ def check_data_location(config: dict[str, Any], project: str | os.PathLike[str] 
     sealed = sealed_experiment_of(where)
     if sealed is not None:
         raise ConfigError(f"config key 'data.path': '{data['path']}' names a file in the sealed folder of experiment "
-                          f"folder '{sealed}', which only that experiment's opening reads; use your own data file")
+                          f"folder '{sealed}', whose rows only that experiment's opening reads; use your own data file")
     if data.get("allow_outside_project"):
         return
     if not where.is_relative_to(root):

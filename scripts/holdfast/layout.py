@@ -74,8 +74,8 @@ def check_experiment_dir(exp_dir: str | os.PathLike[str], project: str | os.Path
 def sealed_experiment_of(path: str | os.PathLike[str]) -> Path | None:
     """The experiment folder whose sealed folder holds ``path`` (symbolic links and '..' resolved), else None.
 
-    Only an experiment's opening reads its sealed file: the commands that read a file the user names (a config's
-    data.path, holdfast init's data, holdfast predict's new rows) refuse one there before reading it."""
+    Only an experiment's opening reads the rows of its sealed file: the commands that read a file the user names (a
+    config's data.path, holdfast init's data, holdfast predict's new rows) refuse one there before reading it."""
     sealed = Path(MANIFEST).parent.name
     where = Path(path).resolve()
     return next((p.parent for p in where.parents if p.name == sealed and (p.parent / MANIFEST).is_file()), None)

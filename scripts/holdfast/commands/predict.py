@@ -211,7 +211,7 @@ def sealed_among(exp: Path, spec: dict[str, Any], frame: Any, x: Any) -> tuple[i
     were matched), or (-1, why no check was possible).
 
     The sealed rows are found the way the seal found them: from the experiment's own data file (verified against
-    the manifest), never by reading the sealed file, which only the opening reads.
+    the manifest), never by reading the sealed file, whose rows only the opening reads.
     """
     import numpy as np
 
@@ -306,8 +306,8 @@ def predict(exp: Path, new_path: Path, out_path: Path) -> list[str]:
                           "overwrites a file)")
     sealed = sealed_experiment_of(new_path)
     if sealed is not None:
-        raise SealedAccessError(f"'{new_path}' is in the sealed folder of experiment folder '{sealed}', which only "
-                                "that experiment's opening reads; predict rows from your own data files")
+        raise SealedAccessError(f"'{new_path}' is in the sealed folder of experiment folder '{sealed}', whose rows "
+                                "only that experiment's opening reads; predict rows from your own data files")
     entries = ledger.read(exp / LEDGER)
     refits = ledger.events(entries, "refit")
     if not refits:

@@ -353,8 +353,8 @@ def read_data(path: Path) -> Any:
         raise DataError(f"data file '{path}' is empty; pass a file with a header and rows")
     sealed = sealed_experiment_of(path)
     if sealed is not None:
-        raise SealedAccessError(f"data file '{path}' is in the sealed folder of experiment folder '{sealed}', which "
-                                "only that experiment's opening reads; pass your own data file")
+        raise SealedAccessError(f"data file '{path}' is in the sealed folder of experiment folder '{sealed}', whose "
+                                "rows only that experiment's opening reads; pass your own data file")
     return read_table(path)
 
 
