@@ -462,11 +462,17 @@ def test_predict_refuses_sealed_test_rows_before_the_opening(fresh_copy: Path, b
     whole = run_cli(fresh_copy, "predict", "results/diab", "diab.csv", "-o", str(out))
     rows = len(pd.read_csv(fresh_copy / "diab.csv"))
     one_error_line(whole, 4, f"{sealed} of the {rows} rows of 'diab.csv' are sealed test rows",
-                   "(matched by id column 'visit_id')", "open the test set first")
+                   f"(matched {sealed} by equal values in every feature, {sealed} by id column 'visit_id')",
+                   "open the test set first")
+    # An edited id does not make a sealed row new: its feature values still match.
+    edited = pd.read_csv(fresh_copy / "diab.csv").assign(visit_id=lambda f: f["visit_id"].astype(str) + "-x")
+    edited.to_csv(tmp_path / "edited.csv", index=False)
+    one_error_line(run_cli(fresh_copy, "predict", "results/diab", str(tmp_path / "edited.csv"), "-o", str(out)), 4,
+                   f"{sealed} of the {rows} rows", f"(matched {sealed} by equal values in every feature, 0 by id")
     data = pd.read_csv(fresh_copy / "diab.csv").drop(columns=["visit_id", "target"]).sample(frac=1.0, random_state=0)
     data.to_csv(tmp_path / "no-id.csv", index=False)
     one_error_line(run_cli(fresh_copy, "predict", "results/diab", str(tmp_path / "no-id.csv"), "-o", str(out)), 4,
-                   f"{sealed} of the {len(data)} rows", "(matched by equal values in every feature)")
+                   f"{sealed} of the {len(data)} rows", f"(matched {sealed} by equal values in every feature)")
     (tmp_path / "link.parquet").symlink_to(exp / "sealed" / "test.parquet")
     for sealed_file in ("results/diab/sealed/test.parquet", str(tmp_path / "link.parquet")):
         one_error_line(run_cli(fresh_copy, "predict", "results/diab", sealed_file, "-o", str(out)), 4,

@@ -206,9 +206,9 @@ def _data_file(exp: Path, recorded: dict[str, Any]) -> tuple[Path | None, str]:
 
 
 def sealed_among(exp: Path, spec: dict[str, Any], frame: Any, x: Any) -> tuple[int, str]:
-    """How many new rows are rows of the experiment's sealed test set: by the id column when the experiment has
-    one and the new file holds it, else by equal values in every feature the model uses. Returns (count, how they
-    were matched), or (-1, why no check was possible).
+    """How many new rows are rows of the experiment's sealed test set: by equal values in every feature the model
+    uses, or by the id column when the experiment has one and the new file holds it (either is enough: an edited id
+    does not make a sealed row new). Returns (count, how they were matched), or (-1, why no check was possible).
 
     The sealed rows are found the way the seal found them: from the experiment's own data file (verified against
     the manifest), never by reading the sealed file, whose rows only the opening reads.
@@ -230,16 +230,23 @@ def sealed_among(exp: Path, spec: dict[str, Any], frame: Any, x: Any) -> tuple[i
         test = split_masks(data, keys, spec, spec["task"])[0]
     except (HoldfastError, KeyError, OSError, ValueError) as exc:
         return -1, f"its sealed rows could not be found again ({type(exc).__name__}: {str(exc)[:120]})"
-    id_column = spec.get("id")
-    if id_column and id_column in frame.columns:
-        return int(frame[id_column].astype(str).isin(set(keys[test])).sum()), f"by id column '{id_column}'"
     columns = list(x.columns)
     missing = [c for c in columns if c not in data.columns]
     if missing:
         return -1, f"feature column '{missing[0]}' is not in its data file"
     sealed, n = data.loc[test, columns], int(test.sum())
     identity = row_identity([_stacked(sealed[c], x[c]) for c in columns])
-    return identity.repeated(np.arange(n), np.arange(n, identity.n)), "by equal values in every feature"
+    matched = np.zeros(len(x), dtype=bool)  # new rows whose feature values equal a sealed row's
+    if identity.rows.size:
+        new = identity.rows >= n
+        matched[identity.rows[new] - n] = np.isin(identity.ids[new], identity.ids[~new])
+    how = [f"{int(matched.sum())} by equal values in every feature"]
+    id_column = spec.get("id")
+    if id_column and id_column in frame.columns:
+        by_id = frame[id_column].astype(str).isin(set(keys[test])).to_numpy()
+        how.append(f"{int(by_id.sum())} by id column '{id_column}'")
+        matched |= by_id
+    return int(matched.sum()), ", ".join(how)
 
 
 def _stacked(first: Any, second: Any) -> Any:
