@@ -497,6 +497,29 @@ def test_predict_refuses_sealed_test_rows_before_the_opening(fresh_copy: Path, b
 
 
 @pytest.mark.slow
+def test_a_second_split_of_the_same_file_may_not_fit_on_unopened_test_rows(fresh_copy: Path) -> None:
+    """Experiment diab is sealed and never opened. A second experiment on diab.csv with another test.salt would fit
+    on diab's sealed rows, and diab's opening would then score rows already used to choose: refused, nothing
+    written. With diab's own test settings both seal the same rows, which is allowed."""
+    config = {**diabetes_config(), "experiment": "diab2"}
+    config["test"] = {**config["test"], "salt": "another"}
+    write_config(fresh_copy, config, "second.yaml")
+    before = tree_digest(fresh_copy / "results")
+    for command in (["check", "second.yaml"], ["run", "second.yaml", "--cores", "2"]):
+        line = one_error_line(run_cli(fresh_copy, *command), 4, "development rows of experiment 'diab2' are sealed "
+                              "test rows of experiment 'diab', which sealed the same data file and has not been "
+                              "opened", "Nothing was sealed", "(data.id 'visit_id', test.scheme 'hashed', "
+                              "test.fraction 0.25, test.salt 'd1')")
+        shared = int(line.split("holdfast: sealed test set: ")[1].split(" of the ")[0])
+        assert shared > 0
+    assert tree_digest(fresh_copy / "results") == before and not (fresh_copy / "results" / "diab2").exists()
+    config["test"]["salt"] = "d1"
+    write_config(fresh_copy, config, "second.yaml")
+    same = run_cli(fresh_copy, "check", "second.yaml")
+    assert same.returncode == 0, same.stderr
+
+
+@pytest.mark.slow
 def test_predict_keys_rows_by_content_without_the_id_and_refuses_a_changed_model(bc_copy: Path,
                                                                                 tmp_path: Path) -> None:
     from holdfast.dataset import content_keys
