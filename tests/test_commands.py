@@ -517,6 +517,15 @@ def test_a_second_split_of_the_same_file_may_not_fit_on_unopened_test_rows(fresh
     write_config(fresh_copy, config, "second.yaml")
     same = run_cli(fresh_copy, "check", "second.yaml")
     assert same.returncode == 0, same.stderr
+    # holdfast init beside it keeps diab's test settings (it would otherwise draw a salt of its own).
+    started = run_cli(fresh_copy, "init", "diab.csv", "--target", "target", "-o", "starter.yaml")
+    assert started.returncode == 0, started.stdout + started.stderr
+    written = yaml.safe_load((fresh_copy / "starter.yaml").read_text(encoding="utf-8"))
+    assert written["data"]["id"] == "visit_id"
+    assert {k: written["test"][k] for k in ("scheme", "fraction", "salt")} == {"scheme": "hashed", "fraction": 0.25,
+                                                                             "salt": "d1"}
+    assert "as experiment 'diab' (same data file, not opened)" in (fresh_copy / "starter.yaml").read_text()
+    assert run_cli(fresh_copy, "check", "starter.yaml").returncode == 0
 
 
 @pytest.mark.slow

@@ -67,26 +67,16 @@ def register_content(keys_file: Path, test: Any) -> None:
         write_parquet(target, pd.DataFrame({"content_key": _content(test.drop(columns=[KEY]))}))
 
 
-def unopened_test_rows(frame: Any, development: Any, data_path: str, results: Path, experiment: str) -> None:
-    """Refuse development rows that another experiment under ``results`` sealed as test rows and has not opened.
-
-    Two experiments on one data file with other test settings split it differently, so each would fit on rows the
-    other sealed, and the first opening of either would report a figure on rows already used to choose. Only the
-    same data file (size, then sha256) is compared: the other experiment's split is drawn again on the rows already
-    loaded, with the spec its manifest recorded (no sealed file is read). Opened test sets are :func:`check`'s.
-    """
+def unopened_same_file(data_path: str, results: Path, experiment: str) -> list[tuple[Path, dict[str, Any]]]:
+    """(folder, sealed spec) of every other experiment under ``results`` sealed from the same data file (size, then
+    sha256) and not opened, by folder name."""
     import os
 
-    import numpy as np
-
     from ._io import read_json, sha256_file
-    from .dataset import row_keys
-    from .seal import split_masks
 
     if not results.is_dir():
-        return
-    size, digest = os.stat(data_path).st_size, None
-    keys_by_id: dict[Any, Any] = {}
+        return []
+    size, digest, found = os.stat(data_path).st_size, None, []
     for folder in sorted(p for p in results.iterdir() if p.is_dir() and p.name != experiment):
         try:
             manifest = read_json(folder / MANIFEST)
@@ -96,8 +86,27 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, results: Pa
         if recorded.get("bytes") != size:
             continue
         digest = digest or sha256_file(data_path)
-        if recorded.get("sha256") != digest or openings.count(folder) > 0:
-            continue
+        if recorded.get("sha256") == digest and openings.count(folder) == 0:
+            found.append((folder, spec))
+    return found
+
+
+def unopened_test_rows(frame: Any, development: Any, data_path: str, results: Path, experiment: str) -> None:
+    """Refuse development rows that another experiment under ``results`` sealed as test rows and has not opened.
+
+    Two experiments on one data file with other test settings split it differently, so each would fit on rows the
+    other sealed, and the first opening of either would report a figure on rows already used to choose. Only the
+    same data file is compared (:func:`unopened_same_file`): the other experiment's split is drawn again on the rows
+    already loaded, with the spec its manifest recorded (no sealed file is read). Opened test sets are
+    :func:`check`'s.
+    """
+    import numpy as np
+
+    from .dataset import row_keys
+    from .seal import split_masks
+
+    keys_by_id: dict[Any, Any] = {}
+    for folder, spec in unopened_same_file(data_path, results, experiment):
         if spec.get("id") not in keys_by_id:
             keys_by_id[spec.get("id")] = row_keys(frame, spec.get("id"))
         theirs = split_masks(frame, keys_by_id[spec.get("id")], spec, spec["task"])[0]
@@ -109,9 +118,8 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, results: Pa
                 f"{shared} of the {int(np.sum(development))} development rows of experiment '{experiment}' are sealed "
                 f"test rows of experiment '{folder.name}', which sealed the same data file and has not been opened; "
                 f"fitting on them here would make its opening score rows already used to choose. Nothing was "
-                f"sealed. Use its "
-                f"test settings (data.id {spec.get('id')!r}, {settings}) so that both seal the same rows, open "
-                f"'{folder.name}' first, or remove its folder '{folder}' if it will never be opened")
+                f"sealed. Use its test settings (data.id {spec.get('id')!r}, {settings}) so that both seal the same "
+                f"rows, open '{folder.name}' first, or remove its folder '{folder}' if it will never be opened")
 
 
 def check(test_keys: Any, results: Path, experiment: str, reason: str | None,

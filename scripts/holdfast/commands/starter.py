@@ -171,6 +171,8 @@ class Choices:
     test_scheme: str
     fold_scheme: str
     notes: list[str] = field(default_factory=list)  # why a first choice gave way, as comments
+    fraction: float = 0.2
+    test_of: str | None = None  # the unopened experiment on the same data file whose test settings are kept
 
 
 def schemes(task: str, group: str | None) -> list[tuple[str, str]]:
@@ -255,6 +257,8 @@ def render(c: Choices) -> str:
     if r.id:
         lines.append(_comment(f"  id: {_y(r.id)}", "named like an id, a unique value in every row: the row key, not a "
                               "feature"))
+    elif c.test_of:
+        lines.append(_comment("  id: null", f"as experiment '{c.test_of}': rows are keyed by a hash of their content"))
     else:
         lines.append(_comment("  id: null", "no column named like an id is unique per row: rows are keyed by a hash "
                               "of their content"))
@@ -285,10 +289,12 @@ def render(c: Choices) -> str:
                     "folds' is (stratified: for new rows of known ones)")
     else:
         test_why = TEST_WHY[c.test_scheme]
+    kept = f"as experiment '{c.test_of}' (same data file, not opened): both seal the same rows" if c.test_of else ""
     lines += ["", "# The sealed test set: drawn once, read once (holdfast open).", "test:",
-              _comment("  fraction: 0.2", "a fifth of the rows (common practice)"),
-              _comment(f"  scheme: {c.test_scheme}", test_why),
-              _comment(f"  salt: {_y(c.salt)}", "drawn at random by holdfast init; another salt, another test set"),
+              _comment(f"  fraction: {c.fraction}", kept or "a fifth of the rows (common practice)"),
+              _comment(f"  scheme: {c.test_scheme}", kept or test_why),
+              _comment(f"  salt: {_y(c.salt)}", kept or "drawn at random by holdfast init; another salt, another test "
+                       "set"),
               _comment("  reopen_reasons: []", "one written reason per extra look at the test set")]
     if c.fold_scheme in ("group", "stratified_group"):
         folds_why = f"whole {r.group} values per fold" + (", class shares kept as far as they allow"
@@ -373,12 +379,18 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
     roles = suggest_roles(frame, target, task)
     path_text = os.path.relpath(data) if data.is_absolute() and Path.cwd() in data.parents else str(data)
     salt, name, metrics = secrets.token_hex(4), experiment_name(data, results), _metrics(frame, target, task)
+    pairs, fraction, test_of = schemes(task, roles.group), 0.2, None
+    kept = _kept_test_settings(data, results, name, frame, roles)
+    if kept is not None:  # another split of this file would fit on that experiment's sealed rows (overlap.py)
+        test_of, spec = kept
+        salt, fraction = str(spec["salt"]), float(spec["fraction"])
+        pairs = [(spec["scheme"], fold) for fold in dict.fromkeys(f for _, f in pairs)]
     last: HoldfastError | None = None
     notes: list[str] = []
-    for test_scheme, fold_scheme in schemes(task, roles.group):
+    for test_scheme, fold_scheme in pairs:
         choice = Choices(experiment=name, data_path=path_text, target=target, task=task, task_why=why, roles=roles,
                          metrics=metrics, salt=salt, test_scheme=test_scheme, fold_scheme=fold_scheme,
-                         notes=list(notes))
+                         notes=list(notes), fraction=fraction, test_of=test_of)
         text = render(choice)
         try:
             plan = prepare(parse_yaml(text, str(out)), main=True, results=str(results))
@@ -400,6 +412,29 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
     tried = len(notes)
     raise type(last)(f"no starter config for '{data}' passes the check ({tried} pairs of test and fold schemes tried); "
                      f"the last, test.scheme {test_scheme} with folds.scheme {fold_scheme}: {last.message}")
+
+
+def _kept_test_settings(data: Path, results: Path, name: str, frame: Any,
+                        roles: Roles) -> tuple[str, dict[str, Any]] | None:
+    """The first experiment sealed from ``data`` and not opened whose test settings the starter can write, as
+    (its name, its sealed spec); its id and group columns become the starter's. None when there is none."""
+    from ..overlap import unopened_same_file
+
+    for folder, spec in unopened_same_file(str(data), results, name):
+        columns = [spec.get("id"), spec.get("group") if "grouped" in str(spec.get("scheme")) else None]
+        if spec.get("scheme") in (*TEST_WHY, "grouped", "stratified_grouped") and all(
+                c is None or c in frame.columns for c in columns):
+            if roles.id and roles.id != spec.get("id"):
+                roles.drop[roles.id] = (f"an id, but experiment '{folder.name}' keys rows "
+                                        f"{'by ' + repr(spec['id']) if spec.get('id') else 'by their content'}, and "
+                                        "this one keeps its test settings")
+            roles.id = spec.get("id")
+            if columns[1] is not None and columns[1] != roles.group:
+                roles.group, roles.group_values = columns[1], int(frame[columns[1]].nunique())
+            for column in filter(None, columns):
+                roles.drop.pop(column, None)
+            return folder.name, spec
+    return None
 
 
 def main(args: argparse.Namespace) -> int:
