@@ -105,7 +105,9 @@ def test_a_test_split_that_ignores_time_is_noted_warned_or_refused(tmp_path: Pat
                                         r"development row\(s\) are not earlier than the first test row"):
         seal(data, spec, tmp_path / "error", "error", leakage={"time_order": "error"})
     assert not (tmp_path / "error").exists()
-    tail = seal(data, {**spec, "scheme": "time_tail", "gap_hours": 0}, tmp_path / "tail", "tail")
+    # In a results folder of its own: another split of the same file beside the unopened 'note' is refused
+    # (overlap.unopened_test_rows).
+    tail = seal(data, {**spec, "scheme": "time_tail", "gap_hours": 0}, tmp_path / "own" / "tail", "tail")
     assert tail["leakage"]["time_order"]["dev_rows_after_first_test"] == 0  # the time split respects time
 
 
