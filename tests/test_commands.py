@@ -513,6 +513,11 @@ def test_a_second_split_of_the_same_file_may_not_fit_on_unopened_test_rows(fresh
         shared = int(line.split("holdfast: sealed test set: ")[1].split(" of the ")[0])
         assert shared > 0
     assert tree_digest(fresh_copy / "results") == before and not (fresh_copy / "results" / "diab2").exists()
+    # Another target of the same file is another question (as the demo's regression twin): left alone.
+    twin = {**config, "experiment": "diab-bp", "data": {**config["data"], "target": "bp", "drop": ["target"]}}
+    write_config(fresh_copy, twin, "twin.yaml")
+    other_target = run_cli(fresh_copy, "check", "twin.yaml")
+    assert other_target.returncode == 0, other_target.stderr
     config["test"]["salt"] = "d1"
     write_config(fresh_copy, config, "second.yaml")
     same = run_cli(fresh_copy, "check", "second.yaml")

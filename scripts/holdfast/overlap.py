@@ -67,9 +67,11 @@ def register_content(keys_file: Path, test: Any) -> None:
         write_parquet(target, pd.DataFrame({"content_key": _content(test.drop(columns=[KEY]))}))
 
 
-def unopened_same_file(data_path: str, results: Path, experiment: str) -> list[tuple[Path, dict[str, Any]]]:
+def unopened_same_file(data_path: str, target: str, results: Path,
+                       experiment: str) -> list[tuple[Path, dict[str, Any]]]:
     """(folder, sealed spec) of every other experiment under ``results`` sealed from the same data file (size, then
-    sha256) and not opened, by folder name."""
+    sha256) for the same target column and not opened, by folder name. An experiment on another target of the
+    file (the demo's regression twin) answers another question, and is left alone."""
     import os
 
     from ._io import read_json, sha256_file
@@ -83,7 +85,7 @@ def unopened_same_file(data_path: str, results: Path, experiment: str) -> list[t
             recorded, spec = manifest["data"], manifest["spec"]
         except (OSError, ValueError, KeyError, TypeError):
             continue  # not an experiment, or a damaged one: its own audit says so
-        if recorded.get("bytes") != size:
+        if recorded.get("bytes") != size or spec.get("target") != target:
             continue
         digest = digest or sha256_file(data_path)
         if recorded.get("sha256") == digest and openings.count(folder) == 0:
@@ -91,7 +93,8 @@ def unopened_same_file(data_path: str, results: Path, experiment: str) -> list[t
     return found
 
 
-def unopened_test_rows(frame: Any, development: Any, data_path: str, results: Path, experiment: str) -> None:
+def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str, results: Path,
+                       experiment: str) -> None:
     """Refuse development rows that another experiment under ``results`` sealed as test rows and has not opened.
 
     Two experiments on one data file with other test settings split it differently, so each would fit on rows the
@@ -106,7 +109,7 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, results: Pa
     from .seal import split_masks
 
     keys_by_id: dict[Any, Any] = {}
-    for folder, spec in unopened_same_file(data_path, results, experiment):
+    for folder, spec in unopened_same_file(data_path, target, results, experiment):
         if spec.get("id") not in keys_by_id:
             keys_by_id[spec.get("id")] = row_keys(frame, spec.get("id"))
         theirs = split_masks(frame, keys_by_id[spec.get("id")], spec, spec["task"])[0]

@@ -550,7 +550,8 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
                       rows=lambda: frame[test_rows])
         from .overlap import unopened_test_rows
 
-        unopened_test_rows(frame, ~test_rows & ~dropped, config["data"]["path"], exp.parent, config["experiment"])
+        unopened_test_rows(frame, ~test_rows & ~dropped, config["data"]["path"], spec["target"], exp.parent,
+                           config["experiment"])
     plan.facts = {"task": task, "n_dev": n_dev, "n_groups": n_groups,
                   "data_mb": data_mb if data_mb is not None else (facts or {}).get("data_mb")}
     return plan

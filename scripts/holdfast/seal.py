@@ -332,7 +332,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         order = ordered.result()
     from .overlap import unopened_test_rows
 
-    unopened_test_rows(frame, development, str(data_path), out.parent, experiment)
+    unopened_test_rows(frame, development, str(data_path), spec["target"], out.parent, experiment)
     guards = {"duplicates": "warn", "single_feature_threshold": 0.98, **(leakage or {})}
     n_rows, columns = len(frame), [str(c) for c in frame.columns]
     test, dev = _split(frame, keys, mask, development)

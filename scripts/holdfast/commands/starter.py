@@ -380,7 +380,7 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
     path_text = os.path.relpath(data) if data.is_absolute() and Path.cwd() in data.parents else str(data)
     salt, name, metrics = secrets.token_hex(4), experiment_name(data, results), _metrics(frame, target, task)
     pairs, fraction, test_of = schemes(task, roles.group), 0.2, None
-    kept = _kept_test_settings(data, results, name, frame, roles)
+    kept = _kept_test_settings(data, target, results, name, frame, roles)
     if kept is not None:  # another split of this file would fit on that experiment's sealed rows (overlap.py)
         test_of, spec = kept
         salt, fraction = str(spec["salt"]), float(spec["fraction"])
@@ -414,13 +414,13 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
                      f"the last, test.scheme {test_scheme} with folds.scheme {fold_scheme}: {last.message}")
 
 
-def _kept_test_settings(data: Path, results: Path, name: str, frame: Any,
+def _kept_test_settings(data: Path, target: str, results: Path, name: str, frame: Any,
                         roles: Roles) -> tuple[str, dict[str, Any]] | None:
     """The first experiment sealed from ``data`` and not opened whose test settings the starter can write, as
     (its name, its sealed spec); its id and group columns become the starter's. None when there is none."""
     from ..overlap import unopened_same_file
 
-    for folder, spec in unopened_same_file(str(data), results, name):
+    for folder, spec in unopened_same_file(str(data), target, results, name):
         columns = [spec.get("id"), spec.get("group") if "grouped" in str(spec.get("scheme")) else None]
         if spec.get("scheme") in (*TEST_WHY, "grouped", "stratified_grouped") and all(
                 c is None or c in frame.columns for c in columns):
