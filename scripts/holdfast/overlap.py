@@ -10,6 +10,11 @@ Row keys alone would let a new key launder the rows: the same file keyed by its 
 and by row content (no data.id) in the next shares no key. So each opening also registers its rows' content
 keys (:func:`register_content`, after its one read of the sealed rows), and the new rows are compared by
 content too, over the data file's columns as they are (a column added or a value edited makes other rows).
+
+A test set not yet opened is kept out of other experiments' development rows too, for the same data file and
+target (:func:`unopened_test_rows`): its split is drawn again on the new experiment's rows, so no sealed file is
+read; ``holdfast init`` writes such an experiment's test settings instead of drawing its own
+(:func:`unopened_same_file`).
 """
 
 from __future__ import annotations
