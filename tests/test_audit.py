@@ -213,6 +213,16 @@ def delete_test_file(exp: Path) -> None:
     (exp / "sealed/test.parquet").unlink()
 
 
+def delete_row_hashes(exp: Path) -> None:
+    """Delete the sealed rows' hash file (what keeps other experiments off the unopened test rows)."""
+    (exp / "sealed/test_rows.parquet").unlink()
+
+
+def swap_row_hashes(exp: Path) -> None:
+    """Replace the sealed rows' hashes with others (a file that would let other experiments fit on them)."""
+    edit_parquet(exp / "sealed/test_rows.parquet", lambda frame: frame.assign(row_hash=frame["row_hash"] + 1))
+
+
 def edit_manifest_hash(exp: Path) -> None:
     """Edit the dev.parquet hash recorded in sealed/manifest.json (dev.parquet itself is untouched)."""
     edit_json(exp / "sealed/manifest.json", lambda m: m["files"].__setitem__("dev.parquet", "0" * 64))
@@ -590,6 +600,8 @@ CASES = [
     pytest.param(append_second_seal, ["seal-count"], [], id="ledger-second-seal"),
     pytest.param(change_test_cell, ["test-changed"], [], id="test-cell-changed"),
     pytest.param(delete_test_file, ["test-missing"], [], id="test-file-deleted"),
+    pytest.param(delete_row_hashes, ["test-rows-missing"], [], id="row-hashes-deleted"),
+    pytest.param(swap_row_hashes, ["test-rows-changed"], [], id="row-hashes-changed"),
     pytest.param(edit_manifest_hash, ["manifest-edited"], [], id="manifest-hash-edited"),
     pytest.param(edit_manifest_hash, ["manifest-edited"], ["dev-changed"], id="manifest-edit-not-blamed-on-dev"),
     pytest.param(overlap_dev_and_test, ["dev-test-overlap", "dev-changed"], [], id="dev-test-overlap"),

@@ -490,6 +490,14 @@ def test_predict_refuses_sealed_test_rows_before_the_opening(fresh_copy: Path, b
     assert ("holdfast: note: could not check that these rows hold none of the sealed test rows: its data file "
             "'diab.csv' is not there; keep the sealed rows out of files you predict until the test set is opened"
             in moved.stdout.splitlines())
+    # The whole file under its new name holds every column the seal kept: its rows are matched by the seal's row
+    # hashes, so moving the data file does not let its sealed rows through.
+    whole_out = tmp_path / "whole.csv"
+    one_error_line(run_cli(fresh_copy, "predict", "results/diab", "moved.csv", "-o", str(whole_out)), 4,
+                   f"{sealed} of the {rows} rows of 'moved.csv' are sealed test rows",
+                   f"matched {sealed} by equal values in every column of the data file, found with the seal's row "
+                   "hashes since its data file 'diab.csv' is not there")
+    assert not whole_out.exists()
     # After the opening the sealed rows were looked at once, on the record: predicting them is no new look.
     opened = run_cli(bc_finished, "predict", "results/bc", "data.csv", "-o", str(tmp_path / "bc.csv"))
     assert opened.returncode == 0, opened.stderr
@@ -529,8 +537,62 @@ def test_a_second_split_of_the_same_file_may_not_fit_on_unopened_test_rows(fresh
     assert written["data"]["id"] == "visit_id"
     assert {k: written["test"][k] for k in ("scheme", "fraction", "salt")} == {"scheme": "hashed", "fraction": 0.25,
                                                                              "salt": "d1"}
-    assert "as experiment 'diab' (same data file, not opened)" in (fresh_copy / "starter.yaml").read_text()
+    assert "as experiment 'diab' (not opened; it sealed rows of this data)" in (fresh_copy / "starter.yaml").read_text()
     assert run_cli(fresh_copy, "check", "starter.yaml").returncode == 0
+
+
+@pytest.mark.slow
+def test_a_grown_or_edited_copy_of_the_data_may_not_fit_on_unopened_test_rows(fresh_copy: Path) -> None:
+    """diab (sealed, never opened) sealed rows of diab.csv. A copy of that file with rows shuffled, 20 new rows, a
+    column added and whole-number ages written as integers is another file, but its rows are still diab's sealed
+    rows: a split with another salt may not fit on them. diab's own settings (hashed by visit_id) seal them here
+    too, and holdfast init keeps them. With diab's row-hash file gone the check cannot be made: refused."""
+    from holdfast.dataset import row_keys
+    from holdfast.seal import split_masks
+
+    original = pd.read_csv(fresh_copy / "diab.csv")
+    new = original.sample(20, random_state=3).assign(visit_id=[f"N{i:02d}" for i in range(20)])
+    new["bmi"] += 0.25  # new visits: no value row equal to a sealed one
+    grown = pd.concat([original, new]).sample(frac=1, random_state=4).assign(clinic="north")
+    grown["age"] = grown["age"].round().astype(int)
+    assert (original["age"] % 1 == 0).all()  # written as integers, the same values read with another dtype
+    grown.to_csv(fresh_copy / "grown.csv", index=False)
+    config = {**diabetes_config(), "experiment": "diab-grown"}
+    config["data"] = {**config["data"], "path": "grown.csv"}
+    config["test"] = {**config["test"], "salt": "another"}
+    write_config(fresh_copy, config, "grown.yaml")
+    # Expected count, by ids (independent of the row hashes): diab's sealed visit ids among the new development rows.
+    sealed_ids = set(pd.read_parquet(fresh_copy / "results" / "diab" / "sealed" / "test.parquet")["visit_id"])
+    frame = pd.read_csv(fresh_copy / "grown.csv")
+    test_rows, dropped = split_masks(frame, row_keys(frame, "visit_id"), {**config["test"], "task": "regression"},
+                                     "regression")
+    expected = int(frame.loc[~test_rows & ~dropped, "visit_id"].isin(sealed_ids).sum())
+    assert expected > 0
+    before = tree_digest(fresh_copy / "results")
+    line = one_error_line(run_cli(fresh_copy, "check", "grown.yaml"), 4,
+                          f"{expected} of the {int((~test_rows & ~dropped).sum())} development rows of experiment "
+                          "'diab-grown' are sealed test rows of experiment 'diab', which sealed rows with the same "
+                          "values in every column from 'diab.csv' and has not been opened",
+                          "(data.id 'visit_id', test.scheme 'hashed', test.fraction 0.25, test.salt 'd1') so that "
+                          "the rows it sealed are sealed here too")
+    assert "Nothing was sealed" in line
+    assert tree_digest(fresh_copy / "results") == before and not (fresh_copy / "results" / "diab-grown").exists()
+    config["test"]["salt"] = "d1"
+    write_config(fresh_copy, config, "grown.yaml")
+    same = run_cli(fresh_copy, "check", "grown.yaml")
+    assert same.returncode == 0, same.stderr
+    started = run_cli(fresh_copy, "init", "grown.csv", "--target", "target", "-o", "starter.yaml")
+    assert started.returncode == 0, started.stdout + started.stderr
+    written = yaml.safe_load((fresh_copy / "starter.yaml").read_text(encoding="utf-8"))
+    assert written["data"]["id"] == "visit_id"
+    assert {k: written["test"][k] for k in ("scheme", "fraction", "salt")} == {"scheme": "hashed", "fraction": 0.25,
+                                                                             "salt": "d1"}
+    rows_file = fresh_copy / "results" / "diab" / "sealed" / "test_rows.parquet"
+    rows_file.unlink()
+    config["test"]["salt"] = "another"
+    write_config(fresh_copy, config, "grown.yaml")
+    one_error_line(run_cli(fresh_copy, "check", "grown.yaml"), 4, "'results/diab/sealed/test_rows.parquet' is missing",
+                   "Restore it from a backup, or remove the folder 'results/diab'")
 
 
 @pytest.mark.slow

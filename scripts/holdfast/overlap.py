@@ -11,10 +11,13 @@ and by row content (no data.id) in the next shares no key. So each opening also 
 keys (:func:`register_content`, after its one read of the sealed rows), and the new rows are compared by
 content too, over the data file's columns as they are (a column added or a value edited makes other rows).
 
-A test set not yet opened is kept out of other experiments' development rows too, for the same data file and
-target (:func:`unopened_test_rows`): its split is drawn again on the new experiment's rows, so no sealed file is
-read; ``holdfast init`` writes such an experiment's test settings instead of drawing its own
-(:func:`unopened_same_file`).
+A test set not yet opened is kept out of other experiments' development rows too, for the same target
+(:func:`unopened_test_rows`). On the same data file its split is drawn again on the new experiment's rows, so no
+sealed file is read. On another file (a grown or edited copy, one rebuilt from the same source) rows are matched
+by value with the hashes of its sealed rows that its seal wrote (:data:`SEALED_ROWS`, recorded in the ledger,
+so deleting it to escape the check fails the audit); experiments sealed before those hashes were written are
+compared on the same file only. ``holdfast init`` writes such an experiment's test settings instead of drawing its
+own, when they seal the same rows here.
 """
 
 from __future__ import annotations
@@ -28,6 +31,8 @@ from .errors import SealedAccessError
 from .layout import MANIFEST, TEST
 
 SEEN_BEFORE = "test rows seen before"
+# The sealed rows' value hashes, written by the seal beside its sealed file (:func:`write_sealed_rows`).
+SEALED_ROWS = "sealed/test_rows.parquet"
 
 
 def opened_test_sets(results: Path) -> dict[str, tuple[str, Path]]:
@@ -72,30 +77,120 @@ def register_content(keys_file: Path, test: Any) -> None:
         write_parquet(target, pd.DataFrame({"content_key": _content(test.drop(columns=[KEY]))}))
 
 
-def unopened_same_file(data_path: str, target: str, results: Path,
-                       experiment: str) -> list[tuple[Path, dict[str, Any]]]:
-    """(folder, sealed spec) of every other experiment under ``results`` sealed from the same data file (size, then
-    sha256) for the same target column and not opened, by folder name. An experiment on another target of the
-    file (the demo's regression twin) answers another question, and is left alone."""
-    import os
+def row_hashes(rows: Any) -> Any:
+    """A 64-bit hash of each row's values, over its columns sorted by name (pandas' ``hash_pandas_object``).
 
-    from ._io import read_json, sha256_file
+    Numbers (and booleans) are hashed as float64, so a column read as integers from one file and as floats from an
+    edited copy (a blank added) still agrees; text, categories and Arrow strings hash alike; other objects (nested
+    lists) by their repr. Neither the row order,
+    the column order nor the file format enters. About half a microsecond a row of 20 columns; 64 bits make a
+    chance match between millions of rows unlikely (about one in a million at 8 M against 2 M rows).
+    """
+    import pandas as pd
+
+    columns = {}
+    for name in sorted(rows.columns, key=str):
+        values = rows[name]
+        if pd.api.types.is_bool_dtype(values.dtype) or pd.api.types.is_numeric_dtype(values.dtype):
+            values = values.astype("float64")
+        elif pd.api.types.is_object_dtype(values.dtype) and pd.api.types.infer_dtype(values) not in ("string", "empty"):
+            values = values.map(repr)  # lists, arrays, mixed values: hashed by their text, as pandas cannot hash them
+        columns[str(name)] = values
+    return pd.util.hash_pandas_object(pd.DataFrame(columns, index=rows.index, copy=False), index=False).to_numpy()
+
+
+def write_sealed_rows(exp: Path, test: Any) -> str:
+    """Write the sealed rows' :func:`row_hashes` (sorted, so no row order is kept) to :data:`SEALED_ROWS`,
+    read-only, and return the file's sha256. Only the seal calls this, on the rows it is sealing (a seal finished
+    after a kill seals the same rows)."""
+    import numpy as np
+    import pandas as pd
+
+    from ._io import sha256_file, write_parquet
+    from .dataset import KEY
+
+    path = exp / SEALED_ROWS
+    write_parquet(path, pd.DataFrame({"row_hash": np.sort(row_hashes(test.drop(columns=[KEY])))}), mode=0o444)
+    return sha256_file(path)
+
+
+def unopened_experiments(target: str, results: Path, experiment: str) -> list[tuple[Path, dict[str, Any]]]:
+    """(folder, manifest) of every other experiment under ``results`` sealed for the same target column and not
+    opened, by folder name. An experiment on another target of the data (the demo's regression twin) answers
+    another question, and is left alone."""
+    from ._io import read_json
 
     if not results.is_dir():
         return []
-    size, digest, found = os.stat(data_path).st_size, None, []
+    found = []
     for folder in sorted(p for p in results.iterdir() if p.is_dir() and p.name != experiment):
         try:
             manifest = read_json(folder / MANIFEST)
             recorded, spec = manifest["data"], manifest["spec"]
         except (OSError, ValueError, KeyError, TypeError):
             continue  # not an experiment, or a damaged one: its own audit says so
-        if recorded.get("bytes") != size or spec.get("target") != target:
-            continue
-        digest = digest or sha256_file(data_path)
-        if recorded.get("sha256") == digest and openings.count(folder) == 0:
-            found.append((folder, spec))
+        if isinstance(recorded, dict) and spec.get("target") == target and openings.count(folder) == 0:
+            found.append((folder, manifest))
     return found
+
+
+def _same_file(data_path: str, recorded: dict[str, Any], digest: list[str]) -> bool:
+    """Whether ``data_path`` is the file the manifest's data record names (size, then sha256, hashed once)."""
+    import os
+
+    from ._io import sha256_file
+
+    if recorded.get("bytes") != os.stat(data_path).st_size:
+        return False
+    if not digest:
+        digest.append(sha256_file(data_path))
+    return recorded.get("sha256") == digest[0]
+
+
+def unopened_same_file(data_path: str, target: str, results: Path,
+                       experiment: str) -> list[tuple[Path, dict[str, Any]]]:
+    """(folder, sealed spec) of every other experiment under ``results`` sealed from the same data file (size, then
+    sha256) for the same target column and not opened, by folder name."""
+    digest: list[str] = []
+    return [(folder, manifest["spec"]) for folder, manifest in unopened_experiments(target, results, experiment)
+            if _same_file(data_path, manifest["data"], digest)]
+
+
+def _their_rows(folder: Path, manifest: dict[str, Any]) -> Any | None:
+    """The row hashes an unopened experiment's seal wrote (None: sealed before holdfast wrote them); refused
+    when the file is missing or is not the one its seal recorded, since the check could then be escaped."""
+    import pandas as pd
+
+    from ._io import sha256_file
+
+    recorded = manifest.get("files", {}).get(Path(SEALED_ROWS).name)
+    path = folder / SEALED_ROWS
+    if recorded is None and not path.exists():
+        return None
+    if not path.is_file() or sha256_file(path) != recorded:
+        raise SealedAccessError(
+            f"'{path}' is {'missing' if not path.is_file() else 'not the file its seal recorded'}: it tells which "
+            f"rows experiment '{folder.name}' sealed and has not opened, so no other experiment's rows can be "
+            f"checked against them (its audit names the same problem). Restore it from a backup, or remove the "
+            f"folder '{folder}' if that experiment will never be opened")
+    return pd.read_parquet(path, columns=["row_hash"])["row_hash"].to_numpy()
+
+
+def sealed_values_in(frame: Any, folder: Path, manifest: dict[str, Any],
+                     cache: dict[tuple[str, ...], Any] | None = None) -> Any | None:
+    """Which rows of ``frame`` have the values of a row the experiment in ``folder`` sealed (its row hashes, over
+    the columns it sealed); None when it wrote no row hashes (sealed by an older holdfast) or ``frame`` lacks one
+    of those columns. ``cache`` keeps the hashes of ``frame`` by column list between experiments."""
+    import numpy as np
+
+    sealed = _their_rows(folder, manifest)
+    columns = tuple(str(c) for c in manifest["data"].get("columns") or [])
+    if sealed is None or not columns or not set(columns) <= set(map(str, frame.columns)):
+        return None
+    cache = {} if cache is None else cache
+    if columns not in cache:
+        cache[columns] = row_hashes(frame.set_axis(list(map(str, frame.columns)), axis=1)[list(columns)])
+    return np.isin(cache[columns], sealed)
 
 
 def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str, results: Path,
@@ -103,9 +198,11 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
     """Refuse development rows that another experiment under ``results`` sealed as test rows and has not opened.
 
     Two experiments on one data file with other test settings split it differently, so each would fit on rows the
-    other sealed, and the first opening of either would report a figure on rows already used to choose. Only the
-    same data file is compared (:func:`unopened_same_file`): the other experiment's split is drawn again on the rows
-    already loaded, with the spec its manifest recorded (no sealed file is read). Opened test sets are
+    other sealed, and the first opening of either would report a figure on rows already used to choose. For the
+    same data file the other experiment's split is drawn again on the rows already loaded, with the spec its
+    manifest recorded (exact; no sealed file is read). For another file (a grown or edited copy, a file rebuilt
+    from the same source) the rows are compared by value with the row hashes its seal wrote
+    (:data:`SEALED_ROWS`), over the columns it sealed, when this file has them all. Opened test sets are
     :func:`check`'s.
     """
     import numpy as np
@@ -113,21 +210,38 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
     from .dataset import row_keys
     from .seal import split_masks
 
+    development = np.asarray(development)
     keys_by_id: dict[Any, Any] = {}
-    for folder, spec in unopened_same_file(data_path, target, results, experiment):
-        if spec.get("id") not in keys_by_id:
-            keys_by_id[spec.get("id")] = row_keys(frame, spec.get("id"))
-        theirs = split_masks(frame, keys_by_id[spec.get("id")], spec, spec["task"])[0]
-        shared = int(np.sum(theirs & np.asarray(development)))
+    hashes_by_columns: dict[tuple[str, ...], Any] = {}
+    digest: list[str] = []
+    for folder, manifest in unopened_experiments(target, results, experiment):
+        spec, recorded = manifest["spec"], manifest["data"]
+        if _same_file(data_path, recorded, digest):
+            if spec.get("id") not in keys_by_id:
+                keys_by_id[spec.get("id")] = row_keys(frame, spec.get("id"))
+            theirs = split_masks(frame, keys_by_id[spec.get("id")], spec, spec["task"])[0]
+            shared, how = int(np.sum(theirs & development)), "sealed the same data file"
+        else:
+            theirs = sealed_values_in(frame, folder, manifest, hashes_by_columns)
+            if theirs is None:
+                continue
+            shared = int(np.sum(theirs & development))
+            how = f"sealed rows with the same values in every column from '{recorded.get('path')}'"
         if shared:
             settings = ", ".join(f"test.{k} {spec[k]!r}" for k in ("scheme", "fraction", "salt", "gap_hours")
                                  if k in spec)
+            if how.startswith("sealed the same") or spec.get("scheme") in ("hashed", "grouped"):
+                way = (f"Use its test settings (data.id {spec.get('id')!r}, {settings}) so that "
+                       + ("both seal the same rows" if how.startswith("sealed the same") else
+                          "the rows it sealed are sealed here too"))
+            else:
+                way = (f"Remove those rows from this data file (its test.scheme {spec.get('scheme')!r} draws from "
+                       "the whole file, so its settings would seal other rows of this one)")
             raise SealedAccessError(
                 f"{shared} of the {int(np.sum(development))} development rows of experiment '{experiment}' are sealed "
-                f"test rows of experiment '{folder.name}', which sealed the same data file and has not been opened; "
-                f"fitting on them here would make its opening score rows already used to choose. Nothing was "
-                f"sealed. Use its test settings (data.id {spec.get('id')!r}, {settings}) so that both seal the same "
-                f"rows, open '{folder.name}' first, or remove its folder '{folder}' if it will never be opened")
+                f"test rows of experiment '{folder.name}', which {how} and has not been opened; fitting on them "
+                f"here would make its opening score rows already used to choose. Nothing was sealed. {way}, open "
+                f"'{folder.name}' first, or remove its folder '{folder}' if it will never be opened")
 
 
 def check(test_keys: Any, results: Path, experiment: str, reason: str | None,

@@ -39,6 +39,8 @@ DIAGNOSTICS_PICTURES = ("validation", "learning", "confusion", "calibration", "r
 RECORDED: tuple[Recorded, ...] = (
     Recorded("seal", ("files", "test.parquet"), "sealed/test.parquet", "test", "sealed test file", fixed=True),
     Recorded("seal", ("files", "dev.parquet"), "dev.parquet", "dev", "development set", fixed=True),
+    Recorded("seal", ("files", "test_rows.parquet"), "sealed/test_rows.parquet", "test-rows",
+             "sealed-row hash file", fixed=True),
     Recorded("assign_folds", ("dev_sha256",), "dev.parquet", "dev", "development set", fixed=True),
     Recorded("assign_folds", ("folds_sha256",), "{scope}folds.parquet", "folds", "fold table"),
     Recorded("assign_folds", ("summary_sha256",), "{scope}folds_summary.parquet", "folds-summary",

@@ -340,6 +340,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
     if duplicates and guards["duplicates"] == "error":
         raise DataError(f"{duplicates} sealed test row(s) of '{data_path}' repeat the features of a development row "
                         "(exact duplicates); remove them or set leakage.duplicates: warn")
+    from .overlap import SEALED_ROWS, write_sealed_rows
     from .overlap import check as check_overlap
 
     seen_before = check_overlap(test[KEY], out.parent, experiment, seen_rows_reason,
@@ -365,10 +366,13 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                 digests = {"dev_sha256": keys_digest(keys, order, development),
                            "test_sha256": keys_digest(keys, order, mask)}
                 alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
-                files = {"test.parquet": test_file.result(), "dev.parquet": dev_file.result()}
+                rows_sha256 = write_sealed_rows(out, test)
+                files = {"test.parquet": test_file.result(), "dev.parquet": dev_file.result(),
+                         Path(SEALED_ROWS).name: rows_sha256}
         except BaseException:  # an unexpected failure leaves what it found: no sealed file this seal wrote
             if new_test:
                 (out / TEST).unlink(missing_ok=True)
+                (out / SEALED_ROWS).unlink(missing_ok=True)
             (out / DEV).unlink(missing_ok=True)
             if new_signing:
                 (out / ledger.SIGNING).unlink(missing_ok=True)

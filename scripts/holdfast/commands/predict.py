@@ -211,7 +211,8 @@ def sealed_among(exp: Path, spec: dict[str, Any], frame: Any, x: Any) -> tuple[i
     does not make a sealed row new). Returns (count, how they were matched), or (-1, why no check was possible).
 
     The sealed rows are found the way the seal found them: from the experiment's own data file (verified against
-    the manifest), never by reading the sealed file, whose rows only the opening reads.
+    the manifest), never by reading the sealed file, whose rows only the opening reads. Without that file (moved,
+    edited), new rows holding every column of it are matched by the row hashes the seal wrote.
     """
     import numpy as np
 
@@ -224,7 +225,7 @@ def sealed_among(exp: Path, spec: dict[str, Any], frame: Any, x: Any) -> tuple[i
         manifest = read_json(exp / MANIFEST)
         path, why = _data_file(exp, manifest["data"])
         if path is None:
-            return -1, why
+            return _by_row_hashes(exp, manifest, frame, why)
         data = read_table(path)
         keys = row_keys(data, spec.get("id"))
         test = split_masks(data, keys, spec, spec["task"])[0]
@@ -247,6 +248,21 @@ def sealed_among(exp: Path, spec: dict[str, Any], frame: Any, x: Any) -> tuple[i
         how.append(f"{int(by_id.sum())} by id column '{id_column}'")
         matched |= by_id
     return int(matched.sum()), ", ".join(how)
+
+
+def _by_row_hashes(exp: Path, manifest: dict[str, Any], frame: Any, why: str) -> tuple[int, str]:
+    """Without the data file: new rows whose values in every column the seal kept equal a sealed row's (the seal's
+    row hashes, :func:`overlap.sealed_values_in`); (-1, why) when the file lacks one of those columns."""
+    from ..overlap import sealed_values_in
+
+    try:
+        shared = sealed_values_in(frame, exp, manifest)
+    except HoldfastError as exc:
+        return -1, f"{why}, and {exc.message}"
+    if shared is None:
+        return -1, why
+    return int(shared.sum()), (f"{int(shared.sum())} by equal values in every column of the data file, found with the "
+                               f"seal's row hashes since {why}")
 
 
 def _stacked(first: Any, second: Any) -> Any:

@@ -172,7 +172,7 @@ class Choices:
     fold_scheme: str
     notes: list[str] = field(default_factory=list)  # why a first choice gave way, as comments
     fraction: float = 0.2
-    test_of: str | None = None  # the unopened experiment on the same data file whose test settings are kept
+    test_of: str | None = None  # the unopened experiment sealing rows of this data whose test settings are kept
 
 
 def schemes(task: str, group: str | None) -> list[tuple[str, str]]:
@@ -289,7 +289,8 @@ def render(c: Choices) -> str:
                     "folds' is (stratified: for new rows of known ones)")
     else:
         test_why = TEST_WHY[c.test_scheme]
-    kept = f"as experiment '{c.test_of}' (same data file, not opened): both seal the same rows" if c.test_of else ""
+    kept = (f"as experiment '{c.test_of}' (not opened; it sealed rows of this data): they stay sealed here"
+            if c.test_of else "")
     lines += ["", "# The sealed test set: drawn once, read once (holdfast open).", "test:",
               _comment(f"  fraction: {c.fraction}", kept or "a fifth of the rows (common practice)"),
               _comment(f"  scheme: {c.test_scheme}", kept or test_why),
@@ -417,10 +418,19 @@ def starter(data: Path, target: str, out: Path, results: Path = Path("results"))
 def _kept_test_settings(data: Path, target: str, results: Path, name: str, frame: Any,
                         roles: Roles) -> tuple[str, dict[str, Any]] | None:
     """The first experiment sealed from ``data`` and not opened whose test settings the starter can write, as
-    (its name, its sealed spec); its id and group columns become the starter's. None when there is none."""
-    from ..overlap import unopened_same_file
+    (its name, its sealed spec); its id and group columns become the starter's. None when there is none. From
+    another file whose rows it sealed (a grown or edited copy) only a scheme that places each row (or group) by
+    its own hash can be kept: it seals the same rows here."""
+    from ..overlap import sealed_values_in, unopened_experiments, unopened_same_file
 
-    for folder, spec in unopened_same_file(str(data), target, results, name):
+    same = dict(unopened_same_file(str(data), target, results, name))
+    others = []
+    for folder, manifest in unopened_experiments(target, results, name):
+        if folder not in same and manifest["spec"].get("scheme") in ("hashed", "grouped"):
+            shared = sealed_values_in(frame, folder, manifest)
+            if shared is not None and shared.any():
+                others.append((folder, manifest["spec"]))
+    for folder, spec in [*same.items(), *others]:
         columns = [spec.get("id"), spec.get("group") if "grouped" in str(spec.get("scheme")) else None]
         if spec.get("scheme") in (*TEST_WHY, "grouped", "stratified_grouped") and all(
                 c is None or c in frame.columns for c in columns):

@@ -23,6 +23,7 @@ from ._common import experiment_folder, short, when
 # it is about to read (the opening's write-ahead line)? tests/test_commands.py checks that every row is here.
 DIRECTION: dict[tuple[str, tuple[str, ...]], str] = {
     ("seal", ("files", "test.parquet")): "wrote", ("seal", ("files", "dev.parquet")): "wrote",
+    ("seal", ("files", "test_rows.parquet")): "wrote",
     ("assign_folds", ("dev_sha256",)): "read", ("assign_folds", ("folds_sha256",)): "wrote",
     ("assign_folds", ("summary_sha256",)): "wrote", ("assign_folds", ("leakage_sha256",)): "wrote",
     ("fit", ("folds_sha256",)): "read", ("fit", ("fits_sha256",)): "wrote", ("fit", ("oof_sha256",)): "wrote",
