@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-from conftest import REPO, breast_cancer_frame, diabetes_frame, run_workflow, write_config
+from conftest import REPO, breast_cancer_frame, diabetes_frame, run_cli, run_workflow, write_config
 from holdfast.errors import DataError
 from holdfast.folds import assign, fold_summary, leakage_report
 from holdfast.leakage import single_feature_alarms
@@ -213,13 +213,17 @@ def test_demo_with_folds_that_ignore_routes_counts_every_route_on_both_sides(tmp
     refused = run_workflow(tmp_path, "--until", "assign_folds")
 
     said = [line for line in refused.stderr.splitlines() if line.startswith("holdfast:")]
-    assert refused.returncode != 0 and len(said) == 1, refused.stderr[-3000:]  # the job's one line, then Snakemake's
+    assert refused.returncode != 0 and len(said) == 1, refused.stderr[-3000:]  # one line, the fold step's own
     last = said[0]
     assert re.fullmatch(r"holdfast: data error: folds.scheme stratified ignores data.group: in 5 of 5 fold\(s\) "
                         r"groups of 'route' have rows on both sides \(most in repeat 0, fold \d: 40 of its 40 "
                         r"validation group\(s\); 40 group\(s\) in all\); use folds.scheme: group or stratified_group "
                         r"\(whole groups per fold\), or set leakage.group_overlap: warn", last), last
-    assert (exp / "sealed" / "manifest.json").exists() and not (exp / "folds.parquet").exists()
+    # Refused before the seal (the folds of the rows the seal would leave were drawn and checked at the start), as
+    # `holdfast check` refuses it: fixing the folds needs no sealed test set to have been drawn.
+    assert not (exp / "sealed" / "manifest.json").exists() and not (exp / "folds.parquet").exists()
+    checked = run_cli(tmp_path, "check", "config.yaml")
+    assert checked.returncode == 3 and checked.stderr.strip() == last, checked.stdout + checked.stderr
 
     config["leakage"]["group_overlap"] = "warn"
     write_config(tmp_path, config)
@@ -246,7 +250,8 @@ def test_demo_with_folds_that_ignore_routes_counts_every_route_on_both_sides(tmp
 def test_a_fold_table_refused_by_the_leakage_report_is_not_left_behind(tmp_path: Path) -> None:
     """The fold table is written beside the leakage report; when the report refuses the folds (time_order: error and
     k-fold on time-stamped rows), the real workflow stops at assign_folds with that message, and neither the table
-    nor a ledger line for it stays."""
+    nor a ledger line for it stays. Before the seal the same folds are refused at the start (nothing sealed); after
+    it (the guard set to error once sealed) by the fold step."""
     from conftest import small_classification_config
 
     with_times(breast_cancer_frame()).to_csv(tmp_path / "data.csv", index=False)
@@ -256,11 +261,19 @@ def test_a_fold_table_refused_by_the_leakage_report_is_not_left_behind(tmp_path:
     config["folds"] = {"scheme": "kfold", "k": 3, "repeats": 1, "seed": 5}
     config["leakage"] = {"time_order": "error"}
     write_config(tmp_path, config)
+    exp = tmp_path / "results" / "bc"
+    said = r"folds.scheme kfold ignores time: in 3 fold\(s\) training rows are later than validation rows"
+    before = run_workflow(tmp_path)
+    assert before.returncode != 0 and re.search(said, before.stderr), before.stderr[-3000:]
+    assert not (exp / "dev.parquet").exists()  # refused before the seal
+    config["leakage"] = {"time_order": "note"}
+    write_config(tmp_path, config)
+    assert run_workflow(tmp_path, "--until", "seal").returncode == 0
+    config["leakage"] = {"time_order": "error"}
+    write_config(tmp_path, config)
     result = run_workflow(tmp_path)
     assert result.returncode != 0
-    assert re.search(r"folds.scheme kfold ignores time: in 3 fold\(s\) training rows are later than validation rows",
-                     result.stdout + result.stderr), (result.stdout + result.stderr)[-3000:]
-    exp = tmp_path / "results" / "bc"
+    assert re.search(said, result.stdout + result.stderr), (result.stdout + result.stderr)[-3000:]
     assert (exp / "dev.parquet").exists()  # the seal ran
     assert not (exp / "folds.parquet").exists()
     events = [json.loads(line)["event"] for line in (exp / "ledger.jsonl").read_text().splitlines()]

@@ -540,6 +540,10 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
             scheme = config["folds"]["scheme"]
             check_feasible(config["folds"], len(dev_target), dev_target if scheme in STRATIFIED else None,
                            dev_groups if scheme in GROUPED else None)
+            if manifest is None:  # what the fold step would refuse after the seal, refused before it
+                from .seal import check_folds_before_seal
+
+                check_folds_before_seal(config, spec, dev, keys[~test_rows & ~dropped], task)
     if main:
         _opening_guard(plan)
         _forced_guard(plan, snakemake_flags())

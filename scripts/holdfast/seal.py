@@ -215,6 +215,28 @@ def check_before_seal(config: dict[str, Any], frame: pd.DataFrame, test_rows: np
     check_test_partition(dev_target, target[test_rows], metrics, config["data"]["path"])
 
 
+def check_folds_before_seal(config: dict[str, Any], spec: dict[str, Any], dev: pd.DataFrame, dev_keys: pd.Series,
+                            task: str) -> None:
+    """Refuse before the seal what the fold step would refuse after it: when a leakage guard is set to ``error``
+    and the folds could trip it (duplicates; data.group with a fold scheme that ignores groups; data.time with one
+    that ignores time), draw the folds of the rows the seal would leave for development and put them through the
+    fold step's own leakage report. Nothing is kept; the fold step draws and checks them again after the seal."""
+    import tempfile
+
+    from .folds import assign, leakage_report, scheme_ignores_time
+    from .foldspec import GROUPED
+
+    settings, fold_spec = config["leakage"], config["folds"]
+    if not (settings.get("duplicates") == "error"
+            or (settings.get("group_overlap") == "error" and spec.get("group") and fold_spec["scheme"] not in GROUPED)
+            or (settings.get("time_order") == "error" and spec.get("time") and scheme_ignores_time(fold_spec))):
+        return
+    keyed = dev.reset_index(drop=True).assign(**{KEY: np.asarray(dev_keys)})
+    table = assign(keyed, fold_spec, spec["target"], spec["group"], spec.get("time"), spec.get("time_unit"))
+    with tempfile.TemporaryDirectory() as scratch:
+        leakage_report(keyed, table, spec, task, settings, {}, str(Path(scratch) / "summary.parquet"), fold_spec)
+
+
 def _split(frame: pd.DataFrame, keys: pd.Series, test_rows: np.ndarray,
            dev_rows: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
     """(test, dev): the rows of each side with the row key in front, column by column.
