@@ -66,6 +66,15 @@ def sealed_data_file_deleted(workdir: Path, config: dict[str, Any]) -> None:
     (workdir / "data.csv").unlink()
 
 
+def sealed_data_file_edited(workdir: Path, config: dict[str, Any]) -> None:
+    """One value of the sealed experiment's data file was changed (same size, so the sha256 decides)."""
+    text = (workdir / "data.csv").read_text(encoding="utf-8")
+    header, first, rest = text.split("\n", 2)
+    cells = first.split(",")
+    cells[-1] = "1" if cells[-1] == "0" else "0"  # the target of the first row, one character for one
+    (workdir / "data.csv").write_text("\n".join([header, ",".join(cells), rest]), encoding="utf-8")
+
+
 def missing_target_column(workdir: Path, config: dict[str, Any]) -> None:
     """data.target names a column the file does not have."""
     config["experiment"] = FRESH
@@ -571,6 +580,9 @@ CASES = [
     pytest.param(sealed_data_file_deleted, DATA_ERROR,
                  r"data file 'data\.csv' of sealed experiment 'bc' does not exist; restore it .*or name a new "
                  r"experiment", id="sealed-data-file-deleted"),
+    pytest.param(sealed_data_file_edited, 4,
+                 r"data file 'data\.csv' changed since experiment 'bc' was sealed \(sha256 now [0-9a-f]{16}…, sealed "
+                 r"[0-9a-f]{16}…\); nothing was run\. The seal never re-runs", id="sealed-data-file-edited"),
     pytest.param(missing_target_column, DATA_ERROR,
                  r"column 'diagnosis' \(data\.target\) is not in 'data\.csv'; columns there are: patient, ",
                  id="target-column-missing"),

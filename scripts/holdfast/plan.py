@@ -281,18 +281,27 @@ class Plan:
         return cfg.selection_parts(self.config, upstream_codes())
 
 
+def data_file_as_sealed(path: str | os.PathLike[str], recorded: dict[str, Any]) -> str | None:
+    """None when ``path`` is the data file a manifest's ``recorded`` data names (its size and time, else its
+    sha256); otherwise the file's sha256 now, or '' when there is no such file."""
+    if not os.path.isfile(path):
+        return ""
+    stat = os.stat(path)
+    if stat.st_size == recorded.get("bytes") and stat.st_mtime_ns == recorded.get("mtime_ns"):
+        return None
+    actual = sha256_file(path)
+    return None if actual == recorded.get("sha256") else actual
+
+
 def _data_unchanged(config: dict[str, Any], manifest: dict[str, Any]) -> None:
     path = config["data"]["path"]
     experiment = config["experiment"]
-    if not os.path.isfile(path):
-        raise DataError(f"data file '{path}' of sealed experiment '{experiment}' does not exist; restore it "
-                        "(sha256 " + manifest["data"]["sha256"][:16] + "…) or name a new experiment")
     recorded = manifest["data"]
-    stat = os.stat(path)
-    if stat.st_size == recorded["bytes"] and stat.st_mtime_ns == recorded["mtime_ns"]:
-        return
-    actual = sha256_file(path)
-    if actual != recorded["sha256"]:
+    actual = data_file_as_sealed(path, recorded)
+    if actual == "":
+        raise DataError(f"data file '{path}' of sealed experiment '{experiment}' does not exist; restore it "
+                        "(sha256 " + recorded["sha256"][:16] + "…) or name a new experiment")
+    if actual is not None:
         raise SealedAccessError(
             f"data file '{path}' changed since experiment '{experiment}' was sealed (sha256 now {actual[:16]}…, "
             f"sealed {recorded['sha256'][:16]}…); nothing was run. The seal never re-runs: set a new 'experiment' "

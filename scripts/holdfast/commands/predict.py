@@ -193,14 +193,14 @@ def _read_recorded(path: Path, sha: Any, what: str) -> bytes:
 def _data_file(exp: Path, recorded: dict[str, Any]) -> tuple[Path | None, str]:
     """The experiment's data file as sealed (its recorded path, from here or from the project folder above
     results/), or None and why it cannot be used."""
+    from ..plan import data_file_as_sealed
+
     given = Path(str(recorded.get("path", "")))
     candidates = [given] if given.is_absolute() else [given, exp.resolve().parent.parent / given]
     path = next((c for c in candidates if c.is_file()), None)
     if path is None:
         return None, f"its data file '{given}' is not there"
-    stat = path.stat()
-    if (stat.st_size, stat.st_mtime_ns) != (recorded.get("bytes"), recorded.get("mtime_ns")) \
-            and sha256_file(path) != recorded.get("sha256"):
+    if data_file_as_sealed(path, recorded) is not None:
         return None, f"its data file '{path}' has changed since the seal"
     return path, ""
 
