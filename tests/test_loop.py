@@ -17,6 +17,7 @@ import time
 from pathlib import Path
 from typing import Any
 
+import pandas as pd
 import pytest
 import yaml
 from conftest import (
@@ -619,7 +620,17 @@ def test_a_second_experiment_cannot_seal_rows_another_opened_unless_it_says_why(
     assert rekeyed.returncode == 4 and "in a test set already opened by 'bc (folder bc)'" in rekeyed.stderr, \
         rekeyed.stdout + rekeyed.stderr
     assert tree_digest(opened / "results") == before
-    edit(opened, lambda c: c["data"].update(id="patient", drop=[]))
+    # Nor does a copy of the file with its rows shuffled and a column added: its rows are compared by value over the
+    # columns the opened set had (content keys over every column of the file no longer matched them).
+    config = yaml.safe_load((opened / "config.yaml").read_text())
+    copy = pd.read_csv(opened / config["data"]["path"]).sample(frac=1.0, random_state=7).assign(ward="east")
+    copy.to_csv(opened / "copy.csv", index=False)
+    edit(opened, lambda c: c["data"].update(path="copy.csv"))
+    widened = run_cli(opened, "check", "config.yaml")
+    assert widened.returncode == 4 and "in a test set already opened by 'bc (folder bc)'" in widened.stderr, \
+        widened.stdout + widened.stderr
+    assert tree_digest(opened / "results") == before
+    edit(opened, lambda c: c["data"].update(id="patient", drop=[], path=config["data"]["path"]))
     # Renaming the opened experiment's folder, or deleting it, launders nothing: the registry remembers.
     (opened / "results" / "bc").rename(opened / "results" / "renamed")
     assert run_cli(opened, "run", "config.yaml", "--cores", "2").returncode == 4

@@ -293,9 +293,9 @@ def open_test(exp_dir: str, experiment: str, spec: dict[str, Any], metrics: list
                    "fingerprint_parts": fingerprint_parts or {}, "request_sha256": request_sha}
         openings.write_ahead(exp, number, started, keys_file, rule=rule)
         test = pd.read_parquet(exp / TEST)  # the one read of the sealed rows: every record above already counts it
-        from .overlap import register_content
+        from .overlap import register_rows
 
-        register_content(openings.registry_path(exp).parent / keys_file, test)
+        register_rows(openings.registry_path(exp).parent / keys_file, test)
         ranking = pd.read_parquet(exp / RANKING)
         mine = ranking[ranking["candidate"] == choice["winner"]["candidate"]].set_index("metric")
         verdict: dict[str, Any] = {
