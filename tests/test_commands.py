@@ -526,19 +526,27 @@ def test_a_second_split_of_the_same_file_may_not_fit_on_unopened_test_rows(fresh
     write_config(fresh_copy, twin, "twin.yaml")
     other_target = run_cli(fresh_copy, "check", "twin.yaml")
     assert other_target.returncode == 0, other_target.stderr
+    # With diab's test settings both seal the same rows; holdfast init beside it writes them itself (it would
+    # otherwise draw a salt of its own).
+    diab_settings_pass_and_init_keeps_them(fresh_copy, config, "second.yaml", "diab.csv")
+    assert run_cli(fresh_copy, "check", "starter.yaml").returncode == 0
+
+
+def diab_settings_pass_and_init_keeps_them(workdir: Path, config: dict[str, Any], name: str, data: str) -> None:
+    """``config`` with diab's test salt passes the check; ``holdfast init`` on ``data`` writes diab's id and test
+    settings (hashed, 0.25, 'd1') to starter.yaml and says whose they are."""
     config["test"]["salt"] = "d1"
-    write_config(fresh_copy, config, "second.yaml")
-    same = run_cli(fresh_copy, "check", "second.yaml")
+    write_config(workdir, config, name)
+    same = run_cli(workdir, "check", name)
     assert same.returncode == 0, same.stderr
-    # holdfast init beside it keeps diab's test settings (it would otherwise draw a salt of its own).
-    started = run_cli(fresh_copy, "init", "diab.csv", "--target", "target", "-o", "starter.yaml")
+    started = run_cli(workdir, "init", data, "--target", "target", "-o", "starter.yaml")
     assert started.returncode == 0, started.stdout + started.stderr
-    written = yaml.safe_load((fresh_copy / "starter.yaml").read_text(encoding="utf-8"))
+    text = (workdir / "starter.yaml").read_text(encoding="utf-8")
+    written = yaml.safe_load(text)
     assert written["data"]["id"] == "visit_id"
     assert {k: written["test"][k] for k in ("scheme", "fraction", "salt")} == {"scheme": "hashed", "fraction": 0.25,
                                                                              "salt": "d1"}
-    assert "as experiment 'diab' (not opened; it sealed rows of this data)" in (fresh_copy / "starter.yaml").read_text()
-    assert run_cli(fresh_copy, "check", "starter.yaml").returncode == 0
+    assert "as experiment 'diab' (not opened; it sealed rows of this data)" in text
 
 
 @pytest.mark.slow
@@ -577,16 +585,7 @@ def test_a_grown_or_edited_copy_of_the_data_may_not_fit_on_unopened_test_rows(fr
                           "the rows it sealed are sealed here too")
     assert "Nothing was sealed" in line
     assert tree_digest(fresh_copy / "results") == before and not (fresh_copy / "results" / "diab-grown").exists()
-    config["test"]["salt"] = "d1"
-    write_config(fresh_copy, config, "grown.yaml")
-    same = run_cli(fresh_copy, "check", "grown.yaml")
-    assert same.returncode == 0, same.stderr
-    started = run_cli(fresh_copy, "init", "grown.csv", "--target", "target", "-o", "starter.yaml")
-    assert started.returncode == 0, started.stdout + started.stderr
-    written = yaml.safe_load((fresh_copy / "starter.yaml").read_text(encoding="utf-8"))
-    assert written["data"]["id"] == "visit_id"
-    assert {k: written["test"][k] for k in ("scheme", "fraction", "salt")} == {"scheme": "hashed", "fraction": 0.25,
-                                                                             "salt": "d1"}
+    diab_settings_pass_and_init_keeps_them(fresh_copy, config, "grown.yaml", "grown.csv")
     rows_file = fresh_copy / "results" / "diab" / "sealed" / "test_rows.parquet"
     rows_file.unlink()
     config["test"]["salt"] = "another"
