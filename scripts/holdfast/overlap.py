@@ -70,13 +70,11 @@ def _content(rows: Any) -> Any:
     return content_keys(rows).str.split("~", n=1).str[0]
 
 
-_COLUMNS = b"holdfast_columns"  # the Parquet metadata key of the columns a registered row hash covers
+_COLUMNS = b"holdfast_columns"  # the Parquet metadata key of the columns a file of row hashes covers
 
 
-def register_rows(keys_file: Path, test: Any) -> None:
-    """Register the row hashes of an opened test set's rows (``test`` as read from its sealed file) and the columns
-    they cover beside its row keys, once; only the opening may call this, after its one read of the sealed rows.
-    (Openings before the row hashes registered content keys, 30 µs a row of 20 columns against half of one.)"""
+def _write_hashes(path: Path, rows: Any, mode: int | None = None) -> None:
+    """Write the sorted :func:`row_hashes` of ``rows`` (no row order kept) and the columns they cover."""
     import json
 
     import numpy as np
@@ -84,38 +82,51 @@ def register_rows(keys_file: Path, test: Any) -> None:
     import pyarrow.parquet as pq
 
     from ._io import write_atomic
-    from .dataset import KEY
 
-    target = rows_file(keys_file)
-    if not target.exists():
-        values = test.drop(columns=[KEY])
-        table = pa.table({"row_hash": np.sort(row_hashes(values))}).replace_schema_metadata(
-            {_COLUMNS: json.dumps([str(c) for c in values.columns])})
-        write_atomic(target, lambda tmp: pq.write_table(table, tmp))
+    table = pa.table({"row_hash": np.sort(row_hashes(rows))}).replace_schema_metadata(
+        {_COLUMNS: json.dumps([str(c) for c in rows.columns])})
+    write_atomic(path, lambda tmp: pq.write_table(table, tmp), mode=mode)
 
 
-def _registered_rows(path: Path) -> tuple[Any, list[str]] | None:
-    """(row hashes, the columns they cover) of an opened test set found at ``path`` (a registry keys file, or an
-    experiment's sealed file), or None when none were written."""
+def _read_hashes(path: Path) -> tuple[Any, tuple[str, ...]]:
+    """(row hashes, the columns they cover) from a file :func:`_write_hashes` wrote."""
     import json
 
     import pyarrow.parquet as pq
 
-    from ._io import read_json
+    table = pq.read_table(path)
+    return table.column("row_hash").to_numpy(), tuple(json.loads((table.schema.metadata or {}).get(_COLUMNS, b"[]")))
 
-    if path.parent.name == "sealed" and path.name == Path(TEST).name:
-        folder = path.parent.parent
-        try:
-            columns = [str(c) for c in read_json(folder / MANIFEST)["data"]["columns"]]
-        except (OSError, ValueError, KeyError, TypeError):
-            return None
-        hashes = folder / SEALED_ROWS
-        return (pq.read_table(hashes).column("row_hash").to_numpy(), columns) if hashes.is_file() else None
-    registered = rows_file(path)
-    if not registered.is_file():
+
+def _hashes_over(frame: Any, columns: tuple[str, ...], cache: dict[tuple[str, ...], Any]) -> Any | None:
+    """:func:`row_hashes` of ``frame`` over ``columns`` (kept in ``cache`` by column list), or None when ``frame``
+    lacks one of them: a copy of the data with a column added is still compared, one with a column removed is not."""
+    if not columns or not set(columns) <= set(map(str, frame.columns)):
         return None
-    table = pq.read_table(registered)
-    return table.column("row_hash").to_numpy(), json.loads((table.schema.metadata or {}).get(_COLUMNS, b"[]"))
+    if columns not in cache:
+        cache[columns] = row_hashes(frame.set_axis(list(map(str, frame.columns)), axis=1)[list(columns)])
+    return cache[columns]
+
+
+def register_rows(keys_file: Path, test: Any) -> None:
+    """Register the row hashes of an opened test set's rows (``test`` as read from its sealed file) beside its row
+    keys, once; only the opening may call this, after its one read of the sealed rows. (Openings before the row
+    hashes registered content keys: 30 µs a row of 20 columns against half of one.)"""
+    from .dataset import KEY
+
+    target = rows_file(keys_file)
+    if not target.exists():
+        _write_hashes(target, test.drop(columns=[KEY]))
+
+
+def _registered_rows(path: Path) -> tuple[Any, tuple[str, ...]] | None:
+    """(row hashes, the columns they cover) of an opened test set found at ``path`` (a registry keys file, or an
+    experiment's sealed file, beside which its seal wrote them), or None when none were written."""
+    if path.parent.name == "sealed" and path.name == Path(TEST).name:
+        hashes = path.parent.parent / SEALED_ROWS
+    else:
+        hashes = rows_file(path)
+    return _read_hashes(hashes) if hashes.is_file() else None
 
 
 def row_hashes(rows: Any) -> Any:
@@ -123,9 +134,9 @@ def row_hashes(rows: Any) -> Any:
 
     Numbers (and booleans) are hashed as float64, so a column read as integers from one file and as floats from an
     edited copy (a blank added) still agrees; text, categories and Arrow strings hash alike; other objects (nested
-    lists) by their repr. Neither the row order,
-    the column order nor the file format enters. About half a microsecond a row of 20 columns; 64 bits make a
-    chance match between millions of rows unlikely (about one in a million at 8 M against 2 M rows).
+    lists) by their repr. Neither the row order, the column order nor the file format enters. About half a
+    microsecond a row of 20 columns; 64 bits make a chance match between millions of rows unlikely (about one in
+    a million at 8 M against 2 M rows).
     """
     import pandas as pd
 
@@ -141,18 +152,13 @@ def row_hashes(rows: Any) -> Any:
 
 
 def write_sealed_rows(exp: Path, test: Any) -> str:
-    """Write the sealed rows' :func:`row_hashes` (sorted, so no row order is kept) to :data:`SEALED_ROWS`,
-    read-only, and return the file's sha256. Only the seal calls this, on the rows it is sealing (a seal finished
-    after a kill seals the same rows)."""
-    import numpy as np
-    import pandas as pd
-
-    from ._io import sha256_file, write_parquet
+    """Write the sealed rows' hashes to :data:`SEALED_ROWS`, read-only, and return the file's sha256. Only the seal
+    calls this, on the rows it is sealing (a seal finished after a kill seals the same rows, in the same bytes)."""
+    from ._io import sha256_file
     from .dataset import KEY
 
-    path = exp / SEALED_ROWS
-    write_parquet(path, pd.DataFrame({"row_hash": np.sort(row_hashes(test.drop(columns=[KEY])))}), mode=0o444)
-    return sha256_file(path)
+    _write_hashes(exp / SEALED_ROWS, test.drop(columns=[KEY]), mode=0o444)
+    return sha256_file(exp / SEALED_ROWS)
 
 
 def unopened_experiments(target: str, results: Path, experiment: str) -> list[tuple[Path, dict[str, Any]]]:
@@ -197,11 +203,10 @@ def unopened_same_file(data_path: str, target: str, results: Path,
             if _same_file(data_path, manifest["data"], digest)]
 
 
-def _their_rows(folder: Path, manifest: dict[str, Any]) -> Any | None:
-    """The row hashes an unopened experiment's seal wrote (None: sealed before holdfast wrote them); refused
-    when the file is missing or is not the one its seal recorded, since the check could then be escaped."""
-    import pandas as pd
-
+def _their_rows(folder: Path, manifest: dict[str, Any]) -> tuple[Any, tuple[str, ...]] | None:
+    """(row hashes, the columns they cover) an unopened experiment's seal wrote (None: sealed before holdfast wrote
+    them); refused when the file is missing or is not the one its seal recorded, since the check could then be
+    escaped."""
     from ._io import sha256_file
 
     recorded = manifest.get("files", {}).get(Path(SEALED_ROWS).name)
@@ -214,7 +219,7 @@ def _their_rows(folder: Path, manifest: dict[str, Any]) -> Any | None:
             f"rows experiment '{folder.name}' sealed and has not opened, so no other experiment's rows can be "
             f"checked against them (its audit names the same problem). Restore it from a backup, or remove the "
             f"folder '{folder}' if that experiment will never be opened")
-    return pd.read_parquet(path, columns=["row_hash"])["row_hash"].to_numpy()
+    return _read_hashes(path)
 
 
 def sealed_values_in(frame: Any, folder: Path, manifest: dict[str, Any],
@@ -224,14 +229,9 @@ def sealed_values_in(frame: Any, folder: Path, manifest: dict[str, Any],
     of those columns. ``cache`` keeps the hashes of ``frame`` by column list between experiments."""
     import numpy as np
 
-    sealed = _their_rows(folder, manifest)
-    columns = tuple(str(c) for c in manifest["data"].get("columns") or [])
-    if sealed is None or not columns or not set(columns) <= set(map(str, frame.columns)):
-        return None
-    cache = {} if cache is None else cache
-    if columns not in cache:
-        cache[columns] = row_hashes(frame.set_axis(list(map(str, frame.columns)), axis=1)[list(columns)])
-    return np.isin(cache[columns], sealed)
+    theirs = _their_rows(folder, manifest)
+    ours = _hashes_over(frame, theirs[1], {} if cache is None else cache) if theirs is not None else None
+    return None if ours is None else np.isin(ours, theirs[0])
 
 
 def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str, results: Path,
@@ -312,12 +312,9 @@ def check(test_keys: Any, results: Path, experiment: str, reason: str | None,
         registered = _registered_rows(path) if rows is not None else None
         if registered is not None:
             new_rows = rows() if new_rows is None else new_rows
-            sealed, columns = registered[0], tuple(registered[1])
-            if columns and set(columns) <= set(map(str, new_rows.columns)):
-                if columns not in hashes_by_columns:
-                    named = new_rows.set_axis(list(map(str, new_rows.columns)), axis=1)
-                    hashes_by_columns[columns] = row_hashes(named[list(columns)])
-                shared = max(shared, int(np.isin(hashes_by_columns[columns], sealed).sum()))
+            ours = _hashes_over(new_rows, registered[1], hashes_by_columns)
+            if ours is not None:
+                shared = max(shared, int(np.isin(ours, registered[0]).sum()))
         elif rows is not None and content_file(path).exists():
             if content is None:
                 content = set(_content(rows()))
