@@ -404,6 +404,8 @@ def test_a_second_invocation_on_the_same_experiment_stops_with_a_clear_message(b
         os.killpg(first.pid, signal.SIGSTOP)
         second = run_workflow(bc_copy)
         advised = run_workflow(bc_copy, "--rerun-incomplete")
+        # holdfast run says who holds the lock in its own words, not Snakemake's advice to use --unlock.
+        through_holdfast = run_cli(bc_copy, "run", "config.yaml", "--cores", "1")
     finally:
         os.killpg(first.pid, signal.SIGCONT)
     _, err = first.communicate(timeout=300)
@@ -412,6 +414,12 @@ def test_a_second_invocation_on_the_same_experiment_stops_with_a_clear_message(b
             or "IncompleteFilesException" in second.stderr), second.stderr[-2000:]
     assert advised.returncode != 0
     assert "Directory cannot be locked" in advised.stderr, advised.stderr[-2000:]
+    said = [line for line in through_holdfast.stderr.splitlines() if line.startswith("holdfast:")]
+    assert through_holdfast.returncode == 1 and len(said) == 2, through_holdfast.stderr[-2000:]
+    assert said[0].startswith("holdfast: Snakemake could not take its lock on this experiment's files: ") and \
+        said[0].endswith("Run again once it has ended ('holdfast status results/bc' shows what it did); pass --unlock "
+                         "only when no Snakemake of this project is running"), said[0]
+    assert "--unlock argument" not in through_holdfast.stderr
     assert first.returncode == 0, err[-2000:]
     ledger = (bc_copy / "results" / "bc" / "ledger.jsonl").read_text().splitlines()
     assert sum('"event":"open_test"' in line for line in ledger) == 1

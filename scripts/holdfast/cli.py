@@ -358,13 +358,34 @@ def _logged(argv: list[str], env: dict[str, str], exp: Path, label: str) -> int:
         process = _launch(argv, env, log)
         follow(exp, process, _say, log)
     if process.returncode:
-        _show_failure(log)
+        _show_failure(log, exp, label)
     return process.returncode
 
 
-def _show_failure(log: Path) -> None:
-    """On failure, the one-line holdfast messages from the log (or its tail) and where to read the rest."""
+# Snakemake's LockException: another Snakemake holds locks on files this one would write (exceptions.py).
+SNAKEMAKE_LOCKED = "Directory cannot be locked"
+
+
+def _show_failure(log: Path, exp: Path, label: str) -> None:
+    """On failure, the one-line holdfast messages from the log (or its tail) and where to read the rest; when
+    Snakemake could not take its lock, who holds it, in place of its advice to use --unlock."""
     text = log.read_text(encoding="utf-8", errors="replace").splitlines()
+    if any(SNAKEMAKE_LOCKED in line for line in text):
+        from . import ledger
+        from .layout import OPEN_COMMAND_LOCK, STEPS_LOCK
+
+        if label == "run" and ledger.held_elsewhere(exp / OPEN_COMMAND_LOCK):
+            who = "'holdfast open' of this experiment started as this run began and is running"
+        elif ledger.held_elsewhere(exp / STEPS_LOCK):
+            who = "another 'holdfast run' or 'holdfast open' of this experiment is running"
+        else:
+            who = ("no holdfast command of this experiment runs now, so a Snakemake of this project that was killed "
+                   "left its lock behind, or a Snakemake started by hand is writing these files")
+        sys.stderr.write(f"holdfast: Snakemake could not take its lock on this experiment's files: {who}. Run "
+                         f"again once it has ended ('holdfast status {exp}' shows what it did); pass --unlock only "
+                         "when no Snakemake of this project is running\n")
+        sys.stderr.write(f"holdfast: the {label} failed; Snakemake's full output is in {log}\n")
+        return
     ours = [line for line in text if line.startswith("holdfast: ") and "error" in line]
     for line in dict.fromkeys(ours) or text[-15:]:
         sys.stderr.write(line + "\n")
