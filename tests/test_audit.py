@@ -679,6 +679,30 @@ def test_untouched_experiment_passes(bc_copy: Path) -> None:
     from holdfast.headline import verdict_line
 
     assert f"  {verdict_line(exp, result['verified'])}" in cli.stdout.splitlines()  # what the record vouches for
+    assert result["leftovers"] == [] and "note: '" not in cli.stdout  # counted, not printed whatever is there
+
+
+def test_files_an_interrupted_write_left_are_named_as_notes(bc_copy: Path) -> None:
+    """A temporary file of an atomic write (a step killed while writing) and a history index a tally wrote but did
+    not record are read by nothing, so the audit still passes; it names each one, so that every file of the folder
+    is accounted for. A recorded index is not called a leftover."""
+    exp = experiment(bc_copy)
+    (exp / "fits" / ".r0f0.parquet.k1ll3d.tmp").parent.mkdir(parents=True, exist_ok=True)
+    (exp / "fits" / ".r0f0.parquet.k1ll3d.tmp").write_bytes(b"half a file")
+    (exp / "history" / "index.next.json").write_text("{}", encoding="utf-8")
+    result = audit(str(exp))
+    assert result["passed"] is True, result["problems"]
+    assert [left["file"] for left in result["leftovers"]] == ["fits/.r0f0.parquet.k1ll3d.tmp",
+                                                               "history/index.next.json"]
+    notes = [line for line in audit_cli(exp).stdout.splitlines() if line.startswith("  note: ")]
+    assert notes == [
+        "  note: 'fits/.r0f0.parquet.k1ll3d.tmp' is a temporary file of a write that stopped before it finished; no "
+        "step reads it, and that step's next write removes it",
+        "  note: 'history/index.next.json' is a history index a tally wrote but stopped before recording; no step "
+        "reads it, and the next tally replaces it"]
+    # The index the latest tally recorded, waiting to be moved into place, is not a leftover.
+    (exp / "history" / "index.next.json").write_bytes((exp / "history" / "index.json").read_bytes())
+    assert [left["file"] for left in audit(str(exp))["leftovers"]] == ["fits/.r0f0.parquet.k1ll3d.tmp"]
 
 
 @pytest.mark.parametrize(("mutate", "expected", "absent"), CASES)

@@ -39,7 +39,7 @@ from .layout import (
     group_family,
 )
 from .ledger import Problem
-from .recorded import scope_folder, verify
+from .recorded import last_record, scope_folder, verify
 
 PASS, FAIL, IN_PROGRESS = "pass", "fail", "in progress"
 CHECKS = ["hash chain", "seal anchor and experiment name", "every file whose sha256 the ledger records",
@@ -579,6 +579,24 @@ def _guarded(name: str, check: Any, exp: Path, entries: list[dict[str, Any]], ve
                            f"{exc}): a file or ledger record holds what no holdfast step writes"))
 
 
+def _leftovers(exp: Path, entries: list[dict[str, Any]]) -> list[dict[str, str]]:
+    """Files a write that stopped before it finished left behind, and nothing reads: temporary files of the atomic
+    writes (``_io.write_atomic``: ``.<name>.<random>.tmp``) and a history index a tally wrote but never recorded. No
+    number depends on them, so they are notes, not problems; said so that the folder's every file is accounted for."""
+    from .history import INDEX, INDEX_NEXT
+
+    found = [{"file": path.relative_to(exp).as_posix(),
+              "why": "a temporary file of a write that stopped before it finished; no step reads it, and that "
+                     "step's next write removes it"}
+             for path in sorted(exp.rglob(".*.tmp")) if path.is_file()]
+    ahead = exp / INDEX_NEXT
+    recorded = last_record(entries, INDEX)
+    if ahead.is_file() and (recorded is None or _sha(ahead) != recorded[0]):
+        found.append({"file": INDEX_NEXT, "why": "a history index a tally wrote but stopped before recording; no "
+                                                 "step reads it, and the next tally replaces it"})
+    return found
+
+
 def _audit_now(exp: Path, expect_head: tuple[int, str] | None, public_key: str | None) -> dict[str, Any]:
     entries, problems = ledger.verify_chain(exp / LEDGER, cached=False)
     _check_anchor(entries, expect_head, problems)
@@ -597,7 +615,8 @@ def _audit_now(exp: Path, expect_head: tuple[int, str] | None, public_key: str |
         openings = _check_openings(exp, entries, model_sha, problems)
     extra = {"signed_with": signed_with,
              "head_checked": f"{expect_head[0]}:{expect_head[1]}" if expect_head else None,
-             "seen_before": manifest.get("seen_before") if isinstance(manifest, dict) else None}
+             "seen_before": manifest.get("seen_before") if isinstance(manifest, dict) else None,
+             "leftovers": _leftovers(exp, entries)}
     return _result(exp, FAIL if problems else PASS, entries, problems, verified, openings, extra)
 
 
@@ -649,4 +668,5 @@ def report(result: dict[str, Any]) -> str:
         listed = ", ".join(o["experiment"] for o in result["seen_before"].get("overlaps", []))
         lines.append(f"  note: test rows seen before (opened by {listed}); reason given: "
                      f"{result['seen_before'].get('reason')}")
+    lines += [f"  note: '{left['file']}' is {left['why']}" for left in result.get("leftovers") or []]
     return "\n".join(lines)
