@@ -495,7 +495,8 @@ def test_a_seal_that_fails_while_writing_leaves_no_sealed_file(tmp_path: Path, m
         with pytest.raises(MemoryError):
             sealing.seal(data, spec, exp, "fail", signing_key=signing_key)
         left = sorted(p.name for p in exp.rglob("*") if p.is_file())
-        assert not {"test.parquet", "dev.parquet", "manifest.json", "ledger.jsonl", ledger.SIGNING} & set(left), left
+        assert not {"test.parquet", "test_rows.parquet", "dev.parquet", "manifest.json", "ledger.jsonl",
+                    ledger.SIGNING} & set(left), left
     monkeypatch.setattr(sealing, "single_feature_alarms", real)
     manifest = sealing.seal(data, spec, exp, "fail", signing_key=str(key))  # and the seal can still be made
     assert manifest["counts"]["test"] > 0 and (exp / "sealed" / "test.parquet").exists() and manifest["public_key"]
@@ -545,3 +546,28 @@ def test_jobs_per_fold_deals_candidates_in_turn_and_never_makes_an_empty_job() -
             for c in cands] == ["l0", "l1"]
     assert sorted(fit_groups(config, families)) == ["forest.1", "forest.2", "knn", "logistic.1", "logistic.2"]
     assert {group_family(n) for n in fit_groups(config, families)} == set(families)
+
+
+def test_row_hashes_agree_across_the_ways_a_copy_of_the_data_is_read(tmp_path: Path) -> None:
+    """A copy of the data keeps its rows' hashes when its rows are shuffled, its columns reordered, a text column
+    read as categories or Arrow strings, whole numbers read as floats or nullable integers, or the target as
+    booleans; one value edited makes another row. A seal's hash file written before the columns were kept inside it
+    (504be47..7c5e505) is read with the manifest's columns."""
+    from holdfast.overlap import SEALED_ROWS, _sealed_hashes, row_hashes
+
+    frame = breast_cancer_frame().head(60)[["patient", "mean_radius", "target"]].assign(
+        ward=lambda f: np.where(f.index % 2 == 0, "north", "south"), visits=lambda f: f.index % 5)
+    copy = frame.sample(frac=1.0, random_state=1)[["target", "visits", "ward", "mean_radius", "patient"]]
+    copy = copy.astype({"ward": "category", "patient": "string", "visits": "float64"})
+    copy["target"] = copy["target"].astype(bool)
+    copy = copy.astype({"visits": "Int64"})
+    ours = pd.Series(row_hashes(frame), index=frame.index)
+    assert (pd.Series(row_hashes(copy), index=copy.index).loc[frame.index] == ours).all()
+    edited = copy.copy()
+    edited.loc[edited.index[0], "mean_radius"] += 0.001
+    assert (pd.Series(row_hashes(edited), index=edited.index) != ours.loc[edited.index]).sum() == 1
+    old_file = tmp_path / SEALED_ROWS
+    old_file.parent.mkdir(parents=True)
+    pd.DataFrame({"row_hash": np.sort(ours.to_numpy())}).to_parquet(old_file, index=False)  # no columns inside
+    hashes, columns = _sealed_hashes(old_file, {"data": {"columns": list(frame.columns)}})
+    assert columns == tuple(frame.columns) and np.array_equal(hashes, np.sort(ours.to_numpy()))

@@ -122,11 +122,24 @@ def register_rows(keys_file: Path, test: Any) -> None:
 def _registered_rows(path: Path) -> tuple[Any, tuple[str, ...]] | None:
     """(row hashes, the columns they cover) of an opened test set found at ``path`` (a registry keys file, or an
     experiment's sealed file, beside which its seal wrote them), or None when none were written."""
+    from ._io import read_json
+
     if path.parent.name == "sealed" and path.name == Path(TEST).name:
-        hashes = path.parent.parent / SEALED_ROWS
-    else:
-        hashes = rows_file(path)
-    return _read_hashes(hashes) if hashes.is_file() else None
+        folder = path.parent.parent
+        if not (folder / SEALED_ROWS).is_file():
+            return None
+        try:
+            return _sealed_hashes(folder / SEALED_ROWS, read_json(folder / MANIFEST))
+        except (OSError, ValueError, KeyError, TypeError):
+            return None
+    return _read_hashes(rows_file(path)) if rows_file(path).is_file() else None
+
+
+def _sealed_hashes(path: Path, manifest: dict[str, Any]) -> tuple[Any, tuple[str, ...]]:
+    """A seal's row hashes and their columns; files written by 504be47..7c5e505 keep no columns inside: those are
+    the manifest's data columns (the seal hashed every column of the file)."""
+    hashes, columns = _read_hashes(path)
+    return hashes, columns or tuple(str(c) for c in manifest["data"]["columns"])
 
 
 def row_hashes(rows: Any) -> Any:
@@ -219,7 +232,7 @@ def _their_rows(folder: Path, manifest: dict[str, Any]) -> tuple[Any, tuple[str,
             f"rows experiment '{folder.name}' sealed and has not opened, so no other experiment's rows can be "
             f"checked against them (its audit names the same problem). Restore it from a backup, or remove the "
             f"folder '{folder}' if that experiment will never be opened")
-    return _read_hashes(path)
+    return _sealed_hashes(path, manifest)
 
 
 def sealed_values_in(frame: Any, folder: Path, manifest: dict[str, Any],
