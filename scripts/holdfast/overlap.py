@@ -194,8 +194,9 @@ def unopened_experiments(target: str, results: Path, experiment: str) -> list[tu
     return found
 
 
-def _same_file(data_path: str, recorded: dict[str, Any], digest: list[str]) -> bool:
-    """Whether ``data_path`` is the file the manifest's data record names (size, then sha256, hashed once)."""
+def same_data_file(data_path: str, recorded: dict[str, Any], digest: list[str]) -> bool:
+    """Whether ``data_path`` is the file the manifest's data record names (size, then sha256; ``digest`` keeps the
+    sha256 between experiments, so the file is hashed at most once)."""
     import os
 
     from ._io import sha256_file
@@ -205,15 +206,6 @@ def _same_file(data_path: str, recorded: dict[str, Any], digest: list[str]) -> b
     if not digest:
         digest.append(sha256_file(data_path))
     return recorded.get("sha256") == digest[0]
-
-
-def unopened_same_file(data_path: str, target: str, results: Path,
-                       experiment: str) -> list[tuple[Path, dict[str, Any]]]:
-    """(folder, sealed spec) of every other experiment under ``results`` sealed from the same data file (size, then
-    sha256) for the same target column and not opened, by folder name."""
-    digest: list[str] = []
-    return [(folder, manifest["spec"]) for folder, manifest in unopened_experiments(target, results, experiment)
-            if _same_file(data_path, manifest["data"], digest)]
 
 
 def _their_rows(folder: Path, manifest: dict[str, Any]) -> tuple[Any, tuple[str, ...]] | None:
@@ -270,7 +262,7 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
     digest: list[str] = []
     for folder, manifest in unopened_experiments(target, results, experiment):
         spec, recorded = manifest["spec"], manifest["data"]
-        if _same_file(data_path, recorded, digest):
+        if same_data_file(data_path, recorded, digest):
             if spec.get("id") not in keys_by_id:
                 keys_by_id[spec.get("id")] = row_keys(frame, spec.get("id"))
             theirs = split_masks(frame, keys_by_id[spec.get("id")], spec, spec["task"])[0]

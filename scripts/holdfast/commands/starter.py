@@ -421,16 +421,17 @@ def _kept_test_settings(data: Path, target: str, results: Path, name: str, frame
     (its name, its sealed spec); its id and group columns become the starter's. None when there is none. From
     another file whose rows it sealed (a grown or edited copy) only a scheme that places each row (or group) by
     its own hash can be kept: it seals the same rows here."""
-    from ..overlap import sealed_values_in, unopened_experiments, unopened_same_file
+    from ..overlap import same_data_file, sealed_values_in, unopened_experiments
 
-    same = dict(unopened_same_file(str(data), target, results, name))
-    others = []
+    same, others, digest = [], [], []
     for folder, manifest in unopened_experiments(target, results, name):
-        if folder not in same and manifest["spec"].get("scheme") in ("hashed", "grouped"):
+        if same_data_file(str(data), manifest["data"], digest):
+            same.append((folder, manifest["spec"]))
+        elif manifest["spec"].get("scheme") in ("hashed", "grouped"):
             shared = sealed_values_in(frame, folder, manifest)
             if shared is not None and shared.any():
                 others.append((folder, manifest["spec"]))
-    for folder, spec in [*same.items(), *others]:
+    for folder, spec in [*same, *others]:
         columns = [spec.get("id"), spec.get("group") if "grouped" in str(spec.get("scheme")) else None]
         if spec.get("scheme") in (*TEST_WHY, "grouped", "stratified_grouped") and all(
                 c is None or c in frame.columns for c in columns):
