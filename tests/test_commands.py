@@ -595,6 +595,55 @@ def test_a_grown_or_edited_copy_of_the_data_may_not_fit_on_unopened_test_rows(fr
 
 
 @pytest.mark.slow
+def test_a_copy_without_a_column_is_compared_over_features_and_target_or_named(fresh_copy: Path) -> None:
+    """A copy of diab.csv without its id column (rows keyed by content, shuffled, another salt) cannot be compared
+    over every column diab sealed; its seal also kept hashes over the features and the target, so the copy is
+    still refused, with the count diab's sealed visit ids give. A copy without a feature cannot be compared at all:
+    it passes, and the check says which experiment it could not compare and why (not silence)."""
+    from holdfast.dataset import row_keys
+    from holdfast.seal import split_masks
+
+    original = pd.read_csv(fresh_copy / "diab.csv").sample(frac=1, random_state=5).reset_index(drop=True)
+    ids = original["visit_id"]
+    no_id = original.drop(columns=["visit_id"])
+    no_id.to_csv(fresh_copy / "no_id.csv", index=False)
+    config = {**diabetes_config(), "experiment": "diab-no-id"}
+    config["data"] = {k: v for k, v in config["data"].items() if k != "id"} | {"path": "no_id.csv"}
+    config["test"] = {**config["test"], "salt": "another"}
+    write_config(fresh_copy, config, "no_id.yaml")
+    # Expected count by ids kept aside (independent of the row hashes): diab's sealed visits among the development
+    # rows the copy's own split gives.
+    sealed_ids = set(pd.read_parquet(fresh_copy / "results" / "diab" / "sealed" / "test.parquet")["visit_id"])
+    frame = pd.read_csv(fresh_copy / "no_id.csv")
+    test_rows, dropped = split_masks(frame, row_keys(frame, None), {**config["test"], "task": "regression"},
+                                     "regression")
+    development = ~test_rows & ~dropped
+    expected = int(ids[development].isin(sealed_ids).sum())
+    assert expected > 0
+    before = tree_digest(fresh_copy / "results")
+    one_error_line(run_cli(fresh_copy, "check", "no_id.yaml"), 4,
+                   f"{expected} of the {int(development.sum())} development rows of experiment 'diab-no-id' are "
+                   "sealed test rows of experiment 'diab', which sealed rows with the same values in every feature "
+                   "and the target from 'diab.csv' (this file lacks 'visit_id', so only the features and target "
+                   "were compared) and has not been opened", "Nothing was sealed")
+    assert tree_digest(fresh_copy / "results") == before
+    # Without the feature bmi no hash of diab's applies: the check passes and names diab and the missing column.
+    original.drop(columns=["bmi"]).to_csv(fresh_copy / "no_bmi.csv", index=False)
+    config["data"] = {**config["data"], "path": "no_bmi.csv", "id": "visit_id"}
+    write_config(fresh_copy, config, "no_bmi.yaml")
+    passed = run_cli(fresh_copy, "check", "no_bmi.yaml")
+    assert passed.returncode == 0, passed.stderr
+    notes = [line for line in passed.stdout.splitlines() if line.startswith("note: ")]
+    assert notes == ["note: experiment 'diab' (same target, sealed, not opened) could not be compared with this "
+                     "experiment's development rows: this data file lacks 'bmi' of the columns it sealed (a "
+                     "feature among them); if this data file is a copy of its data, fitting here may use "
+                     "rows its opening will score"], passed.stdout
+    # The experiment with diab's own columns compares in full and prints no such note.
+    quiet = run_cli(fresh_copy, "check", "config.yaml")
+    assert quiet.returncode == 0 and "note:" not in quiet.stdout, quiet.stdout
+
+
+@pytest.mark.slow
 def test_predict_keys_rows_by_content_without_the_id_and_refuses_a_changed_model(bc_copy: Path,
                                                                                 tmp_path: Path) -> None:
     from holdfast.dataset import content_keys

@@ -39,6 +39,7 @@ from .layout import (
     group_family,
 )
 from .ledger import Problem
+from .overlap import not_compared_lines
 from .recorded import last_record, scope_folder, verify
 
 PASS, FAIL, IN_PROGRESS = "pass", "fail", "in progress"
@@ -616,8 +617,17 @@ def _audit_now(exp: Path, expect_head: tuple[int, str] | None, public_key: str |
     extra = {"signed_with": signed_with,
              "head_checked": f"{expect_head[0]}:{expect_head[1]}" if expect_head else None,
              "seen_before": manifest.get("seen_before") if isinstance(manifest, dict) else None,
+             "not_compared": _not_compared(entries),
              "leftovers": _leftovers(exp, entries)}
     return _result(exp, FAIL if problems else PASS, entries, problems, verified, openings, extra)
+
+
+def _not_compared(entries: list[dict[str, Any]]) -> list[dict[str, str]]:
+    """The unopened experiments the seal could not compare with this one's development rows, as its ledger line
+    records them (the ledger, not the manifest, so an edit shows as a broken chain)."""
+    seals = ledger.events(entries, "seal")
+    found = seals[0]["details"].get("not_compared") if seals else None
+    return [n for n in found if isinstance(n, dict)] if isinstance(found, list) else []
 
 
 def audit(exp_dir: str | os.PathLike[str], expect_head: tuple[int, str] | None = None,
@@ -668,5 +678,6 @@ def report(result: dict[str, Any]) -> str:
         listed = ", ".join(o["experiment"] for o in result["seen_before"].get("overlaps", []))
         lines.append(f"  note: test rows seen before (opened by {listed}); reason given: "
                      f"{result['seen_before'].get('reason')}")
+    lines += [f"  note: at the seal, {line}" for line in not_compared_lines(result.get("not_compared") or [])]
     lines += [f"  note: '{left['file']}' is {left['why']}" for left in result.get("leftovers") or []]
     return "\n".join(lines)

@@ -142,6 +142,8 @@ def _check(args: argparse.Namespace) -> int:
     print(f"config OK: experiment '{plan.config['experiment']}' ({state}), task {plan.config['task']}, "
           f"{n} candidates in {len(plan.families)} families{split}, {len(plan.fold_ids)} folds, "
           f"primary metric {plan.config['metrics'][0]}")
+    for note in plan.notes:
+        print(f"note: {note}")
     return 0
 
 
@@ -433,6 +435,8 @@ def full_check(raw: dict[str, Any], results: str, facts_path: Path) -> dict[str,
     from .plan import prepare
 
     plan = prepare(raw, main=True, results=results)
+    for note in plan.notes:
+        sys.stderr.write(f"holdfast: note: {note}\n")
     write_json(facts_path, plan.facts)
     return plan.facts
 

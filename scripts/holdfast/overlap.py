@@ -17,13 +17,16 @@ A test set not yet opened is kept out of other experiments' development rows too
 sealed file is read. On another file (a grown or edited copy, one rebuilt from the same source) rows are matched
 by value with the hashes of its sealed rows that its seal wrote (:data:`SEALED_ROWS`, recorded in the ledger,
 so deleting it to escape the check fails the audit); experiments sealed before those hashes were written are
-compared on the same file only. ``holdfast init`` writes such an experiment's test settings instead of drawing its
-own, when they seal the same rows here.
+compared on the same file only. A copy without one of the columns it sealed (an id or an unused column dropped) is
+compared over every feature and the target instead, where its seal kept those hashes too. An experiment that could
+not be compared is named in a note, never passed over in silence. ``holdfast init`` writes such an experiment's test
+settings instead of drawing its own, when they seal the same rows here.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -71,10 +74,14 @@ def _content(rows: Any) -> Any:
 
 
 _COLUMNS = b"holdfast_columns"  # the Parquet metadata key of the columns a file of row hashes covers
+# The seal's second hash of each sealed row, over the features and the target only (column and metadata key).
+LABELLED = "labelled_hash"
+_LABELLED_COLUMNS = b"holdfast_labelled_columns"
 
 
-def _write_hashes(path: Path, rows: Any, mode: int | None = None) -> None:
-    """Write the sorted :func:`row_hashes` of ``rows`` (no row order kept) and the columns they cover."""
+def _write_hashes(path: Path, rows: Any, mode: int | None = None, labelled: Any = None) -> None:
+    """Write the sorted :func:`row_hashes` of ``rows`` (no row order kept) and the columns they cover; with
+    ``labelled`` (the same rows' features and target), their hashes too, sorted on their own."""
     import json
 
     import numpy as np
@@ -83,8 +90,12 @@ def _write_hashes(path: Path, rows: Any, mode: int | None = None) -> None:
 
     from ._io import write_atomic
 
-    table = pa.table({"row_hash": np.sort(row_hashes(rows))}).replace_schema_metadata(
-        {_COLUMNS: json.dumps([str(c) for c in rows.columns])})
+    columns = {"row_hash": np.sort(row_hashes(rows))}
+    metadata = {_COLUMNS: json.dumps([str(c) for c in rows.columns])}
+    if labelled is not None:
+        columns[LABELLED] = np.sort(row_hashes(labelled))
+        metadata[_LABELLED_COLUMNS] = json.dumps(sorted(str(c) for c in labelled.columns))
+    table = pa.table(columns).replace_schema_metadata(metadata)
     write_atomic(path, lambda tmp: pq.write_table(table, tmp), mode=mode)
 
 
@@ -94,8 +105,22 @@ def _read_hashes(path: Path) -> tuple[Any, tuple[str, ...]]:
 
     import pyarrow.parquet as pq
 
-    table = pq.read_table(path)
+    table = pq.read_table(path, columns=["row_hash"])
     return table.column("row_hash").to_numpy(), tuple(json.loads((table.schema.metadata or {}).get(_COLUMNS, b"[]")))
+
+
+def _read_labelled(path: Path) -> tuple[Any, tuple[str, ...]] | None:
+    """(hashes over the features and the target, those columns) from a seal's file of row hashes; None when its
+    seal kept none (sealed before they were written)."""
+    import json
+
+    import pyarrow.parquet as pq
+
+    metadata = pq.read_schema(path).metadata or {}
+    if _LABELLED_COLUMNS not in metadata:
+        return None
+    table = pq.read_table(path, columns=[LABELLED])
+    return table.column(LABELLED).to_numpy(), tuple(json.loads(metadata[_LABELLED_COLUMNS]))
 
 
 def _hashes_over(frame: Any, columns: tuple[str, ...], cache: dict[tuple[str, ...], Any]) -> Any | None:
@@ -164,13 +189,16 @@ def row_hashes(rows: Any) -> Any:
     return pd.util.hash_pandas_object(pd.DataFrame(columns, index=rows.index, copy=False), index=False).to_numpy()
 
 
-def write_sealed_rows(exp: Path, test: Any) -> str:
-    """Write the sealed rows' hashes to :data:`SEALED_ROWS`, read-only, and return the file's sha256. Only the seal
-    calls this, on the rows it is sealing (a seal finished after a kill seals the same rows, in the same bytes)."""
+def write_sealed_rows(exp: Path, test: Any, spec: dict[str, Any]) -> str:
+    """Write the sealed rows' hashes to :data:`SEALED_ROWS`, read-only, and return the file's sha256: over every
+    column, and over the features and the target (``spec``'s), for a copy of the data that lacks a column the model
+    does not use. Only the seal calls this, on the rows it is sealing (a seal finished after a kill seals the same
+    rows, in the same bytes)."""
     from ._io import sha256_file
-    from .dataset import KEY
+    from .dataset import KEY, feature_columns
 
-    _write_hashes(exp / SEALED_ROWS, test.drop(columns=[KEY]), mode=0o444)
+    labelled = test[[spec["target"], *feature_columns(test, spec)]]
+    _write_hashes(exp / SEALED_ROWS, test.drop(columns=[KEY]), mode=0o444, labelled=labelled)
     return sha256_file(exp / SEALED_ROWS)
 
 
@@ -208,10 +236,9 @@ def same_data_file(data_path: str, recorded: dict[str, Any], digest: list[str]) 
     return recorded.get("sha256") == digest[0]
 
 
-def _their_rows(folder: Path, manifest: dict[str, Any]) -> tuple[Any, tuple[str, ...]] | None:
-    """(row hashes, the columns they cover) an unopened experiment's seal wrote (None: sealed before holdfast wrote
-    them); refused when the file is missing or is not the one its seal recorded, since the check could then be
-    escaped."""
+def _their_file(folder: Path, manifest: dict[str, Any]) -> Path | None:
+    """The file of row hashes an unopened experiment's seal wrote (None: sealed before holdfast wrote them); refused
+    when the file is missing or is not the one its seal recorded, since the check could then be escaped."""
     from ._io import sha256_file
 
     recorded = manifest.get("files", {}).get(Path(SEALED_ROWS).name)
@@ -224,23 +251,58 @@ def _their_rows(folder: Path, manifest: dict[str, Any]) -> tuple[Any, tuple[str,
             f"rows experiment '{folder.name}' sealed and has not opened, so no other experiment's rows can be "
             f"checked against them (its audit names the same problem). Restore it from a backup, or remove the "
             f"folder '{folder}' if that experiment will never be opened")
-    return _sealed_hashes(path, manifest)
+    return path
+
+
+@dataclass(frozen=True)
+class SealedMatch:
+    """Which rows of a frame hold the values of a row another experiment sealed, as far as its row hashes tell.
+
+    ``rows`` is None when no comparison could be made; ``over`` says which columns were compared; ``missing`` names
+    the columns of its seal the frame lacks (why it was compared over the features and target only, or not at all).
+    """
+
+    rows: Any | None
+    over: str
+    missing: tuple[str, ...] = ()
+    labelled: bool = True  # whether its seal kept hashes over the features and target
+
+
+EVERY_COLUMN, FEATURES_AND_TARGET = "every column", "every feature and the target"
 
 
 def sealed_values_in(frame: Any, folder: Path, manifest: dict[str, Any],
-                     cache: dict[tuple[str, ...], Any] | None = None) -> Any | None:
-    """Which rows of ``frame`` have the values of a row the experiment in ``folder`` sealed (its row hashes, over
-    the columns it sealed); None when it wrote no row hashes (sealed by an older holdfast) or ``frame`` lacks one
-    of those columns. ``cache`` keeps the hashes of ``frame`` by column list between experiments."""
+                     cache: dict[tuple[str, ...], Any] | None = None) -> SealedMatch | None:
+    """Which rows of ``frame`` have the values of a row the experiment in ``folder`` sealed: over every column it
+    sealed when ``frame`` has them all (extra columns ignored), else over its features and target when its seal kept
+    those hashes and ``frame`` has them. None when it wrote no row hashes (sealed by an older holdfast). ``cache``
+    keeps the hashes of ``frame`` by column list between experiments."""
     import numpy as np
 
-    theirs = _their_rows(folder, manifest)
-    ours = _hashes_over(frame, theirs[1], {} if cache is None else cache) if theirs is not None else None
-    return None if ours is None else np.isin(ours, theirs[0])
+    path = _their_file(folder, manifest)
+    if path is None:
+        return None
+    cache = {} if cache is None else cache
+    hashes, columns = _sealed_hashes(path, manifest)
+    ours = _hashes_over(frame, columns, cache)
+    if ours is not None:
+        return SealedMatch(np.isin(ours, hashes), EVERY_COLUMN)
+    missing = tuple(c for c in columns if c not in set(map(str, frame.columns)))
+    labelled = _read_labelled(path)
+    ours = _hashes_over(frame, labelled[1], cache) if labelled is not None else None
+    if ours is None:
+        return SealedMatch(None, EVERY_COLUMN, missing, labelled is not None)
+    return SealedMatch(np.isin(ours, labelled[0]), FEATURES_AND_TARGET, missing)
+
+
+def _named(columns: tuple[str, ...], most: int = 3) -> str:
+    """'a', 'b' and 2 more."""
+    shown = ", ".join(f"'{c}'" for c in columns[:most])
+    return shown + (f" and {len(columns) - most} more" if len(columns) > most else "")
 
 
 def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str, results: Path,
-                       experiment: str) -> None:
+                       experiment: str) -> list[dict[str, str]]:
     """Refuse development rows that another experiment under ``results`` sealed as test rows and has not opened.
 
     Two experiments on one data file with other test settings split it differently, so each would fit on rows the
@@ -248,8 +310,9 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
     same data file the other experiment's split is drawn again on the rows already loaded, with the spec its
     manifest recorded (exact; no sealed file is read). For another file (a grown or edited copy, a file rebuilt
     from the same source) the rows are compared by value with the row hashes its seal wrote
-    (:data:`SEALED_ROWS`), over the columns it sealed, when this file has them all. Opened test sets are
-    :func:`check`'s.
+    (:data:`SEALED_ROWS`), over the columns it sealed when this file has them all, else over its features and
+    target. Returns one note per experiment that could not be compared (:func:`not_compared_lines` words them).
+    Opened test sets are :func:`check`'s.
     """
     import numpy as np
 
@@ -260,6 +323,7 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
     keys_by_id: dict[Any, Any] = {}
     hashes_by_columns: dict[tuple[str, ...], Any] = {}
     digest: list[str] = []
+    notes = []
     for folder, manifest in unopened_experiments(target, results, experiment):
         spec, recorded = manifest["spec"], manifest["data"]
         if same_data_file(data_path, recorded, digest):
@@ -268,11 +332,19 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
             theirs = split_masks(frame, keys_by_id[spec.get("id")], spec, spec["task"])[0]
             shared, how = int(np.sum(theirs & development)), "sealed the same data file"
         else:
-            theirs = sealed_values_in(frame, folder, manifest, hashes_by_columns)
-            if theirs is None:
+            match = sealed_values_in(frame, folder, manifest, hashes_by_columns)
+            if match is None or match.rows is None:
+                why = ("it was sealed before holdfast kept hashes of sealed rows, so only its own data file "
+                       f"'{recorded.get('path')}' is checked" if match is None else
+                       f"this data file lacks {_named(match.missing)} of the columns it sealed"
+                       + (" (a feature among them)" if match.labelled else
+                          " (it was sealed before holdfast kept hashes over the features and target alone)"))
+                notes.append({"experiment": folder.name, "reason": why})
                 continue
-            shared = int(np.sum(theirs & development))
-            how = f"sealed rows with the same values in every column from '{recorded.get('path')}'"
+            shared = int(np.sum(match.rows & development))
+            how = f"sealed rows with the same values in {match.over} from '{recorded.get('path')}'" + (
+                f" (this file lacks {_named(match.missing)}, so only the features and target were compared)"
+                if match.missing else "")
         if shared:
             settings = ", ".join(f"test.{k} {spec[k]!r}" for k in ("scheme", "fraction", "salt", "gap_hours")
                                  if k in spec)
@@ -288,6 +360,14 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
                 f"test rows of experiment '{folder.name}', which {how} and has not been opened; fitting on them "
                 f"here would make its opening score rows already used to choose. Nothing was sealed. {way}, open "
                 f"'{folder.name}' first, or remove its folder '{folder}' if it will never be opened")
+    return notes
+
+
+def not_compared_lines(notes: list[dict[str, str]]) -> list[str]:
+    """The notes :func:`unopened_test_rows` returns, one line each."""
+    return [f"experiment '{n['experiment']}' (same target, sealed, not opened) could not be compared with this "
+            f"experiment's development rows: {n['reason']}; if this data file is a copy of its data, fitting here "
+            "may use rows its opening will score" for n in notes]
 
 
 def check(test_keys: Any, results: Path, experiment: str, reason: str | None,

@@ -109,6 +109,7 @@ class Plan:
     opened: int = 0
     main: bool = True
     facts: dict[str, Any] = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)  # what the full check could not check, one line each
     _costs: dict[str, float] | None = field(default=None, repr=False)
     _groups: dict[str, list[dict[str, Any]]] | None = field(default=None, repr=False)
 
@@ -561,10 +562,10 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
 
         check_overlap(sealed_keys, exp.parent, config["experiment"], config["test"]["seen_rows_reason"],
                       rows=lambda: frame[test_rows])
-        from .overlap import unopened_test_rows
+        from .overlap import not_compared_lines, unopened_test_rows
 
-        unopened_test_rows(frame, ~test_rows & ~dropped, config["data"]["path"], spec["target"], exp.parent,
-                           config["experiment"])
+        plan.notes = not_compared_lines(unopened_test_rows(frame, ~test_rows & ~dropped, config["data"]["path"],
+                                                           spec["target"], exp.parent, config["experiment"]))
     plan.facts = {"task": task, "n_dev": n_dev, "n_groups": n_groups,
                   "data_mb": data_mb if data_mb is not None else (facts or {}).get("data_mb")}
     return plan

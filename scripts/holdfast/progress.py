@@ -58,7 +58,12 @@ def describe(entry: dict[str, Any], tracker: Tracker) -> str | None:
     scope = details.get("scope", "main")
     if event == "seal":
         counts = details.get("counts", {})
-        return f"sealed {counts.get('test')} test rows away; {counts.get('dev')} development rows"
+        text = f"sealed {counts.get('test')} test rows away; {counts.get('dev')} development rows"
+        skipped = details.get("not_compared")
+        if isinstance(skipped, list) and skipped:
+            text += (f"; {len(skipped)} unopened experiment(s) of the same target could not be compared with these "
+                     "rows (see 'holdfast audit')")
+        return text
     if event == "assign_folds" and scope == "main":
         return (f"folds assigned: {details.get('scheme')}, {details.get('k')} fold(s) x {details.get('repeats')} "
                 f"repeat(s) on {details.get('rows')} rows")

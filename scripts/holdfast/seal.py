@@ -354,7 +354,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         order = ordered.result()
     from .overlap import unopened_test_rows
 
-    unopened_test_rows(frame, development, str(data_path), spec["target"], out.parent, experiment)
+    not_compared = unopened_test_rows(frame, development, str(data_path), spec["target"], out.parent, experiment)
     guards = {"duplicates": "warn", "single_feature_threshold": 0.98, **(leakage or {})}
     n_rows, columns = len(frame), [str(c) for c in frame.columns]
     test, dev = _split(frame, keys, mask, development)
@@ -388,7 +388,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                 digests = {"dev_sha256": keys_digest(keys, order, development),
                            "test_sha256": keys_digest(keys, order, mask)}
                 alarms = single_feature_alarms(dev, spec, task, float(guards["single_feature_threshold"]))
-                rows_sha256 = write_sealed_rows(out, test)
+                rows_sha256 = write_sealed_rows(out, test, spec)
                 files = {"test.parquet": test_file.result(), "dev.parquet": dev_file.result(),
                          Path(SEALED_ROWS).name: rows_sha256}
         except BaseException:  # an unexpected failure leaves what it found: no sealed file this seal wrote
@@ -412,6 +412,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                         "single_feature_threshold": float(guards["single_feature_threshold"]),
                         **({"time_order": time_check} if time_check else {})},
             **({"seen_before": seen_before} if seen_before else {}),
+            **({"not_compared": not_compared} if not_compared else {}),
             **({"public_key": public_key} if public_key else {}),
         }
         if task == "classification":
@@ -423,6 +424,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
             "experiment": experiment, "data_sha256": fingerprint["sha256"], "spec": sealed_spec,
             "counts": manifest["counts"], "keys": manifest["keys"], "files": manifest["files"],
             "leakage": manifest["leakage"], **({"seen_before": seen_before} if seen_before else {}),
+            **({"not_compared": not_compared} if not_compared else {}),
             **({"public_key": public_key} if public_key else {}),
         }, rule=rule)
         if earlier and earlier["details"].get("files") != manifest["files"]:

@@ -252,17 +252,19 @@ def sealed_among(exp: Path, spec: dict[str, Any], frame: Any, x: Any) -> tuple[i
 
 def _by_row_hashes(exp: Path, manifest: dict[str, Any], frame: Any, why: str) -> tuple[int, str]:
     """Without the data file: new rows whose values in every column the seal kept equal a sealed row's (the seal's
-    row hashes, :func:`overlap.sealed_values_in`); (-1, why) when the file lacks one of those columns."""
+    row hashes, :func:`overlap.sealed_values_in`; over the features and target when the file lacks another of them);
+    (-1, why) when no comparison can be made."""
     from ..overlap import sealed_values_in
 
     try:
         shared = sealed_values_in(frame, exp, manifest)
     except HoldfastError as exc:
         return -1, f"{why}, and {exc.message}"
-    if shared is None:
+    if shared is None or shared.rows is None:
         return -1, why
-    return int(shared.sum()), (f"{int(shared.sum())} by equal values in every column of the data file, found with the "
-                               f"seal's row hashes since {why}")
+    count = int(shared.rows.sum())
+    return count, (f"{count} by equal values in {shared.over} of the data file, found with the seal's row hashes "
+                   f"since {why}")
 
 
 def _stacked(first: Any, second: Any) -> Any:

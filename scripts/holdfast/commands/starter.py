@@ -429,7 +429,7 @@ def _kept_test_settings(data: Path, target: str, results: Path, name: str, frame
             same.append((folder, manifest["spec"]))
         elif manifest["spec"].get("scheme") in ("hashed", "grouped"):
             shared = sealed_values_in(frame, folder, manifest)
-            if shared is not None and shared.any():
+            if shared is not None and shared.rows is not None and shared.rows.any():
                 others.append((folder, manifest["spec"]))
     for folder, spec in [*same, *others]:
         columns = [spec.get("id"), spec.get("group") if "grouped" in str(spec.get("scheme")) else None]
