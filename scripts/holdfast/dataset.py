@@ -125,6 +125,34 @@ def _prefixed(prefix: str, text: Any, separator: str = "") -> Any:
                                        pa.scalar(separator, pa.large_string()))
 
 
+def _float_text(values: np.ndarray) -> Any:
+    """Each float64 as ``astype("string")`` writes it (Python's shortest repr), NaN as NUL, as an Arrow string array.
+
+    Arrow's cast writes the same shortest digits about five times faster, but its own way: '1' for 1.0, and an
+    exponent from other magnitudes than Python's. So only values Python writes without an exponent (zero and
+    1e-4 <= |x| < 1e16) whose Arrow text has none either are taken from Arrow ('.0' added to whole numbers); the
+    rest go through pandas as before. Equal to pandas' text on 36 million values of every magnitude (random bit
+    patterns included) when written; test_units checks it on others.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    with np.errstate(invalid="ignore"):
+        fast = np.isfinite(values) & ((values == 0) | ((np.abs(values) >= 1e-4) & (np.abs(values) < 1e16)))
+    text = pc.cast(pa.array(values[fast]), pa.large_string())
+    plain = np.asarray(pc.invert(pc.match_substring(text, "e")))
+    fast[np.flatnonzero(fast)[~plain]] = False
+    text = text.filter(pa.array(plain))
+    text = pc.if_else(pc.match_substring(text, "."), text, pc.binary_join_element_wise(
+        text, pa.scalar(".0", pa.large_string()), pa.scalar("", pa.large_string())))
+    rest = np.flatnonzero(~fast)
+    slow = pa.array(pd.Series(values[rest]).astype("string").fillna("\x00").astype(str).tolist(), pa.large_string())
+    order = np.empty(len(values), dtype=np.int64)
+    order[fast] = np.arange(len(values) - len(rest))
+    order[rest] = len(values) - len(rest) + np.arange(len(rest))
+    return pa.concat_arrays([text, slow]).take(pa.array(order))
+
+
 def _rendered(values: pd.Series) -> Any:
     """A column as the text ``astype("string")`` gives it, blanks as NUL, as an Arrow string array.
 
@@ -137,6 +165,9 @@ def _rendered(values: pd.Series) -> Any:
     if isinstance(dtype, np.dtype) and dtype.kind == "f":
         codes, bits = pd.factorize(values.to_numpy().view(f"u{dtype.itemsize}"))
         uniques: Any = bits.view(dtype)
+        if dtype == np.float64:
+            text = pa.concat_arrays([_float_text(uniques), pa.array(["\x00"], pa.large_string())])
+            return text.take(pa.array(np.where(codes >= 0, codes, len(uniques))))
     elif ((isinstance(dtype, np.dtype) and dtype.kind in "iubMm")
           or isinstance(dtype, pd.StringDtype | pd.CategoricalDtype | pd.DatetimeTZDtype)
           or (pd.api.types.is_object_dtype(dtype) and pd.api.types.infer_dtype(values) in ("string", "empty"))):
