@@ -176,6 +176,24 @@ def test_group_overlap_is_counted_per_fold_and_noted_warned_or_refused(tmp_path:
     assert not (tmp_path / "error.parquet").exists()
 
 
+def test_group_overlap_advice_names_a_scheme_of_the_same_kind() -> None:
+    """Forward folds that split groups are pointed to forward_group (groups whole, still in time order), not to
+    group or stratified_group, which would drop the time order the user chose."""
+    from holdfast.folds import group_overlap
+
+    dev = pd.DataFrame({"site": ["a", "b", "a", "b"]})
+    summary = pd.DataFrame({"repeat": [0, 0], "fold": [0, 1], "groups": [2, 2], "groups_on_both_sides": [2, 1]})
+    spec = {"group": "site"}
+    forward = {"scheme": "forward", "k": 2}
+    with pytest.raises(DataError, match=r"use folds.scheme: forward_group \(whole groups per fold, in time order\)"):
+        group_overlap(dev, summary, spec, forward, "error")
+    assert group_overlap(dev, summary, spec, forward, "warn")["warning"].endswith("use folds.scheme: forward_group "
+                                                                                 "(whole groups per fold, in time "
+                                                                                 "order)")
+    with pytest.raises(DataError, match=r"use folds.scheme: group or stratified_group \(whole groups per fold\)"):
+        group_overlap(dev, summary, spec, {"scheme": "kfold", "k": 2}, "error")
+
+
 def test_grouped_folds_report_zero_from_the_count_not_the_scheme(tmp_path: Path) -> None:
     dev = with_clinics(breast_cancer_frame())
     spec = {**SPEC, "id": None, "group": "clinic"}

@@ -445,12 +445,12 @@ def group_overlap(dev: pd.DataFrame, summary: pd.DataFrame, spec: dict[str, Any]
     if scheme in GROUPED:
         raise DataError(f"folds ({scheme}): {found['text']}, though the scheme keeps groups whole; rebuild the folds")
     message = f"folds.scheme {scheme} ignores data.group: {found['text']}"
+    keeps = ("forward_group (whole groups per fold, in time order)" if scheme == "forward" else
+             "group or stratified_group (whole groups per fold)")
     if mode == "error":
-        raise DataError(f"{message}; use folds.scheme: group or stratified_group (whole groups per fold), or set "
-                        "leakage.group_overlap: warn")
+        raise DataError(f"{message}; use folds.scheme: {keeps}, or set leakage.group_overlap: warn")
     if mode == "warn":
-        found["warning"] = (f"{message}; if the model will meet new groups, use folds.scheme: group or "
-                            "stratified_group")
+        found["warning"] = f"{message}; if the model will meet new groups, use folds.scheme: {keeps}"
     return found
 
 
