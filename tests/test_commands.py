@@ -599,7 +599,8 @@ def test_a_copy_without_a_column_is_compared_over_features_and_target_or_named(f
     """A copy of diab.csv without its id column (rows keyed by content, shuffled, another salt) cannot be compared
     over every column diab sealed; its seal also kept hashes over the features and the target, so the copy is
     still refused, with the count diab's sealed visit ids give. A copy without a feature cannot be compared at all:
-    it passes, and the check says which experiment it could not compare and why (not silence)."""
+    it passes, and the check says which experiment it could not compare and why (not silence). A copy with the ids
+    renumbered passes with the count of rows equal in features and target; one with diab's settings, no note."""
     from holdfast.dataset import row_keys
     from holdfast.seal import split_masks
 
@@ -634,13 +635,35 @@ def test_a_copy_without_a_column_is_compared_over_features_and_target_or_named(f
     passed = run_cli(fresh_copy, "check", "no_bmi.yaml")
     assert passed.returncode == 0, passed.stderr
     notes = [line for line in passed.stdout.splitlines() if line.startswith("note: ")]
-    assert notes == ["note: experiment 'diab' (same target, sealed, not opened) could not be compared with this "
-                     "experiment's development rows: this data file lacks 'bmi' of the columns it sealed (a "
-                     "feature among them); if this data file is a copy of its data, fitting here may use "
-                     "rows its opening will score"], passed.stdout
-    # The experiment with diab's own columns compares in full and prints no such note.
-    quiet = run_cli(fresh_copy, "check", "config.yaml")
-    assert quiet.returncode == 0 and "note:" not in quiet.stdout, quiet.stdout
+    assert notes == ["note: experiment 'diab' (same target, sealed, not opened): could not be compared with these "
+                     "development rows: this data file lacks 'bmi' of the columns it sealed (a feature among them); "
+                     "if this data file is a copy of its data, fitting here may use rows its opening will score"], \
+        passed.stdout
+    # Ids renumbered: no row equals a sealed one in every column, but the copy's development rows equal diab's
+    # sealed rows in every feature and the target: passed, with that count in a note.
+    renumbered = original.assign(visit_id=[f"R{i:04d}" for i in range(len(original))])
+    renumbered.to_csv(fresh_copy / "renumbered.csv", index=False)
+    config["data"]["path"] = "renumbered.csv"
+    write_config(fresh_copy, config, "renumbered.yaml")
+    frame = pd.read_csv(fresh_copy / "renumbered.csv")
+    test_rows, dropped = split_masks(frame, row_keys(frame, "visit_id"), {**config["test"], "task": "regression"},
+                                     "regression")
+    development = ~test_rows & ~dropped
+    expected = int(ids[development].isin(sealed_ids).sum())
+    assert expected > 0
+    noted = run_cli(fresh_copy, "check", "renumbered.yaml")
+    assert noted.returncode == 0, noted.stderr
+    assert [line for line in noted.stdout.splitlines() if line.startswith("note: ")] == [
+        f"note: experiment 'diab' (same target, sealed, not opened): {expected} of these {int(development.sum())} "
+        "development rows equal one of its sealed rows in every feature and the target, though not in every column "
+        "it sealed; if they are the same records (ids renumbered, another column edited), fitting here uses rows "
+        "its opening will score"], noted.stdout
+    # A shuffled copy with diab's own test settings seals diab's sealed rows here too: nothing to note.
+    original.to_csv(fresh_copy / "shuffled.csv", index=False)
+    config["data"]["path"], config["test"]["salt"] = "shuffled.csv", "d1"
+    write_config(fresh_copy, config, "shuffled.yaml")
+    quiet = run_cli(fresh_copy, "check", "shuffled.yaml")
+    assert quiet.returncode == 0 and "note:" not in quiet.stdout, quiet.stdout + quiet.stderr
 
 
 @pytest.mark.slow

@@ -39,7 +39,7 @@ from .layout import (
     group_family,
 )
 from .ledger import Problem
-from .overlap import not_compared_lines
+from .overlap import note_lines
 from .recorded import last_record, scope_folder, verify
 
 PASS, FAIL, IN_PROGRESS = "pass", "fail", "in progress"
@@ -617,16 +617,17 @@ def _audit_now(exp: Path, expect_head: tuple[int, str] | None, public_key: str |
     extra = {"signed_with": signed_with,
              "head_checked": f"{expect_head[0]}:{expect_head[1]}" if expect_head else None,
              "seen_before": manifest.get("seen_before") if isinstance(manifest, dict) else None,
-             "not_compared": _not_compared(entries),
+             "unopened_notes": _unopened_notes(entries),
              "leftovers": _leftovers(exp, entries)}
     return _result(exp, FAIL if problems else PASS, entries, problems, verified, openings, extra)
 
 
-def _not_compared(entries: list[dict[str, Any]]) -> list[dict[str, str]]:
-    """The unopened experiments the seal could not compare with this one's development rows, as its ledger line
-    records them (the ledger, not the manifest, so an edit shows as a broken chain)."""
+def _unopened_notes(entries: list[dict[str, Any]]) -> list[dict[str, str]]:
+    """What the seal noted about other unopened experiments (one it could not compare with this one's development
+    rows, or whose sealed rows these equal in features and target only), as its ledger line records it (the ledger,
+    not the manifest, so an edit shows as a broken chain)."""
     seals = ledger.events(entries, "seal")
-    found = seals[0]["details"].get("not_compared") if seals else None
+    found = seals[0]["details"].get("unopened_notes") if seals else None
     return [n for n in found if isinstance(n, dict)] if isinstance(found, list) else []
 
 
@@ -678,6 +679,6 @@ def report(result: dict[str, Any]) -> str:
         listed = ", ".join(o["experiment"] for o in result["seen_before"].get("overlaps", []))
         lines.append(f"  note: test rows seen before (opened by {listed}); reason given: "
                      f"{result['seen_before'].get('reason')}")
-    lines += [f"  note: at the seal, {line}" for line in not_compared_lines(result.get("not_compared") or [])]
+    lines += [f"  note: at the seal, {line}" for line in note_lines(result.get("unopened_notes") or [])]
     lines += [f"  note: '{left['file']}' is {left['why']}" for left in result.get("leftovers") or []]
     return "\n".join(lines)

@@ -266,6 +266,7 @@ class SealedMatch:
     over: str
     missing: tuple[str, ...] = ()
     labelled: bool = True  # whether its seal kept hashes over the features and target
+    similar: Any | None = None  # beside a comparison over every column: the rows equal over features and target
 
 
 EVERY_COLUMN, FEATURES_AND_TARGET = "every column", "every feature and the target"
@@ -284,15 +285,16 @@ def sealed_values_in(frame: Any, folder: Path, manifest: dict[str, Any],
         return None
     cache = {} if cache is None else cache
     hashes, columns = _sealed_hashes(path, manifest)
+    labelled = _read_labelled(path)
+    by_label = _hashes_over(frame, labelled[1], cache) if labelled is not None else None
+    similar = None if by_label is None else np.isin(by_label, labelled[0])
     ours = _hashes_over(frame, columns, cache)
     if ours is not None:
-        return SealedMatch(np.isin(ours, hashes), EVERY_COLUMN)
+        return SealedMatch(np.isin(ours, hashes), EVERY_COLUMN, similar=similar)
     missing = tuple(c for c in columns if c not in set(map(str, frame.columns)))
-    labelled = _read_labelled(path)
-    ours = _hashes_over(frame, labelled[1], cache) if labelled is not None else None
-    if ours is None:
+    if similar is None:
         return SealedMatch(None, EVERY_COLUMN, missing, labelled is not None)
-    return SealedMatch(np.isin(ours, labelled[0]), FEATURES_AND_TARGET, missing)
+    return SealedMatch(similar, FEATURES_AND_TARGET, missing)
 
 
 def _named(columns: tuple[str, ...], most: int = 3) -> str:
@@ -311,7 +313,8 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
     manifest recorded (exact; no sealed file is read). For another file (a grown or edited copy, a file rebuilt
     from the same source) the rows are compared by value with the row hashes its seal wrote
     (:data:`SEALED_ROWS`), over the columns it sealed when this file has them all, else over its features and
-    target. Returns one note per experiment that could not be compared (:func:`not_compared_lines` words them).
+    target. Returns a note for each experiment that could not be compared, or whose sealed rows equal development
+    rows in every feature and the target but not in every column (:func:`note_lines` words them).
     Opened test sets are :func:`check`'s.
     """
     import numpy as np
@@ -339,9 +342,18 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
                        f"this data file lacks {_named(match.missing)} of the columns it sealed"
                        + (" (a feature among them)" if match.labelled else
                           " (it was sealed before holdfast kept hashes over the features and target alone)"))
-                notes.append({"experiment": folder.name, "reason": why})
+                notes.append({"experiment": folder.name, "note": (
+                    f"could not be compared with these development rows: {why}; if this data file is a copy of "
+                    "its data, fitting here may use rows its opening will score")})
                 continue
             shared = int(np.sum(match.rows & development))
+            alike = 0 if match.similar is None else int(np.sum(match.similar & ~match.rows & development))
+            if alike and not shared:
+                notes.append({"experiment": folder.name, "note": (
+                    f"{alike} of these {int(np.sum(development))} development rows equal one of its sealed rows "
+                    "in every feature and the target, though not in every column it sealed; if they are the same "
+                    "records (ids renumbered, another column edited), fitting here uses rows its opening will "
+                    "score")})
             how = f"sealed rows with the same values in {match.over} from '{recorded.get('path')}'" + (
                 f" (this file lacks {_named(match.missing)}, so only the features and target were compared)"
                 if match.missing else "")
@@ -363,11 +375,10 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
     return notes
 
 
-def not_compared_lines(notes: list[dict[str, str]]) -> list[str]:
+def note_lines(notes: list[dict[str, str]]) -> list[str]:
     """The notes :func:`unopened_test_rows` returns, one line each."""
-    return [f"experiment '{n['experiment']}' (same target, sealed, not opened) could not be compared with this "
-            f"experiment's development rows: {n['reason']}; if this data file is a copy of its data, fitting here "
-            "may use rows its opening will score" for n in notes]
+    return [f"experiment '{n.get('experiment')}' (same target, sealed, not opened): {n.get('note')}" for n in notes
+            if isinstance(n, dict)]
 
 
 def check(test_keys: Any, results: Path, experiment: str, reason: str | None,

@@ -562,9 +562,9 @@ def prepare(raw: dict[str, Any], main: bool = True, results: str = "results",
 
         check_overlap(sealed_keys, exp.parent, config["experiment"], config["test"]["seen_rows_reason"],
                       rows=lambda: frame[test_rows])
-        from .overlap import not_compared_lines, unopened_test_rows
+        from .overlap import note_lines, unopened_test_rows
 
-        plan.notes = not_compared_lines(unopened_test_rows(frame, ~test_rows & ~dropped, config["data"]["path"],
+        plan.notes = note_lines(unopened_test_rows(frame, ~test_rows & ~dropped, config["data"]["path"],
                                                            spec["target"], exp.parent, config["experiment"]))
     plan.facts = {"task": task, "n_dev": n_dev, "n_groups": n_groups,
                   "data_mb": data_mb if data_mb is not None else (facts or {}).get("data_mb")}

@@ -59,10 +59,9 @@ def describe(entry: dict[str, Any], tracker: Tracker) -> str | None:
     if event == "seal":
         counts = details.get("counts", {})
         text = f"sealed {counts.get('test')} test rows away; {counts.get('dev')} development rows"
-        skipped = details.get("not_compared")
-        if isinstance(skipped, list) and skipped:
-            text += (f"; {len(skipped)} unopened experiment(s) of the same target could not be compared with these "
-                     "rows (see 'holdfast audit')")
+        noted = details.get("unopened_notes")
+        if isinstance(noted, list) and noted:
+            text += f"; {len(noted)} note(s) on unopened experiments of the same target (see 'holdfast audit')"
         return text
     if event == "assign_folds" and scope == "main":
         return (f"folds assigned: {details.get('scheme')}, {details.get('k')} fold(s) x {details.get('repeats')} "

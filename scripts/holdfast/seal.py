@@ -354,7 +354,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
         order = ordered.result()
     from .overlap import unopened_test_rows
 
-    not_compared = unopened_test_rows(frame, development, str(data_path), spec["target"], out.parent, experiment)
+    unopened_notes = unopened_test_rows(frame, development, str(data_path), spec["target"], out.parent, experiment)
     guards = {"duplicates": "warn", "single_feature_threshold": 0.98, **(leakage or {})}
     n_rows, columns = len(frame), [str(c) for c in frame.columns]
     test, dev = _split(frame, keys, mask, development)
@@ -412,7 +412,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
                         "single_feature_threshold": float(guards["single_feature_threshold"]),
                         **({"time_order": time_check} if time_check else {})},
             **({"seen_before": seen_before} if seen_before else {}),
-            **({"not_compared": not_compared} if not_compared else {}),
+            **({"unopened_notes": unopened_notes} if unopened_notes else {}),
             **({"public_key": public_key} if public_key else {}),
         }
         if task == "classification":
@@ -424,7 +424,7 @@ def seal(data_path: str | os.PathLike[str], spec: dict[str, Any], exp_dir: str |
             "experiment": experiment, "data_sha256": fingerprint["sha256"], "spec": sealed_spec,
             "counts": manifest["counts"], "keys": manifest["keys"], "files": manifest["files"],
             "leakage": manifest["leakage"], **({"seen_before": seen_before} if seen_before else {}),
-            **({"not_compared": not_compared} if not_compared else {}),
+            **({"unopened_notes": unopened_notes} if unopened_notes else {}),
             **({"public_key": public_key} if public_key else {}),
         }, rule=rule)
         if earlier and earlier["details"].get("files") != manifest["files"]:
