@@ -18,7 +18,7 @@ their peak RSS grew by about 4 KB per row (measured once at 100,000 rows on a bu
 machine): 10 M rows would take about an hour per rep and need tens of GB. A measurement that
 fails or is killed (the out-of-memory killer) is reported in the table, and the rest goes on.
 
-Run:  PYTHONPATH=scripts python bench/data_size.py [--reps 3] [--rows N ...] [--only seal tally]
+Run:  PYTHONPATH=scripts python bench/data_size.py [--reps 3] [--rows N ...] [--only seal tally] [--keys content]
       PYTHONPATH=scripts python bench/data_size.py --quick       (tiny sizes; checks that it works)
 """
 
@@ -211,10 +211,13 @@ def summary_row(label: str, step: str, done: list[Result], per_row: float | None
             c.median([m.peak_mib for m, _ in good]), c.median([mib(r["before_kb"]) for _, r in good]), per_row, note]
 
 
-def seal_and_folds(sizes: list[int], reps: int, root: Path) -> None:
-    """Seal and fold assignment per data size, each in a fresh process; alternating sizes per rep."""
+def seal_and_folds(sizes: list[int], reps: int, root: Path, keys: str = "id") -> None:
+    """Seal and fold assignment per data size, each in a fresh process; alternating sizes per rep. With ``keys``
+    "content" the config names no id column (the id column is dropped from the features): rows are keyed by
+    their content, every value written as text and hashed."""
     logs = root / "logs"
-    config = json.dumps(CONFIG)
+    config = json.dumps(CONFIG if keys == "id" else {
+        **CONFIG, "data": {"path": "data.parquet", "target": "y", "drop": ["id"]}})
     for n in sizes:
         folder = root / f"rows-{n}"
         folder.mkdir()
@@ -265,7 +268,8 @@ def seal_and_folds(sizes: list[int], reps: int, root: Path) -> None:
     c.table(["rows", "step", "seconds", "imports (s)", "peak RSS (MiB)", "after imports (MiB)",
              "folds.parquet bytes/row", "failures"], rows, note_last=True,
             title="1. seal and fold assignment, 20 columns (Parquet; test stratified 20 %, folds stratified 5-fold; "
-                  "medians; the sum's peak is the larger of the two)")
+                  f"rows keyed by {'the id column' if keys == 'id' else 'their content (no data.id)'}; medians; the "
+                  "sum's peak is the larger of the two)")
     first = next((r for m, r, _ in results[(sizes[0], "seal")] if r is not None), None)
     if first is not None:
         print(f"  {sizes[0]:,} rows: {first['dev']:,} development and {first['test']:,} test rows after the seal")
@@ -310,13 +314,15 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--only", nargs="+", choices=("seal", "tally"), default=["seal", "tally"],
                    help="which parts to run (default: both)")
     p.add_argument("--rows", nargs="+", type=int, help="data sizes of part 1 (default 1,000,000 and 10,000,000)")
+    p.add_argument("--keys", choices=("id", "content"), default="id",
+                   help="part 1's row keys: the id column (default) or each row's content (a config without data.id)")
     args = p.parse_args(argv)
     reps = c.reps_of(args)
     c.header("holdfast and data size: the seal, the fold assignment and the tally", args, reps)
     with c.workspace("data-size", args.keep) as root:
         if "seal" in args.only:
             sizes = args.rows or ([2_000, 20_000] if args.quick else [1_000_000, 10_000_000])
-            seal_and_folds(sizes, reps, root)
+            seal_and_folds(sizes, reps, root, args.keys)
         if "tally" in args.only:
             tally_memory(10, 2_000, reps, root) if args.quick else tally_memory(200, 100_000, reps, root)
     c.footer()
