@@ -9,6 +9,8 @@ from __future__ import annotations
 import importlib
 import json
 import shutil
+import subprocess
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -664,6 +666,44 @@ def test_a_copy_without_a_column_is_compared_over_features_and_target_or_named(f
     write_config(fresh_copy, config, "shuffled.yaml")
     quiet = run_cli(fresh_copy, "check", "shuffled.yaml")
     assert quiet.returncode == 0 and "note:" not in quiet.stdout, quiet.stdout + quiet.stderr
+
+
+HOLD_SHARED = """
+import sys
+from holdfast import ledger
+with ledger.locked(sys.argv[1], shared=True):
+    print("holding", flush=True)
+    sys.stdin.readline()
+"""
+
+
+@pytest.mark.slow
+def test_a_second_run_while_one_is_under_way_starts_nothing(fresh_copy: Path) -> None:
+    """While a run holds the experiment's steps lock (shared: its command and its steps), a second 'holdfast run'
+    of it says so in one line and starts nothing: no Snakemake log, the config copy the first reads unchanged, no
+    progress lines of the other run. A dry run too (it would write the config copy as well)."""
+    exp = fresh_copy / "results" / "diab"
+    config = {**diabetes_config(), "candidates": {"ridge": diabetes_config()["candidates"]["ridge"]}}
+    write_config(fresh_copy, config, "edited.yaml")
+    copy_before = (exp / "config.json").read_bytes()
+    logs_before = sorted(p.name for p in (exp / "logs").iterdir())
+    holder = subprocess.Popen([sys.executable, "-c", HOLD_SHARED, str(exp / "steps")], stdin=subprocess.PIPE,
+                              stdout=subprocess.PIPE, text=True, env={"PYTHONPATH": str(REPO / "scripts")})
+    try:
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "holding"
+        refused = run_cli(fresh_copy, "run", "edited.yaml", "--cores", "1")
+        dry = run_cli(fresh_copy, "run", "edited.yaml", "-n")
+    finally:
+        holder.communicate("done\n", timeout=30)
+    for result in (refused, dry):
+        assert result.returncode == 1 and result.stdout == "", result.stdout + result.stderr
+    assert dry.stderr == refused.stderr
+    assert refused.stderr.splitlines() == [
+        "holdfast: busy: another run of experiment 'results/diab' is under way ('holdfast run', or a step of a "
+        "Snakemake started by hand), so this run starts nothing (it would replace the config that run reads, and "
+        "meet its Snakemake's lock); run again once it has ended ('holdfast status results/diab' shows what it did)"]
+    assert (exp / "config.json").read_bytes() == copy_before
+    assert sorted(p.name for p in (exp / "logs").iterdir()) == logs_before
 
 
 @pytest.mark.slow

@@ -95,6 +95,7 @@ with ledger.locked(sys.argv[1], shared=sys.argv[2] == "shared"):
 def test_the_lock_is_not_free_while_another_process_holds_it(tmp_path: Path, mode: str) -> None:
     target = tmp_path / "steps"
     assert ledger.held_elsewhere(target) is False
+    assert ledger.held_shared_elsewhere(target) is False
     assert not (tmp_path / "steps.lock").exists()  # the glance makes no lock file
     with ledger.locked_if_free(target) as free:
         assert free is True
@@ -106,12 +107,13 @@ def test_the_lock_is_not_free_while_another_process_holds_it(tmp_path: Path, mod
         with ledger.locked_if_free(target) as free:
             assert free is False
         assert ledger.held_elsewhere(target) is True
+        assert ledger.held_shared_elsewhere(target) is (mode == "shared")  # a run's, not an audit's instant
         if mode == "shared":  # shared holders do not exclude one another
             with ledger.locked(target, shared=True):
                 pass
     finally:
         holder.communicate("done\n", timeout=30)
-    assert ledger.held_elsewhere(target) is False
+    assert ledger.held_elsewhere(target) is False and ledger.held_shared_elsewhere(target) is False
     with ledger.locked_if_free(target) as free:
         assert free is True
 

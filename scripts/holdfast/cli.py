@@ -469,12 +469,19 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
         raise ConfigError(f"results folder '{plan.exp}' is a symbolic link; holdfast writes only into real folders "
                           "inside the project")
     from . import ledger
-    from .layout import OPEN_COMMAND_LOCK
+    from .errors import BusyError
+    from .layout import OPEN_COMMAND_LOCK, STEPS_LOCK
 
     if ledger.held_elsewhere(plan.exp / OPEN_COMMAND_LOCK):  # a glance: no lock file made where none was opened
         raise SealedAccessError(f"'holdfast open' of experiment '{plan.exp}' is running, so this run starts nothing "
                                 "(it would replace the config the opening reads, and meet the opening's Snakemake); "
                                 f"once the opening has ended, 'holdfast audit {plan.exp}' says what it did")
+    if ledger.held_shared_elsewhere(plan.exp / STEPS_LOCK):  # a run's command or its steps hold it
+        raise BusyError(f"another run of experiment '{plan.exp}' is under way ('holdfast run', or a step of a "
+                        "Snakemake started by hand), so this run starts nothing (it would replace the config that "
+                        f"run reads, and meet its Snakemake's lock); run again once it has ended ('holdfast status "
+                        f"{plan.exp}' shows what it did)")
+    dry = any(w in DRY_RUN for w in extra)
     config_copy = _store_config(raw, plan.exp)
     if plan.closed:
         _say(f"experiment '{plan.config['experiment']}' was opened: nothing up to the opening runs again")
@@ -483,7 +490,6 @@ def _run(args: argparse.Namespace, extra: list[str]) -> int:
         more = f" (and {len(missing) - 1} more)" if len(missing) > 1 else ""
         _say(f"'{missing[0]}'{more} is missing: the diagnostics step runs again to draw it")
         extra = [*extra, "--forcerun=diagnostics"]
-    dry = any(w in DRY_RUN for w in extra)
     code = _snakemake(config_copy, extra, plan.exp, args.show_snakemake or dry, "run")
     if code or dry:
         return code

@@ -28,6 +28,13 @@ class HoldfastError(Exception):
         return f"holdfast: {self.kind}: {self.message}"
 
 
+class BusyError(HoldfastError):
+    """Another run of the same experiment is under way: nothing was started."""
+
+    exit_code = 1
+    kind = "busy"
+
+
 class ConfigError(HoldfastError):
     """A config key is missing, misspelt, of the wrong type or inconsistent with another."""
 

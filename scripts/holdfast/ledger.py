@@ -94,6 +94,28 @@ def held_elsewhere(path: str | os.PathLike[str]) -> bool:
     return False
 
 
+def held_shared_elsewhere(path: str | os.PathLike[str]) -> bool:
+    """Whether others hold the lock on ``<path>.lock`` shared now (a run or its steps), not exclusively (an audit's
+    instant): the exclusive lock is refused while the shared one is granted. Makes no lock file."""
+    try:
+        fd = os.open(Path(str(path) + ".lock"), os.O_RDONLY)
+    except OSError:
+        return False
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            return False
+        except BlockingIOError:
+            pass
+        try:
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except BlockingIOError:
+            return False
+        return True
+    finally:
+        os.close(fd)  # lets go of whatever was taken
+
+
 @contextmanager
 def locked_if_free(path: str | os.PathLike[str]) -> Iterator[bool]:
     """Try the exclusive lock on ``<path>.lock`` without waiting; yield whether it is held for the block.

@@ -20,8 +20,8 @@ so deleting it to escape the check fails the audit); experiments sealed before t
 compared on the same file only. A copy without one of the columns it sealed (an id or an unused column dropped) is
 compared over every feature and the target instead, where its seal kept those hashes too. An experiment that could
 not be compared is named in a note, never passed over in silence; so are development rows equal to its sealed rows
-in every feature and the target but not in every column (ids renumbered: counted, not refused). ``holdfast init`` writes such an experiment's test
-settings instead of drawing its own, when they seal the same rows here.
+in every feature and the target but not in every column (ids renumbered: counted, not refused). ``holdfast init``
+writes such an experiment's test settings instead of drawing its own, when they seal the same rows here.
 """
 
 from __future__ import annotations
