@@ -18,7 +18,8 @@ their peak RSS grew by about 4 KB per row (measured once at 100,000 rows on a bu
 machine): 10 M rows would take about an hour per rep and need tens of GB. A measurement that
 fails or is killed (the out-of-memory killer) is reported in the table, and the rest goes on.
 
-Run:  PYTHONPATH=scripts python bench/data_size.py [--reps 3] [--rows N ...] [--only seal tally] [--keys content]
+Run:  PYTHONPATH=scripts python bench/data_size.py [--reps 3] [--rows N ...] [--only seal tally]
+                                                    [--keys content] [--full-precision]
       PYTHONPATH=scripts python bench/data_size.py --quick       (tiny sizes; checks that it works)
 """
 
@@ -42,7 +43,7 @@ CONFIG = {
 MAKE_DATA = """\
 import json, sys
 import numpy as np, pyarrow as pa, pyarrow.parquet as pq
-out, path, rows = sys.argv[1], sys.argv[2], int(sys.argv[3])
+out, path, rows, digits = sys.argv[1], sys.argv[2], int(sys.argv[3]), int(sys.argv[4])
 rng = np.random.default_rng(20261)
 x = rng.standard_normal((rows, 16), dtype=np.float64)
 logit = x[:, :4] @ np.array([1.0, -0.8, 0.6, 0.4])
@@ -51,7 +52,7 @@ logit += np.array([-0.5, -0.2, 0.0, 0.1, 0.3, 0.6])[codes_a]
 y = (rng.random(rows) < 1 / (1 + np.exp(-logit))).astype(np.int8)
 columns = {"id": pa.array(np.arange(rows, dtype=np.int64)), "y": pa.array(y)}
 for j in range(16):
-    columns[f"x{j:02d}"] = pa.array(np.round(x[:, j], 4))
+    columns[f"x{j:02d}"] = pa.array(np.round(x[:, j], digits) if digits >= 0 else x[:, j])
 for name, codes, levels in (("cat_a", codes_a, 6), ("cat_b", codes_b, 12)):
     labels = pa.array([f"{name[-1]}{i}" for i in range(levels)])
     columns[name] = pa.DictionaryArray.from_arrays(pa.array(codes.astype(np.int32)), labels).cast(pa.string())
@@ -211,10 +212,11 @@ def summary_row(label: str, step: str, done: list[Result], per_row: float | None
             c.median([m.peak_mib for m, _ in good]), c.median([mib(r["before_kb"]) for _, r in good]), per_row, note]
 
 
-def seal_and_folds(sizes: list[int], reps: int, root: Path, keys: str = "id") -> None:
+def seal_and_folds(sizes: list[int], reps: int, root: Path, keys: str = "id", digits: int = 4) -> None:
     """Seal and fold assignment per data size, each in a fresh process; alternating sizes per rep. With ``keys``
     "content" the config names no id column (the id column is dropped from the features): rows are keyed by
-    their content, every value written as text and hashed."""
+    their content, every value written as text and hashed. ``digits`` rounds the 16 numeric columns (-1: full
+    precision, every value distinct, so no value's text is shared between rows)."""
     logs = root / "logs"
     config = json.dumps(CONFIG if keys == "id" else {
         **CONFIG, "data": {"path": "data.parquet", "target": "y", "drop": ["id"]}})
@@ -222,7 +224,7 @@ def seal_and_folds(sizes: list[int], reps: int, root: Path, keys: str = "id") ->
         folder = root / f"rows-{n}"
         folder.mkdir()
         c.progress(f"generating {n:,} rows x 20 columns")
-        c.python_json(MAKE_DATA, [str(folder / "data.parquet"), str(n)], folder, logs, f"make-{n}")
+        c.python_json(MAKE_DATA, [str(folder / "data.parquet"), str(n), str(digits)], folder, logs, f"make-{n}")
     results: dict[tuple[int, str], list[Result]] = {(n, s): [] for n in sizes for s in ("seal", "folds")}
     folds_bytes: dict[int, tuple[int, int]] = {}
 
@@ -268,8 +270,9 @@ def seal_and_folds(sizes: list[int], reps: int, root: Path, keys: str = "id") ->
     c.table(["rows", "step", "seconds", "imports (s)", "peak RSS (MiB)", "after imports (MiB)",
              "folds.parquet bytes/row", "failures"], rows, note_last=True,
             title="1. seal and fold assignment, 20 columns (Parquet; test stratified 20 %, folds stratified 5-fold; "
-                  f"rows keyed by {'the id column' if keys == 'id' else 'their content (no data.id)'}; medians; the "
-                  "sum's peak is the larger of the two)")
+                  f"rows keyed by {'the id column' if keys == 'id' else 'their content (no data.id)'}; numbers "
+                  f"{'at full precision' if digits < 0 else f'rounded to {digits} decimals'}; medians; the sum's peak "
+                  "is the larger of the two)")
     first = next((r for m, r, _ in results[(sizes[0], "seal")] if r is not None), None)
     if first is not None:
         print(f"  {sizes[0]:,} rows: {first['dev']:,} development and {first['test']:,} test rows after the seal")
@@ -316,13 +319,15 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--rows", nargs="+", type=int, help="data sizes of part 1 (default 1,000,000 and 10,000,000)")
     p.add_argument("--keys", choices=("id", "content"), default="id",
                    help="part 1's row keys: the id column (default) or each row's content (a config without data.id)")
+    p.add_argument("--full-precision", action="store_true",
+                   help="part 1's numeric columns at full precision (default: rounded to 4 decimals)")
     args = p.parse_args(argv)
     reps = c.reps_of(args)
     c.header("holdfast and data size: the seal, the fold assignment and the tally", args, reps)
     with c.workspace("data-size", args.keep) as root:
         if "seal" in args.only:
             sizes = args.rows or ([2_000, 20_000] if args.quick else [1_000_000, 10_000_000])
-            seal_and_folds(sizes, reps, root, args.keys)
+            seal_and_folds(sizes, reps, root, args.keys, -1 if args.full_precision else 4)
         if "tally" in args.only:
             tally_memory(10, 2_000, reps, root) if args.quick else tally_memory(200, 100_000, reps, root)
     c.footer()

@@ -79,6 +79,20 @@ def test_content_keys_are_the_keys_holdfast_always_wrote() -> None:
         "b6a326c167daac1d1d78", "14a63ead76bc0517d1a8", "56b66048aae191f565e0", "56b66048aae191f565e0~1"]
 
 
+def test_content_keys_rendered_in_blocks_are_the_keys_of_the_whole(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Rows are rendered a block at a time (memory); identical rows in different blocks are still numbered in row
+    order, so the keys equal those of one block."""
+    from holdfast import dataset
+
+    rng = np.random.default_rng(5)
+    frame = pd.DataFrame({"a": rng.integers(0, 3, 40), "b": rng.choice(["x", "y"], 40), "c": rng.normal(size=40)})
+    frame.loc[30:, "c"] = 0.5  # duplicates across blocks
+    whole = content_keys(frame)
+    monkeypatch.setattr(dataset, "CONTENT_KEY_ROWS", 7)
+    assert content_keys(frame).tolist() == whole.tolist()
+    assert whole.str.contains("~").sum() > 0
+
+
 def test_hashed_membership_depends_only_on_key_and_salt() -> None:
     keys = pd.Series([f"id{i}" for i in range(2000)])
     spec = {"fraction": 0.2, "scheme": "hashed", "salt": "s"}
