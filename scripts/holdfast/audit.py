@@ -39,7 +39,7 @@ from .layout import (
     group_family,
 )
 from .ledger import Problem
-from .overlap import note_lines
+from .overlap import note_lines, noted_at_seal
 from .recorded import last_record, scope_folder, verify
 
 PASS, FAIL, IN_PROGRESS = "pass", "fail", "in progress"
@@ -617,18 +617,9 @@ def _audit_now(exp: Path, expect_head: tuple[int, str] | None, public_key: str |
     extra = {"signed_with": signed_with,
              "head_checked": f"{expect_head[0]}:{expect_head[1]}" if expect_head else None,
              "seen_before": manifest.get("seen_before") if isinstance(manifest, dict) else None,
-             "unopened_notes": _unopened_notes(entries),
+             "unopened_notes": noted_at_seal(entries),
              "leftovers": _leftovers(exp, entries)}
     return _result(exp, FAIL if problems else PASS, entries, problems, verified, openings, extra)
-
-
-def _unopened_notes(entries: list[dict[str, Any]]) -> list[dict[str, str]]:
-    """What the seal noted about other unopened experiments (one it could not compare with this one's development
-    rows, or whose sealed rows these equal in features and target only), as its ledger line records it (the ledger,
-    not the manifest, so an edit shows as a broken chain)."""
-    seals = ledger.events(entries, "seal")
-    found = seals[0]["details"].get("unopened_notes") if seals else None
-    return [n for n in found if isinstance(n, dict)] if isinstance(found, list) else []
 
 
 def audit(exp_dir: str | os.PathLike[str], expect_head: tuple[int, str] | None = None,

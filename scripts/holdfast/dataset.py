@@ -125,6 +125,11 @@ def _prefixed(prefix: str, text: Any, separator: str = "") -> Any:
                                        pa.scalar(separator, pa.large_string()))
 
 
+def _pandas_text(values: Any) -> list[str]:
+    """Values as the text ``astype("string")`` gives them, blanks as NUL: the text content keys are made of."""
+    return pd.Series(values).astype("string").fillna("\x00").astype(str).tolist()
+
+
 def _float_text(values: np.ndarray) -> Any:
     """Each float64 as ``astype("string")`` writes it (Python's shortest repr), NaN as NUL, as an Arrow string array.
 
@@ -146,7 +151,7 @@ def _float_text(values: np.ndarray) -> Any:
     text = pc.if_else(pc.match_substring(text, "."), text, pc.binary_join_element_wise(
         text, pa.scalar(".0", pa.large_string()), pa.scalar("", pa.large_string())))
     rest = np.flatnonzero(~fast)
-    slow = pa.array(pd.Series(values[rest]).astype("string").fillna("\x00").astype(str).tolist(), pa.large_string())
+    slow = pa.array(_pandas_text(values[rest]), pa.large_string())
     order = np.empty(len(values), dtype=np.int64)
     order[fast] = np.arange(len(values) - len(rest))
     order[rest] = len(values) - len(rest) + np.arange(len(rest))
@@ -173,8 +178,8 @@ def _rendered(values: pd.Series) -> Any:
           or (pd.api.types.is_object_dtype(dtype) and pd.api.types.infer_dtype(values) in ("string", "empty"))):
         codes, uniques = pd.factorize(values)
     else:
-        return pa.array(values.astype("string").fillna("\x00").astype(str), pa.large_string())
-    text = [*pd.Series(uniques).astype("string").fillna("\x00").astype(str).tolist(), "\x00"]
+        return pa.array(_pandas_text(values), pa.large_string())
+    text = [*_pandas_text(uniques), "\x00"]
     return pa.array(text, pa.large_string()).take(pa.array(np.where(codes >= 0, codes, len(text) - 1)))
 
 

@@ -76,44 +76,37 @@ def locked(path: str | os.PathLike[str], shared: bool = False) -> Iterator[None]
         os.close(fd)
 
 
-def held_elsewhere(path: str | os.PathLike[str]) -> bool:
-    """Whether someone holds the lock on ``<path>.lock`` now (shared or exclusive), found by taking it for an instant.
+def holder(path: str | os.PathLike[str]) -> str | None:
+    """How others hold the lock on ``<path>.lock`` now: None (nobody), "shared" (runs and their steps) or
+    "exclusive" (an audit's instant), found by trying both for an instant.
 
     Unlike :func:`locked_if_free` it makes no lock file: where none exists, nobody ever held it.
     """
     try:
         fd = os.open(Path(str(path) + ".lock"), os.O_RDONLY)  # flock works on a read-only descriptor
     except OSError:
-        return False
+        return None
     try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        return True
+        for mode, held in ((fcntl.LOCK_EX, None), (fcntl.LOCK_SH, "shared")):
+            try:
+                fcntl.flock(fd, mode | fcntl.LOCK_NB)
+                return held  # granted: the exclusive lock means nobody holds it; the shared one, only sharers do
+            except BlockingIOError:
+                pass
+        return "exclusive"
     finally:
-        os.close(fd)  # closing the descriptor lets go of the lock if it was taken
-    return False
+        os.close(fd)  # closing the descriptor lets go of whatever was taken
+
+
+def held_elsewhere(path: str | os.PathLike[str]) -> bool:
+    """Whether someone holds the lock on ``<path>.lock`` now (shared or exclusive); makes no lock file."""
+    return holder(path) is not None
 
 
 def held_shared_elsewhere(path: str | os.PathLike[str]) -> bool:
     """Whether others hold the lock on ``<path>.lock`` shared now (a run or its steps), not exclusively (an audit's
-    instant): the exclusive lock is refused while the shared one is granted. Makes no lock file."""
-    try:
-        fd = os.open(Path(str(path) + ".lock"), os.O_RDONLY)
-    except OSError:
-        return False
-    try:
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-            return False
-        except BlockingIOError:
-            pass
-        try:
-            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
-        except BlockingIOError:
-            return False
-        return True
-    finally:
-        os.close(fd)  # lets go of whatever was taken
+    instant). Makes no lock file."""
+    return holder(path) == "shared"
 
 
 @contextmanager

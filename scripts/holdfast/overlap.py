@@ -274,11 +274,12 @@ EVERY_COLUMN, FEATURES_AND_TARGET = "every column", "every feature and the targe
 
 
 def sealed_values_in(frame: Any, folder: Path, manifest: dict[str, Any],
-                     cache: dict[tuple[str, ...], Any] | None = None) -> SealedMatch | None:
+                     cache: dict[tuple[str, ...], Any] | None = None, similar: bool = False) -> SealedMatch | None:
     """Which rows of ``frame`` have the values of a row the experiment in ``folder`` sealed: over every column it
     sealed when ``frame`` has them all (extra columns ignored), else over its features and target when its seal kept
     those hashes and ``frame`` has them. None when it wrote no row hashes (sealed by an older holdfast). ``cache``
-    keeps the hashes of ``frame`` by column list between experiments."""
+    keeps the hashes of ``frame`` by column list between experiments. With ``similar``, a comparison over every
+    column also says which rows are equal over the features and target (``SealedMatch.similar``)."""
     import numpy as np
 
     path = _their_file(folder, manifest)
@@ -287,15 +288,19 @@ def sealed_values_in(frame: Any, folder: Path, manifest: dict[str, Any],
     cache = {} if cache is None else cache
     hashes, columns = _sealed_hashes(path, manifest)
     labelled = _read_labelled(path)
-    by_label = _hashes_over(frame, labelled[1], cache) if labelled is not None else None
-    similar = None if by_label is None else np.isin(by_label, labelled[0])
+
+    def over_labels() -> Any | None:
+        by_label = _hashes_over(frame, labelled[1], cache) if labelled is not None else None
+        return None if by_label is None else np.isin(by_label, labelled[0])
+
     ours = _hashes_over(frame, columns, cache)
     if ours is not None:
-        return SealedMatch(np.isin(ours, hashes), EVERY_COLUMN, similar=similar)
+        return SealedMatch(np.isin(ours, hashes), EVERY_COLUMN, similar=over_labels() if similar else None)
     missing = tuple(c for c in columns if c not in set(map(str, frame.columns)))
-    if similar is None:
+    alike = over_labels()
+    if alike is None:
         return SealedMatch(None, EVERY_COLUMN, missing, labelled is not None)
-    return SealedMatch(similar, FEATURES_AND_TARGET, missing)
+    return SealedMatch(alike, FEATURES_AND_TARGET, missing)
 
 
 def _named(columns: tuple[str, ...], most: int = 3) -> str:
@@ -336,7 +341,7 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
             theirs = split_masks(frame, keys_by_id[spec.get("id")], spec, spec["task"])[0]
             shared, how = int(np.sum(theirs & development)), "sealed the same data file"
         else:
-            match = sealed_values_in(frame, folder, manifest, hashes_by_columns)
+            match = sealed_values_in(frame, folder, manifest, hashes_by_columns, similar=True)
             if match is None or match.rows is None:
                 why = ("it was sealed before holdfast kept hashes of sealed rows, so only its own data file "
                        f"'{recorded.get('path')}' is checked" if match is None else
@@ -374,6 +379,16 @@ def unopened_test_rows(frame: Any, development: Any, data_path: str, target: str
                 f"here would make its opening score rows already used to choose. Nothing was sealed. {way}, open "
                 f"'{folder.name}' first, or remove its folder '{folder}' if it will never be opened")
     return notes
+
+
+def noted_at_seal(entries: list[dict[str, Any]]) -> list[dict[str, str]]:
+    """The notes :func:`unopened_test_rows` gave at this experiment's seal, as its ledger line records them (the
+    ledger, not the manifest, so an edit shows as a broken chain)."""
+    from . import ledger
+
+    seals = ledger.events(entries, "seal")
+    found = seals[0]["details"].get("unopened_notes") if seals else None
+    return [n for n in found if isinstance(n, dict)] if isinstance(found, list) else []
 
 
 def note_lines(notes: list[dict[str, str]]) -> list[str]:

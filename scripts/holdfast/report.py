@@ -291,11 +291,11 @@ def _job(exp: Path, entries: list[dict[str, Any]]) -> str:
         ("row keys", f"from the {_e(keys.get('from', 'data'))}; digests: development {_short(keys.get('dev_sha256'))}, "
                      f"sealed {_short(keys.get('test_sha256'))}"),
     ]
-    unopened = seal[0]["details"].get("unopened_notes") if seal else None
-    if isinstance(unopened, list) and unopened:
-        from .overlap import note_lines
+    from .overlap import note_lines, noted_at_seal
 
-        pairs.append(("other experiments, at the seal", "<br>".join(_e(line) for line in note_lines(unopened))))
+    unopened = note_lines(noted_at_seal(entries))
+    if unopened:
+        pairs.append(("other experiments, at the seal", "<br>".join(_e(line) for line in unopened)))
     if manifest.get("public_key"):
         pairs.append(("signing", f"every ledger line signed; public key {_short(manifest['public_key'], 16)}…"))
     intro = ("<p>Choose one model among many by cross-validation on the development rows, then measure it once on "
