@@ -57,6 +57,11 @@ def test_float_text_is_the_text_pandas_writes() -> None:
     the ranges where Python and Arrow switch to an exponent."""
     from holdfast.dataset import _float_text
 
+    # Reference: pandas' own Series.astype("string") (pandas documentation, "Working with text data"), which writes
+    # each float as Python's repr: the shortest string that reads back to the same double (Python 3.1 "What's New",
+    # float repr; David M. Gay, "Correctly rounded binary-decimal and decimal-binary conversions", 1990), with an
+    # exponent below 1e-4 and from 1e16 (Python documentation, "Floating-Point Arithmetic", from memory for the
+    # exact thresholds; the edge values below check them).
     rng = np.random.default_rng(11)
     values = np.concatenate([
         rng.integers(0, 2**64, 50_000, dtype=np.uint64).view(np.float64),
